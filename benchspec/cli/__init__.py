@@ -1,0 +1,83 @@
+"""The ``benchspec`` command line: a thin shell over the core calls.
+
+Each command group lives in its own module of this package and exposes
+``register(subparsers)``, which adds its sub-parsers and sets ``handler`` (a
+function ``handler(args) -> int``) as the parser default. To add a command,
+write the module and add it to ``COMMAND_MODULES`` below.
+
+Errors: any :class:`benchspec.BenchspecError` is printed as one line on
+stderr and the exit code is 2; ``--debug`` shows the full traceback instead.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+import warnings
+
+from .. import __version__
+from ..errors import BenchspecError, DegradedResultWarning
+
+# Order is the order shown in --help.
+COMMAND_MODULES = [
+    "simulate",
+    "demo",
+    "calibrate",
+    "identify",
+    "view",
+    "practicals",
+    "exports",
+    "benchmark",
+    "cautions",
+]
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="benchspec",
+        description="Calibrated spectra from a webcam and a diffraction grating.",
+        epilog="Safety: every light source has cautions; see `benchspec cautions`. "
+        "Follow your school's or lab's safety rules and local regulations.",
+    )
+    parser.add_argument("--version", action="version", version=f"benchspec {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show full tracebacks on errors")
+    subparsers = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for name in COMMAND_MODULES:
+        try:
+            module = importlib.import_module(f"{__name__}.{name}")
+        except ModuleNotFoundError as exc:
+            if exc.name == f"{__name__}.{name}":
+                continue  # a command group not written yet
+            raise
+        module.register(subparsers)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "handler", None):
+        parser.print_help()
+        return 0
+    with warnings.catch_warnings():
+        warnings.simplefilter("always", DegradedResultWarning)
+        warnings.showwarning = _show_warning
+        try:
+            return int(args.handler(args) or 0)
+        except BenchspecError as exc:
+            if args.debug:
+                raise
+            print(f"benchspec {args.command}: error: {exc}", file=sys.stderr)
+            return 2
+        except KeyboardInterrupt:
+            print("benchspec: interrupted", file=sys.stderr)
+            return 130
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    print(f"benchspec: warning: {message}", file=sys.stderr)
+
+
+def run() -> None:  # pragma: no cover - console entry point
+    sys.exit(main())
