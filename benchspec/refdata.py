@@ -30,6 +30,8 @@ __all__ = [
     "available_species",
     "available_lamps",
     "read_data_text",
+    "Laser",
+    "load_lasers",
 ]
 
 _PACKAGE = "benchspec.calibration"
@@ -201,3 +203,45 @@ def load_lamp(name: str) -> Lamp:
         )
     except (KeyError, TypeError, ValueError, tomllib.TOMLDecodeError) as exc:
         raise FileFormatError(f"{origin} is malformed ({exc}); see calibration/README.md") from None
+
+
+@dataclass(frozen=True)
+class Laser:
+    """A common laser: nominal air wavelength and how far a real unit may sit from it."""
+
+    key: str
+    name: str
+    nominal_nm: float
+    tolerance_nm: float
+    kind: str
+    source: str
+    note: str = ""
+
+    def matches(self, wavelength_nm: float) -> bool:
+        """True when ``wavelength_nm`` lies within the laser's tolerance of its nominal value."""
+        return abs(float(wavelength_nm) - self.nominal_nm) <= self.tolerance_nm
+
+
+@functools.lru_cache(maxsize=None)
+def load_lasers() -> tuple[Laser, ...]:
+    """The packaged list of common lasers (``calibration/lasers.csv``), sorted by wavelength."""
+    origin = "calibration/lasers.csv"
+    body = [raw for raw in read_data_text("lasers.csv").splitlines() if raw.strip() and not raw.startswith("#")]
+    lasers = []
+    for row_number, row in enumerate(csv.DictReader(io.StringIO("\n".join(body))), start=2):
+        try:
+            laser = Laser(
+                key=row["key"].strip(),
+                name=row["name"].strip(),
+                nominal_nm=float(row["nominal_nm"]),
+                tolerance_nm=float(row["tolerance_nm"]),
+                kind=row["kind"].strip(),
+                source=row["source"].strip(),
+                note=(row.get("note") or "").strip(),
+            )
+        except (KeyError, TypeError, ValueError, AttributeError) as exc:
+            raise FileFormatError(f"{origin}: data row {row_number} is malformed ({exc}); expected key,name,nominal_nm,tolerance_nm,kind,source,note") from None
+        if not laser.source:
+            raise FileFormatError(f"{origin}: data row {row_number} ({laser.key}) names no source; every laser must name one")
+        lasers.append(laser)
+    return tuple(sorted(lasers, key=lambda l: l.nominal_nm))
