@@ -1,0 +1,485 @@
+"""Finding and measuring spectral lines in a 1-D spectrum.
+
+Emission lines are peaks above a local linear background; absorption lines
+are dips below a fitted continuum. Each line is fitted by least squares with
+a Gaussian on a linear background (neighbouring lines that overlap are fitted
+together, one Gaussian each), and reported with a sub-pixel centre and its
+1-sigma uncertainty, FWHM, peak height, area and signal-to-noise ratio, plus
+flags for blended and saturated lines.
+
+The work is done on the sample index of the spectrum and mapped to its
+``pixel`` axis, and to its ``wavelength_nm`` axis when it has one.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import ndimage, optimize, signal
+
+from .errors import InputError, LineError
+from .spectrum import Spectrum
+
+__all__ = ["Line", "LineTable", "find_lines", "estimate_noise", "fit_continuum"]
+
+_FWHM_PER_SIGMA = 2.0 * np.sqrt(2.0 * np.log(2.0))
+
+
+@dataclass(frozen=True)
+class Line:
+    """One fitted line.
+
+    Attributes
+    ----------
+    centre_px : float
+        Centre on the spectrum's pixel axis (sub-pixel).
+    centre_uncertainty_px : float
+        1-sigma uncertainty of ``centre_px`` from the fit covariance, scaled by
+        the reduced chi-square of the fit when that exceeds 1.
+    fwhm_px : float
+        Full width at half maximum of the fitted Gaussian, in pixels.
+    peak : float
+        Height of the line above the local background (emission) or depth
+        below the continuum (absorption), in intensity units; positive.
+    area : float
+        Integrated line flux (emission) or integrated dip (absorption),
+        intensity x pixels.
+    snr : float
+        ``peak`` divided by the 1-sigma noise of one sample at the centre.
+    kind : str
+        ``"emission"`` or ``"absorption"``.
+    blended : bool
+        The line overlaps a neighbour (closer than twice their mean FWHM) or
+        is markedly wider than the other lines (an unresolved blend).
+    saturated : bool
+        A sample within the line core was clipped; the centre is then fitted
+        from the unclipped wings and ``peak`` is a lower bound.
+    continuum : float
+        Background (emission) or continuum (absorption) level at the centre.
+    centre_nm, centre_uncertainty_nm, fwhm_nm : float or None
+        The same on the wavelength axis when the spectrum is calibrated. The
+        centre uncertainty combines the fit with the calibration's own
+        uncertainty at that point.
+    """
+
+    centre_px: float
+    centre_uncertainty_px: float
+    fwhm_px: float
+    peak: float
+    area: float
+    snr: float
+    kind: str
+    blended: bool
+    saturated: bool
+    continuum: float
+    centre_nm: float | None = None
+    centre_uncertainty_nm: float | None = None
+    fwhm_nm: float | None = None
+
+    def to_dict(self) -> dict:
+        """JSON-serialisable fields (floats and bools)."""
+        return {name: getattr(self, name) for name in self.__dataclass_fields__}
+
+
+@dataclass(frozen=True)
+class LineTable:
+    """The lines found in one spectrum, sorted by pixel, with what was used to find them.
+
+    Attributes
+    ----------
+    lines : tuple of Line
+    kind : str
+        ``"emission"`` or ``"absorption"``.
+    noise : float
+        Median 1-sigma noise of one sample.
+    min_snr : float
+        Detection threshold that was applied.
+    n_samples : int
+        Length of the spectrum the lines came from.
+    pixel_range : tuple of float
+        (first, last) value of the spectrum's pixel axis.
+    """
+
+    lines: tuple[Line, ...]
+    kind: str
+    noise: float
+    min_snr: float
+    n_samples: int
+    pixel_range: tuple[float, float]
+
+    def __len__(self) -> int:
+        return len(self.lines)
+
+    def __iter__(self):
+        return iter(self.lines)
+
+    def __getitem__(self, index):
+        return self.lines[index]
+
+    def _column(self, name):
+        return np.array([getattr(line, name) for line in self.lines], dtype=float)
+
+    @property
+    def centre_px(self) -> np.ndarray:
+        return self._column("centre_px")
+
+    @property
+    def centre_uncertainty_px(self) -> np.ndarray:
+        return self._column("centre_uncertainty_px")
+
+    @property
+    def fwhm_px(self) -> np.ndarray:
+        return self._column("fwhm_px")
+
+    @property
+    def peak(self) -> np.ndarray:
+        return self._column("peak")
+
+    @property
+    def snr(self) -> np.ndarray:
+        return self._column("snr")
+
+    @property
+    def blended(self) -> np.ndarray:
+        return np.array([line.blended for line in self.lines], dtype=bool)
+
+    @property
+    def saturated(self) -> np.ndarray:
+        return np.array([line.saturated for line in self.lines], dtype=bool)
+
+    def to_dicts(self) -> list[dict]:
+        return [line.to_dict() for line in self.lines]
+
+
+# ----------------------------------------------------------------------------- helpers
+
+
+def estimate_noise(values) -> float:
+    """Robust 1-sigma noise of one sample from the scatter of second differences.
+
+    The second difference removes smooth structure; for white noise its
+    standard deviation is sqrt(6) sigma, and the MAD (x1.4826) makes the
+    estimate insensitive to lines (common practice, no source).
+    """
+    y = np.asarray(values, dtype=float)
+    if y.size < 5:
+        return 0.0
+    second = y[2:] - 2 * y[1:-1] + y[:-2]
+    return float(1.4826 * np.median(np.abs(second - np.median(second))) / np.sqrt(6.0))
+
+
+def fit_continuum(values, *, width: float, iterations: int = 30) -> np.ndarray:
+    """Upper envelope of a spectrum with dips: a smooth continuum for absorption lines.
+
+    Iterative smoothing where samples below the current continuum are
+    replaced by it before the next pass, so dips stop pulling it down
+    (common practice, no source).
+
+    Parameters
+    ----------
+    values : array_like, shape (n,)
+    width : float
+        Gaussian smoothing sigma in samples; several times the widest line.
+    """
+    y = np.asarray(values, dtype=float)
+    work = y.copy()
+    continuum = ndimage.gaussian_filter1d(work, width, mode="nearest")
+    noise = estimate_noise(y)
+    for _ in range(iterations):
+        work = np.where(y < continuum - noise, continuum, y)
+        updated = ndimage.gaussian_filter1d(work, width, mode="nearest")
+        if np.max(np.abs(updated - continuum)) < 1e-6 * (np.max(np.abs(y)) + 1e-30):
+            continuum = updated
+            break
+        continuum = updated
+    return continuum
+
+
+def _gaussian_model(x0):
+    """Sum of Gaussians on a linear background about ``x0``.
+
+    Parameters are (slope, offset, then amplitude, centre, sigma per line).
+    """
+
+    def model(x, *params):
+        total = params[1] + params[0] * (x - x0)
+        for k in range(2, len(params), 3):
+            amplitude, centre, sigma = params[k : k + 3]
+            total = total + amplitude * np.exp(-0.5 * ((x - centre) / sigma) ** 2)
+        return total
+
+    return model
+
+
+def _fit_group(x, y, sigma, use, guesses):
+    """Least-squares fit of several Gaussians on a linear background.
+
+    Returns (params, covariance, reduced_chi2) or None when the fit fails.
+    """
+    xs, ys, ss = x[use], y[use], sigma[use]
+    n_params = 2 + 3 * len(guesses)
+    if xs.size < n_params + 1:
+        return None
+    model = _gaussian_model(float(np.mean(xs)))
+    edge = np.r_[ys[:2], ys[-2:]]
+    p0 = [0.0, float(np.min(edge))]
+    lower = [-np.inf, -np.inf]
+    upper = [np.inf, np.inf]
+    span = float(xs.max() - xs.min())
+    for amplitude, centre, width in guesses:
+        p0 += [max(amplitude, 1e-12), centre, max(width, 0.5)]
+        lower += [0.0, centre - max(2.0, width), 0.3]
+        upper += [np.inf, centre + max(2.0, width), max(span, 1.0)]
+    p0 = np.minimum(np.maximum(p0, lower), upper)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            params, cov = optimize.curve_fit(
+                model, xs, ys, p0=p0, sigma=ss, absolute_sigma=True, bounds=(lower, upper), maxfev=4000
+            )
+    except (RuntimeError, ValueError, optimize.OptimizeWarning):
+        return None
+    if not np.all(np.isfinite(cov)):
+        return None
+    residual = (ys - model(xs, *params)) / ss
+    dof = max(1, xs.size - n_params)
+    return params, cov, float(np.sum(residual**2) / dof)
+
+
+# ----------------------------------------------------------------------------- main entry
+
+
+def find_lines(
+    spectrum: Spectrum,
+    *,
+    absorption: bool = False,
+    min_snr: float = 5.0,
+    max_lines: int | None = None,
+    continuum_width_px: float | None = None,
+) -> LineTable:
+    """Find and fit the emission (or absorption) lines of a spectrum.
+
+    Parameters
+    ----------
+    spectrum : Spectrum
+        Pixel axis or calibrated; ``uncertainty`` is used as the per-sample
+        noise where it is positive, else a robust estimate replaces it.
+    absorption : bool
+        Look for dips against a fitted continuum instead of peaks.
+    min_snr : float
+        Minimum ratio of a line's prominence to the noise of one sample.
+    max_lines : int, optional
+        Keep only the most prominent ``max_lines`` lines.
+    continuum_width_px : float, optional
+        Smoothing scale of the continuum for absorption lines (samples);
+        default 8 times the typical line FWHM, at least 15.
+
+    Returns
+    -------
+    LineTable
+        Lines sorted by pixel; may be empty.
+
+    Raises
+    ------
+    InputError
+        ``min_snr`` not positive, or a spectrum too short to hold a line.
+    LineError
+        The spectrum has no finite samples or no variation at all.
+
+    Notes
+    -----
+    Centres come from a Gaussian + linear-background least-squares fit; the
+    1-sigma centre uncertainty is the fit covariance scaled by the reduced
+    chi-square where that exceeds 1 (so model mismatch widens it). The
+    photon-noise floor is about sigma/sqrt(N) px for N detected counts.
+    Overlapping lines (closer than 2.5 mean FWHM) are fitted jointly.
+    """
+    if not isinstance(spectrum, Spectrum):
+        raise InputError(f"`spectrum` must be a benchspec Spectrum, got {type(spectrum).__name__}")
+    if not min_snr > 0:
+        raise InputError(f"`min_snr` must be positive, was {min_snr}")
+    n = spectrum.size
+    if n < 7:
+        raise InputError(f"the spectrum has {n} samples; at least 7 are needed to find a line")
+    raw = np.array(spectrum.intensity, dtype=float)
+    if not np.all(np.isfinite(raw)):
+        if not np.any(np.isfinite(raw)):
+            raise LineError("the spectrum has no finite samples; check the extraction")
+        index = np.arange(n)
+        good = np.isfinite(raw)
+        raw = np.interp(index, index[good], raw[good])
+    if np.ptp(raw) == 0:
+        raise LineError("the spectrum is flat (every sample equal); there are no lines to find — check the frame is not blank")
+    noise_global = estimate_noise(raw)
+    given = np.array(spectrum.uncertainty, dtype=float)
+    if np.all(np.isfinite(given)) and np.all(given > 0):
+        sigma = given
+    else:
+        fallback = noise_global if noise_global > 0 else 1e-6 * np.ptp(raw)
+        sigma = np.where(np.isfinite(given) & (given > 0), given, fallback)
+    saturated = np.asarray(spectrum.saturated, dtype=bool)
+    x = np.arange(n, dtype=float)
+    kind = "absorption" if absorption else "emission"
+
+    typical_fwhm = _typical_fwhm(raw if not absorption else -raw, sigma, min_snr)
+    if absorption:
+        width = continuum_width_px if continuum_width_px else max(15.0, 8.0 * typical_fwhm)
+        continuum = fit_continuum(raw, width=width)
+        y = continuum - raw
+    else:
+        continuum = None
+        y = raw
+
+    smooth = ndimage.gaussian_filter1d(y, 1.0, mode="nearest") if typical_fwhm >= 3 else y
+    peaks, props = signal.find_peaks(smooth, prominence=0, distance=2)
+    if peaks.size:
+        prominence = props["prominences"]
+        significant = prominence >= min_snr * sigma[peaks]
+        peaks, prominence = peaks[significant], prominence[significant]
+    if peaks.size == 0:
+        return LineTable((), kind, float(np.median(sigma)), float(min_snr), n, (float(spectrum.pixel[0]), float(spectrum.pixel[-1])))
+    if max_lines is not None and peaks.size > max_lines:
+        keep = np.sort(np.argsort(prominence)[::-1][:max_lines])
+        peaks, prominence = peaks[keep], prominence[keep]
+    widths = signal.peak_widths(smooth, peaks, rel_height=0.5)[0]
+    widths = np.clip(widths, 1.0, max(1.0, n / 3))
+
+    # Group lines whose profiles overlap so that they are fitted together.
+    groups: list[list[int]] = [[0]]
+    for k in range(1, peaks.size):
+        previous = groups[-1][-1]
+        if peaks[k] - peaks[previous] < 1.25 * (widths[k] + widths[previous]) and len(groups[-1]) < 6:
+            groups[-1].append(k)
+        else:
+            groups.append([k])
+
+    fitted = []  # (centre_index, centre_sigma, sigma_width, amplitude, background, chi2, saturated, group size, k)
+    for group in groups:
+        low = int(np.floor(peaks[group[0]] - 1.6 * widths[group[0]] - 2))
+        high = int(np.ceil(peaks[group[-1]] + 1.6 * widths[group[-1]] + 2))
+        low, high = max(0, low), min(n - 1, high)
+        window = np.zeros(n, dtype=bool)
+        window[low : high + 1] = True
+        use = window & ~saturated
+        n_params = 2 + 3 * len(group)
+        clipped_group = bool(np.any(saturated & window))
+        if use.sum() < n_params + 2:
+            use = window
+        guesses = [(float(prominence[k]), float(peaks[k]), float(widths[k] / _FWHM_PER_SIGMA)) for k in group]
+        result = _fit_group(x, y, sigma, use, guesses)
+        if result is None and len(group) > 1:
+            # fall back to one fit per line
+            for k in group:
+                single = _fit_single(x, y, sigma, saturated, peaks[k], widths[k], prominence[k], n)
+                if single is not None:
+                    fitted.append((*single, 2, k))
+            continue
+        if result is None:
+            single = _fit_single(x, y, sigma, saturated, peaks[group[0]], widths[group[0]], prominence[group[0]], n)
+            if single is not None:
+                fitted.append((*single, 1, group[0]))
+            continue
+        params, cov, chi2 = result
+        x0 = float(np.mean(x[use]))
+        scale = max(1.0, chi2)
+        for j, k in enumerate(group):
+            base = 2 + 3 * j
+            amplitude, centre, width_sigma = params[base : base + 3]
+            centre_sigma = float(np.sqrt(cov[base + 1, base + 1] * scale))
+            background = float(params[1] + params[0] * (centre - x0))
+            core = np.abs(x - centre) <= max(1.0, 1.2 * width_sigma)
+            fitted.append((float(centre), centre_sigma, float(width_sigma), float(amplitude), background, chi2,
+                           bool(np.any(saturated & core)) or (clipped_group and len(group) == 1), len(group), k))
+
+    lines = _assemble(fitted, spectrum, sigma, continuum, kind, x, n)
+    return LineTable(tuple(lines), kind, float(np.median(sigma)), float(min_snr), n,
+                     (float(spectrum.pixel[0]), float(spectrum.pixel[-1])))
+
+
+def _typical_fwhm(y, sigma, min_snr) -> float:
+    """Median FWHM (samples) of the most prominent peaks; sets smoothing and continuum scales."""
+    peaks, props = signal.find_peaks(y, prominence=min_snr * float(np.median(sigma)), distance=2)
+    if peaks.size == 0:
+        return 3.0
+    order = np.argsort(props["prominences"])[::-1][:7]
+    widths = signal.peak_widths(y, peaks[order], rel_height=0.5)[0]
+    return float(max(1.0, np.median(widths)))
+
+
+def _fit_single(x, y, sigma, saturated, peak, width, prominence, n):
+    low = int(max(0, np.floor(peak - 1.6 * width - 2)))
+    high = int(min(n - 1, np.ceil(peak + 1.6 * width + 2)))
+    window = np.zeros(n, dtype=bool)
+    window[low : high + 1] = True
+    use = window & ~saturated
+    if use.sum() < 7:
+        use = window
+    result = _fit_group(x, y, sigma, use, [(float(prominence), float(peak), float(width / _FWHM_PER_SIGMA))])
+    if result is None:
+        return None
+    params, cov, chi2 = result
+    x0 = float(np.mean(x[use]))
+    amplitude, centre, width_sigma = params[2:5]
+    core = np.abs(x - centre) <= max(1.0, 1.2 * width_sigma)
+    return (float(centre), float(np.sqrt(cov[3, 3] * max(1.0, chi2))), float(width_sigma), float(amplitude),
+            float(params[1] + params[0] * (centre - x0)), chi2, bool(np.any(saturated & core)))
+
+
+def _assemble(fitted, spectrum, sigma, continuum, kind, x, n):
+    if not fitted:
+        return []
+    fitted = [f for f in fitted if 0 <= f[0] <= n - 1 and np.isfinite(f[1]) and f[3] > 0]
+    fitted.sort(key=lambda f: f[0])
+    # Two guesses can converge on the same line: keep the stronger.
+    merged = []
+    for f in fitted:
+        if merged and abs(f[0] - merged[-1][0]) < 0.5 * _FWHM_PER_SIGMA * min(f[2], merged[-1][2]):
+            if f[3] > merged[-1][3]:
+                merged[-1] = f
+            continue
+        merged.append(f)
+    fwhm = np.array([f[2] * _FWHM_PER_SIGMA for f in merged])
+    reference_fwhm = float(np.median(fwhm)) if fwhm.size else 0.0
+    pixel = np.asarray(spectrum.pixel, dtype=float)
+    wavelength = spectrum.wavelength_nm
+    wl_sigma = spectrum.wavelength_uncertainty_nm
+    pixel_step = np.gradient(pixel) if n > 1 else np.ones(1)
+    lines = []
+    for i, f in enumerate(merged):
+        centre, centre_sigma, width_sigma, amplitude, background, chi2, clipped, group_size, _ = f
+        this_fwhm = width_sigma * _FWHM_PER_SIGMA
+        neighbours = [abs(centre - g[0]) for j, g in enumerate(merged) if j != i]
+        nearest = min(neighbours) if neighbours else np.inf
+        overlapping = nearest < 2.0 * 0.5 * (this_fwhm + reference_fwhm)
+        too_wide = len(merged) >= 3 and this_fwhm > 1.6 * reference_fwhm
+        index = int(np.clip(round(centre), 0, n - 1))
+        step = float(np.interp(centre, x, pixel_step))
+        level = float(continuum[index]) if continuum is not None else background
+        area = float(amplitude * width_sigma * np.sqrt(2 * np.pi) * abs(step))
+        centre_nm = sigma_nm = fwhm_nm = None
+        if wavelength is not None:
+            centre_nm = float(np.interp(centre, x, wavelength))
+            dispersion = float(np.interp(centre, x, np.gradient(wavelength)))
+            cal_sigma = float(np.interp(centre, x, wl_sigma)) if wl_sigma is not None else 0.0
+            sigma_nm = float(np.hypot(centre_sigma * abs(dispersion), cal_sigma))
+            fwhm_nm = float(this_fwhm * abs(dispersion))
+        lines.append(
+            Line(
+                centre_px=float(np.interp(centre, x, pixel)),
+                centre_uncertainty_px=float(centre_sigma * abs(step)),
+                fwhm_px=float(this_fwhm * abs(step)),
+                peak=float(amplitude),
+                area=area,
+                snr=float(amplitude / sigma[index]),
+                kind=kind,
+                blended=bool(overlapping or too_wide),
+                saturated=bool(clipped),
+                continuum=level,
+                centre_nm=centre_nm,
+                centre_uncertainty_nm=sigma_nm,
+                fwhm_nm=fwhm_nm,
+            )
+        )
+    return lines
