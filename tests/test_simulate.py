@@ -36,7 +36,7 @@ def test_line_positions_match_truth_by_independent_centroid():
             o for o in rendered.truth["lines"]
             if o is not line and abs(o["rectified_column_px"] - x0) < 8 and o["relative_intensity"] > 0.002 * line["relative_intensity"]
         ]
-        if line["relative_intensity"] < 0.05 * strongest or neighbours:
+        if line["relative_intensity"] < 0.05 * strongest or neighbours or not 400 < line["wavelength_nm"] < 660:
             continue
         lo, hi = int(math.floor(x0)) - 4, int(math.floor(x0)) + 5
         cols = np.arange(lo, hi + 1)
