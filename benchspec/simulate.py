@@ -142,10 +142,14 @@ class ExposureSettings:
     """Exposure: the brightest pixel's expected signal as a fraction of full scale (>1 saturates).
 
     ``stray_light`` is uniform room light as a fraction of full scale.
+    ``scale_dn`` fixes the signal scale (DN per unit of source flux) instead
+    of ``level``: use it to keep a sample and its blank at one exposure (the
+    truth records the scale each frame used).
     """
 
     level: float = 0.8
     stray_light: float = 0.004
+    scale_dn: float | None = None
 
 
 @dataclass(frozen=True)
@@ -235,6 +239,7 @@ _RANGES = {
     "noise.hot_pixels": (0, 100000),
     "exposure.level": (0, 100),
     "exposure.stray_light": (0, 1),
+    "exposure.scale_dn": (0, 1e12),
     "output.bit_depth": (8, 16),
     "output.jpeg_quality": (10, 100),
 }
@@ -817,6 +822,7 @@ def _truth(bench: Bench, proj: _Projection, model: _SourceModel, pad_x, pad_y, m
             "expected_peak_dn": peak_dn,
             "saturated": bool(peak_dn > full_dn),
             "gain_e_per_dn": bench.noise.gain_e_per_dn,
+            "scale_dn": scale_dn,
         },
     }
 
@@ -841,6 +847,9 @@ class _Renderer:
         if self.model.uniform:
             self.scale = 1.0
             self.peak_dn = bench.exposure.level * self.full_dn
+        elif bench.exposure.scale_dn is not None:
+            self.scale = float(bench.exposure.scale_dn)
+            self.peak_dn = peak * self.scale
         elif peak > 0:
             self.scale = bench.exposure.level * self.full_dn / peak
             self.peak_dn = bench.exposure.level * self.full_dn
@@ -976,6 +985,9 @@ def _atomic_write_bytes(path: Path, payload: bytes, *, force: bool) -> None:
     fd, tmp = None, None
     try:
         fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=folder)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)
         with os.fdopen(fd, "wb") as handle:
             fd = None
             handle.write(payload)
