@@ -88,13 +88,17 @@ def _bench_for(frame: DemoFrame, scales: dict[str, float]) -> simulate.Bench:
 
 def render_demo_frame(name: str) -> simulate.Rendered:
     """Render one demo frame by file name (``"tube_A.png"``), exactly as shipped."""
+    by_name = {frame.file: frame for frame in demo_frames()}
+    if name not in by_name:
+        raise FileFormatError(f"no demo frame named {name!r}; see demo_images/README.md")
+    chain = [by_name[name]]
+    while chain[-1].same_exposure_as:
+        chain.append(by_name[chain[-1].same_exposure_as])
     scales: dict[str, float] = {}
-    for frame in demo_frames():
+    for frame in reversed(chain):
         rendered = simulate.render(_bench_for(frame, scales), seed=frame.seed)
         scales[frame.file] = rendered.truth["exposure"]["scale_dn"]
-        if frame.file == name:
-            return rendered
-    raise FileFormatError(f"no demo frame named {name!r}; see demo_images/README.md")
+    return rendered
 
 
 def regenerate(out_dir: str | Path, *, force: bool = False) -> list[Path]:
