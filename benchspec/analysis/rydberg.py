@@ -1,0 +1,261 @@
+"""Hydrogen's Balmer lines to the Rydberg constant.
+
+Each Balmer line n -> 2 obeys 1/lambda_vac = R_H (1/4 - 1/n^2). The lines are
+found near their expected places, fitted (Gaussian on a linear
+background), converted from air to vacuum (Edlén 1966), and R_H is the
+weighted least-squares slope through the origin.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import constants, stats
+
+from ..errors import AnalysisError, InputError
+from ..physics import air_to_vacuum_nm, vacuum_to_air_nm
+from ..spectrum import Spectrum
+from ._common import FWHM_PER_SIGMA, fit_gaussian_line, positive_uncertainty, require_calibrated, sample_step_nm, warn_degraded
+
+__all__ = [
+    "BalmerLine",
+    "RydbergResult",
+    "BALMER_NAMES",
+    "codata_rydberg_hydrogen_per_m",
+    "expected_balmer_air_nm",
+    "find_balmer_lines",
+    "fit_rydberg",
+    "rydberg_from_spectrum",
+]
+
+#: Names of the Balmer lines by upper level n (n -> 2).
+BALMER_NAMES = {3: "H-alpha", 4: "H-beta", 5: "H-gamma", 6: "H-delta", 7: "H-epsilon", 8: "H-zeta", 9: "H-eta"}
+
+
+def codata_rydberg_hydrogen_per_m() -> tuple[float, float]:
+    """R_H = R_inf / (1 + m_e/m_p) and its 1-sigma, from CODATA via scipy.constants.
+
+    The reduced-mass correction for the hydrogen nucleus (a proton).
+    """
+    r_inf, _, r_inf_err = constants.physical_constants["Rydberg constant"]
+    ratio, _, ratio_err = constants.physical_constants["electron-proton mass ratio"]
+    value = r_inf / (1 + ratio)
+    err = value * np.hypot(r_inf_err / r_inf, ratio_err / (1 + ratio))
+    return float(value), float(err)
+
+
+def expected_balmer_air_nm(upper_level: int) -> float:
+    """Air wavelength (Edlén 1966) of the Balmer line n -> 2 from the CODATA R_H (Bohr model).
+
+    Fine structure moves the real lines by ~0.01 nm, far below a webcam's
+    resolution; used to place the search windows.
+    """
+    if int(upper_level) != upper_level or upper_level < 3:
+        raise InputError(f"`upper_level` must be a whole number >= 3, was {upper_level}")
+    r_h, _ = codata_rydberg_hydrogen_per_m()
+    vacuum_nm = 1e9 / (r_h * (0.25 - 1.0 / upper_level**2))
+    return float(vacuum_to_air_nm(vacuum_nm))
+
+
+@dataclass(frozen=True)
+class BalmerLine:
+    """One Balmer line as measured."""
+
+    upper_level: int
+    name: str
+    air_wavelength_nm: float
+    vacuum_wavelength_nm: float
+    wavelength_uncertainty_nm: float
+    expected_air_wavelength_nm: float
+    fwhm_nm: float
+    snr: float
+    residual_nm: float | None = None
+
+
+@dataclass(frozen=True)
+class RydbergResult:
+    """The Rydberg constant for hydrogen fitted from Balmer lines.
+
+    ``uncertainty_per_m`` is the 1-sigma from the line-centre
+    uncertainties; it is multiplied by the Birge ratio sqrt(chi^2/dof) only
+    when the lines disagree beyond chance (p < 0.01), and ``scaled`` says
+    so. ``difference_sigma`` is (fitted - CODATA) / combined uncertainty.
+    """
+
+    rydberg_per_m: float
+    uncertainty_per_m: float
+    codata_rydberg_per_m: float
+    codata_uncertainty_per_m: float
+    difference_per_m: float
+    difference_sigma: float
+    relative_difference: float
+    chi2: float
+    degrees_of_freedom: int
+    birge_ratio: float
+    scaled: bool
+    lines: tuple[BalmerLine, ...]
+    air_to_vacuum: str = "Edlén 1966"
+
+
+def find_balmer_lines(
+    spectrum: Spectrum,
+    *,
+    window_nm: float | None = None,
+    min_snr: float = 5.0,
+    levels=range(3, 10),
+) -> tuple[BalmerLine, ...]:
+    """Find and fit the Balmer lines present in a calibrated hydrogen spectrum.
+
+    Parameters
+    ----------
+    spectrum : Spectrum
+        Calibrated emission spectrum (air wavelengths).
+    window_nm : float, optional
+        Half-width of the search window around each expected line; default
+        the larger of 2 nm, 6 samples and 5x the calibration uncertainty.
+    min_snr : float
+        Smallest line amplitude, in units of the noise, that counts as found.
+    levels : iterable of int
+        Upper levels n to look for (3 = H-alpha).
+
+    Returns
+    -------
+    tuple of BalmerLine
+        Lines found, by increasing n. May be empty.
+    """
+    spectrum = require_calibrated(spectrum)
+    wl = spectrum.wavelength_nm
+    y = np.where(np.isfinite(spectrum.intensity), spectrum.intensity, 0.0)
+    sigma = positive_uncertainty(spectrum)
+    step = sample_step_nm(wl)
+    found = []
+    for n in levels:
+        expected = expected_balmer_air_nm(n)
+        if not (wl[0] + 2 * step < expected < wl[-1] - 2 * step):
+            continue
+        cal_sigma = 0.0
+        if spectrum.wavelength_uncertainty_nm is not None:
+            cal_sigma = float(np.interp(expected, wl, spectrum.wavelength_uncertainty_nm))
+        half = window_nm if window_nm is not None else max(2.0, 6 * step, 5 * cal_sigma)
+        inside = np.flatnonzero(np.abs(wl - expected) <= half)
+        if inside.size < 6:
+            continue
+        top = inside[int(np.argmax(y[inside]))]
+        local_background = float(np.median(y[inside]))
+        if y[top] - local_background < min_snr * sigma[top]:
+            continue  # nothing above the noise here: do not fit noise
+        # Fit window: +-4 sigma of a line a few samples wide around the top.
+        fit_half = max(4 * step, 0.6 * half)
+        use = np.flatnonzero(np.abs(wl - wl[top]) <= fit_half)
+        if spectrum.saturated[use].any():
+            warn_degraded(f"{BALMER_NAMES.get(n, f'n={n}')} is saturated; its centre is less certain - reduce the exposure")
+        fit = fit_gaussian_line(wl[use], y[use], sigma[use], centre_guess=wl[top], width_guess=max(step, 0.3))
+        if fit is None:
+            continue
+        snr = fit["amplitude"] / float(np.median(sigma[use]))
+        if snr < min_snr or fit["amplitude"] <= 3 * fit["amplitude_uncertainty"]:
+            continue
+        if abs(fit["centre"] - expected) > half:
+            continue
+        centre_err = float(np.hypot(fit["centre_uncertainty"], cal_sigma))
+        found.append(
+            BalmerLine(
+                upper_level=int(n),
+                name=BALMER_NAMES.get(n, f"n={n}"),
+                air_wavelength_nm=fit["centre"],
+                vacuum_wavelength_nm=float(air_to_vacuum_nm(fit["centre"])),
+                wavelength_uncertainty_nm=centre_err,
+                expected_air_wavelength_nm=expected,
+                fwhm_nm=fit["sigma_width"] * FWHM_PER_SIGMA,
+                snr=float(snr),
+            )
+        )
+    return tuple(found)
+
+
+def fit_rydberg(lines) -> RydbergResult:
+    """Weighted fit of 1/lambda_vac = R_H (1/4 - 1/n^2) through the origin.
+
+    Parameters
+    ----------
+    lines : sequence of BalmerLine
+        At least two lines with positive uncertainties.
+
+    Raises
+    ------
+    AnalysisError
+        Fewer than two lines.
+    """
+    lines = tuple(lines)
+    if len(lines) < 2:
+        names = ", ".join(l.name for l in lines) or "none"
+        raise AnalysisError(
+            f"a Rydberg fit needs at least 2 Balmer lines, found {len(lines)} ({names}); "
+            "check the spectrum is of a hydrogen tube, calibrated, and covers 400-660 nm"
+        )
+    n = np.array([l.upper_level for l in lines], dtype=np.float64)
+    lam_m = np.array([l.vacuum_wavelength_nm for l in lines]) * 1e-9
+    lam_err_m = np.array([l.wavelength_uncertainty_nm for l in lines]) * 1e-9
+    if np.any(lam_err_m <= 0) or not np.all(np.isfinite(lam_err_m)):
+        raise InputError("every Balmer line needs a positive, finite wavelength uncertainty")
+    x = 0.25 - 1.0 / n**2
+    y = 1.0 / lam_m
+    y_err = lam_err_m / lam_m**2
+    w = 1.0 / y_err**2
+    sxx = float(np.sum(w * x * x))
+    rydberg = float(np.sum(w * x * y) / sxx)
+    err = float(1.0 / np.sqrt(sxx))
+    residual = y - rydberg * x
+    chi2 = float(np.sum(w * residual**2))
+    dof = len(lines) - 1
+    birge = float(np.sqrt(chi2 / dof))
+    scaled = bool(stats.chi2.sf(chi2, dof) < 0.01)
+    if scaled:
+        err *= birge
+        warn_degraded(
+            f"the Balmer lines disagree beyond their uncertainties (chi^2 = {chi2:.1f} for {dof} degrees of freedom); "
+            f"the uncertainty is scaled by {birge:.2f} - check the calibration and the line assignments"
+        )
+    codata, codata_err = codata_rydberg_hydrogen_per_m()
+    difference = rydberg - codata
+    combined = float(np.hypot(err, codata_err))
+    with_residuals = tuple(
+        BalmerLine(**{**l.__dict__, "residual_nm": float((lam - 1.0 / (rydberg * xi)) * 1e9)})
+        for l, lam, xi in zip(lines, lam_m, x)
+    )
+    return RydbergResult(
+        rydberg_per_m=rydberg,
+        uncertainty_per_m=err,
+        codata_rydberg_per_m=codata,
+        codata_uncertainty_per_m=codata_err,
+        difference_per_m=float(difference),
+        difference_sigma=float(difference / combined),
+        relative_difference=float(difference / codata),
+        chi2=chi2,
+        degrees_of_freedom=dof,
+        birge_ratio=birge,
+        scaled=scaled,
+        lines=with_residuals,
+    )
+
+
+def rydberg_from_spectrum(spectrum: Spectrum, *, window_nm: float | None = None, min_snr: float = 5.0) -> RydbergResult:
+    """Find the Balmer lines of a hydrogen spectrum and fit the Rydberg constant.
+
+    Raises
+    ------
+    AnalysisError
+        When fewer than two Balmer lines are found.
+    """
+    spectrum = require_calibrated(spectrum)
+    lines = find_balmer_lines(spectrum, window_nm=window_nm, min_snr=min_snr)
+    if len(lines) < 2:
+        wl = spectrum.wavelength_nm
+        names = ", ".join(l.name for l in lines) or "none"
+        raise AnalysisError(
+            f"no usable Balmer series: found {len(lines)} Balmer line(s) ({names}) in {wl[0]:.0f}-{wl[-1]:.0f} nm, "
+            f"need at least 2 of H-alpha 656.3, H-beta 486.1, H-gamma 434.0, H-delta 410.2 nm; "
+            "check the tube is hydrogen, the spectrum is calibrated and the lines are above the noise"
+        )
+    return fit_rydberg(lines)
