@@ -79,11 +79,17 @@ __all__ = [
 
 @dataclass(frozen=True)
 class GratingSettings:
-    """The grating: groove density, diffraction order and angle of incidence."""
+    """The grating: groove density, diffraction order and angle of incidence.
+
+    ``second_order_fraction`` is the efficiency of order 2m relative to order m:
+    its light overlaps the first order beyond twice the shortest wavelength that
+    reaches the sensor (0 leaves it out).
+    """
 
     lines_per_mm: float = 1000.0
     order: int = 1
     incidence_deg: float = 0.0
+    second_order_fraction: float = 0.0
 
 
 @dataclass(frozen=True)
@@ -220,6 +226,7 @@ _RANGES = {
     "grating.lines_per_mm": (10, 3600),
     "grating.order": (-4, 4),
     "grating.incidence_deg": (-60, 60),
+    "grating.second_order_fraction": (0, 1),
     "camera.width_px": (64, 8192),
     "camera.height_px": (48, 8192),
     "camera.horizontal_fov_deg": (5, 150),
@@ -838,6 +845,10 @@ class _Renderer:
         self.model = source_spectrum(bench.source)
         self._check_source_reaches_sensor()
         self.canvas, self.pad_x, self.pad_y = _noise_free(bench, self.model, self.proj)
+        self.second_order = self._second_order_bench()
+        if self.second_order is not None:
+            extra, _, _ = _noise_free(self.second_order, self.model, self.proj)
+            self.canvas += bench.grating.second_order_fraction * extra
         self.full_dn = float(2**bench.noise.adc_bits - 1)
         self.channels = self.canvas.shape[0]
         matrix = _rotation_matrix(bench, self.proj, self.pad_x, self.pad_y)
@@ -857,9 +868,19 @@ class _Renderer:
             self.scale = 0.0
             self.peak_dn = 0.0
         self.truth = _truth(bench, self.proj, self.model, self.pad_x, self.pad_y, matrix, self.scale, self.full_dn, self.peak_dn)
+        if self.second_order is not None:
+            self.truth["second_order_lines"] = _line_truth(
+                self.second_order, self.proj, self.model, self.pad_x, self.pad_y, matrix, self.scale, self.full_dn
+            )
         hot_rng = np.random.default_rng(cam.width_px * 7919 + cam.height_px)  # fixed per sensor, not per frame
         count = bench.noise.hot_pixels
         self.hot = (hot_rng.integers(0, cam.height_px, count), hot_rng.integers(0, cam.width_px, count), hot_rng.uniform(0.2, 1.0, count))
+
+    def _second_order_bench(self) -> Bench | None:
+        grating = self.bench.grating
+        if grating.second_order_fraction <= 0 or abs(2 * grating.order) > 4:
+            return None
+        return dataclasses.replace(self.bench, grating=dataclasses.replace(grating, order=2 * grating.order))
 
     def _check_source_reaches_sensor(self):
         bench, model = self.bench, self.model

@@ -213,3 +213,16 @@ def test_video_has_changing_noise_and_drift(tmp_path):
     assert len(frames) == 4
     assert not np.array_equal(frames[0], frames[1])
     assert truth["video"]["shift_px"] == [0.0, 0.5, 1.0, 1.5]
+
+
+def test_second_order_light_lands_where_twice_its_wavelength_would():
+    # Grating equation: order 2 at lambda leaves at the angle of order 1 at 2*lambda.
+    bench = _quiet_bench(source="hg", grating={"second_order_fraction": 0.1})
+    rendered = simulate.render(bench, seed=1)
+    first = {round(l["wavelength_nm"], 3): l for l in rendered.truth["lines"]}
+    second = {round(l["wavelength_nm"], 3): l for l in rendered.truth["second_order_lines"]}
+    assert 404.656 in second
+    mapping = rendered.truth["mapping"]
+    doubled = np.interp(second[404.656]["rectified_column_px"], mapping["rectified_column_px"], mapping["wavelength_nm"])
+    assert doubled == pytest.approx(2 * 404.656, abs=0.02)
+    assert 546.075 in first and 546.075 not in second  # 1092 nm in order 2 misses the sensor
