@@ -269,6 +269,8 @@ def _section_from(cls, section: str, values: Mapping[str, Any]):
         target = known[key]
         default = target.default
         if value is None:
+            if default is not None:  # only optional fields may be left empty
+                raise BenchFileError(f"'{section}.{key}' cannot be empty (null); give a value or remove the line")
             kwargs[key] = None
             continue
         if key == "gamma":
@@ -347,7 +349,7 @@ _SOURCE_RANGES = {
 
 def _check_source(source: Mapping[str, Any]) -> None:
     kind = source.get("kind")
-    if kind not in _SOURCE_FIELDS:
+    if not isinstance(kind, str) or kind not in _SOURCE_FIELDS:
         raise BenchFileError(f"unknown source kind {kind!r}; accepted: {', '.join(SOURCE_KINDS)}")
     allowed = _SOURCE_FIELDS[kind]
     for key, value in source.items():
@@ -966,12 +968,16 @@ def load_bench(path: str | os.PathLike) -> Bench:
         raw = path.read_bytes()
     except OSError as exc:
         raise BenchFileError(f"bench file {str(path)!r} cannot be read ({exc.strerror or exc}); check the path") from None
+    if not raw.strip():
+        raise BenchFileError(f"bench file {str(path)!r} is empty; `benchspec simulate --template` prints a documented one")
     try:
         text = raw.decode("utf-8")
         data = json.loads(text) if path.suffix.lower() == ".json" else tomllib.loads(text)
     except (UnicodeDecodeError, ValueError, tomllib.TOMLDecodeError) as exc:
         kind = "JSON" if path.suffix.lower() == ".json" else "TOML"
         raise BenchFileError(f"bench file {str(path)!r} is not valid UTF-8 {kind} ({exc})") from None
+    except RecursionError:
+        raise BenchFileError(f"bench file {str(path)!r} is nested too deeply to be a bench description") from None
     try:
         return bench_from_dict(data)
     except BenchFileError as exc:
@@ -989,6 +995,8 @@ def bench_from_dict(data: Mapping[str, Any]) -> Bench:
                 raise BenchFileError(f"[{key}] must be a table of fields")
             kwargs[key] = _section_from(_SECTIONS[key], key, value)
         elif key == "source":
+            if not isinstance(value, (str, Mapping)):
+                raise BenchFileError(f"'source' must be a text such as 'led:630' or a table of fields, was {value!r}")
             kwargs[key] = parse_source(value) if isinstance(value, str) else dict(value)
         elif key == "name":
             kwargs[key] = str(value)
