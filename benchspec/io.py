@@ -994,7 +994,7 @@ def _read_csv_spectrum(path: Path) -> Spectrum:
         path,
         wavelength=wavelength,
         intensity=cols[value_name],
-        uncertainty=cols.get("uncertainty"),
+        uncertainty=next((cols[n] for n in ("uncertainty", "sigma", "error", "std", "stdev") if n in cols), None),
         pixel=cols.get("pixel"),
         saturated=saturated,
         wavelength_uncertainty=cols.get("wavelength_uncertainty_nm"),
@@ -1059,8 +1059,6 @@ def _read_plain_text(path: Path, text: str) -> Spectrum:
     sample = lines[-1][1] if len(lines) == 1 else lines[min(1, len(lines) - 1)][1]
     if ";" in sample:
         separator = ";"
-    elif "\t" in sample:
-        separator = "\t"
     elif "," in sample and not (len(sample.split()) >= 2 and all(_DECIMAL_COMMA.match(t) or _NUMBER.match(t) for t in sample.split())):
         separator = ","
     else:
@@ -1078,7 +1076,8 @@ def _read_plain_text(path: Path, text: str) -> Spectrum:
 
     header = None
     start = 0
-    first_cells = _split_plain(lines[0][1], separator)
+    first_line = lines[0][1]
+    first_cells = _split_plain(first_line, "\t" if (separator is None and "\t" in first_line) else separator)
     if any(number(c) is None for c in first_cells[:2]):
         header = [c.strip().strip('"') for c in first_cells]
         start = 1
@@ -1145,7 +1144,7 @@ def _read_plain_text(path: Path, text: str) -> Spectrum:
         "imported_from": {
             "path": str(path),
             "sha256": hash_file(path),
-            "format": "plain text" + (f" ({'comma' if separator == ',' else 'semicolon' if separator == ';' else 'tab' if separator == chr(9) else 'whitespace'} separated)"),
+            "format": "plain text" + (f" ({'comma' if separator == ',' else 'semicolon' if separator == ';' else 'whitespace'} separated)"),
             "x_scale_to_nm": x_scale,
             "reversed": reversed_order,
             "header": header,
