@@ -1,0 +1,1256 @@
+"""Automatic wavelength calibration: detected lines -> a lamp's reference lines -> a polynomial.
+
+No first guess is needed: neither which side is blue, nor the dispersion
+(0.1-3 nm/px by default), nor which lines are present.
+
+Method
+------
+1. *Reference features.* At a trial dispersion D and the measured line width
+   F (px), reference lines closer than about one resolution element (1.2 F D)
+   merge into one feature: its wavelength is the intensity-weighted centroid
+   of the members and its uncertainty adds the members' weighted spread to
+   their listed tolerances. This is how the CFL traps are handled: Tb3+
+   542.4 nm beside Hg 546.07 nm, the Hg 577/579 pair beside the phosphor
+   group near 586 nm, dense Ne groups. Where the lines are resolved they stay
+   separate features.
+2. *Hypotheses by ratio-of-spacings pattern matching.* For triplets of the
+   strongest detected lines and triplets of the strongest features, the ratio
+   of spacings (p2 - p1)/(p3 - p1) is invariant to offset, scale and
+   direction; a triplet pair whose ratios agree defines a quadratic
+   pixel->wavelength hypothesis (for either direction of dispersion). The
+   search runs in dispersion bands of a factor 1.6 so that blends are
+   clustered at the right resolution.
+3. *Scoring.* Each hypothesis is scored by the number of detected lines that
+   land on a feature (within a tolerance of a few pixels), vectorised over
+   all hypotheses.
+4. *Refinement.* The best distinct hypotheses are refined by iterative
+   matching (one detected line per feature, tightening tolerance) and a
+   weighted polynomial fit of order 1-3, the order chosen by the Bayesian
+   information criterion, with outliers rejected at 4 robust sigma.
+5. *Decision.* The best refined solution is accepted only if it matches at
+   least 3 lines used in the fit (4 matched without manual pairs), explains
+   most of the bright lines, has an RMS under 1 px and is clearly better than
+   any distinct runner-up; otherwise :class:`~benchspec.errors.CalibrationError`
+   says why. A wrong lamp or lines that fit no lamp are refused, never
+   returned as a wrong solution.
+
+The solution's 1-sigma uncertainty across the range comes from the fit
+covariance (scaled by the reduced chi-square where that exceeds 1).
+All wavelengths are in air (the line lists are in air).
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+from dataclasses import dataclass, field
+from typing import Iterable, Sequence
+
+import numpy as np
+
+from .errors import CalibrationError, InputError
+from .lines import LineTable, find_lines
+from .physics import diffraction_angle_deg
+from .refdata import Lamp, available_lamps, load_lamp
+from .spectrum import Spectrum
+
+__all__ = [
+    "ManualPair",
+    "MatchedLine",
+    "WavelengthSolution",
+    "WavelengthCalibration",
+    "calibrate_lines",
+    "calibrate_spectrum",
+    "calibrate_combined",
+    "dispersion_range_for_grating",
+    "parse_pair",
+    "VERDICTS",
+]
+
+#: Quality verdicts, best first.
+VERDICTS = ("good", "fair", "poor")
+
+# Systematic floor added to every line centre (JPEG, demosaicing, model), px (common practice, no source).
+_CENTRE_FLOOR_PX = 0.03
+# A feature is used in the fit only if its own wavelength uncertainty is below this many pixels.
+_FEATURE_FIT_LIMIT_PX = 0.75
+
+
+# --------------------------------------------------------------------------- results
+
+
+@dataclass(frozen=True)
+class ManualPair:
+    """A user-given pixel -> wavelength pair (e.g. a laser line).
+
+    Attributes
+    ----------
+    pixel : float
+    wavelength_nm : float
+        Air wavelength.
+    tolerance_nm : float
+        1-sigma uncertainty of ``wavelength_nm``.
+    label : str
+    """
+
+    pixel: float
+    wavelength_nm: float
+    tolerance_nm: float = 0.2
+    label: str = "manual pair"
+
+
+@dataclass(frozen=True)
+class MatchedLine:
+    """A detected line and the reference feature it was assigned to.
+
+    Attributes
+    ----------
+    pixel, pixel_uncertainty : float
+        Fitted centre and its 1-sigma, px.
+    reference_nm : float
+        Wavelength of the assigned feature (intensity-weighted centroid for a blend).
+    reference_uncertainty_nm : float
+        Listed tolerance plus blend spread, 1-sigma.
+    fitted_nm : float
+        The solution's wavelength at ``pixel``.
+    residual_nm, residual_px : float
+        reference minus fitted, in nm and in pixels.
+    species : str
+        Species (or lamp) of the feature's dominant line, ``"manual"`` for a pair.
+    members_nm : tuple of float
+        Reference lines merged into the feature (one for an isolated line).
+    lamp : str
+    used_in_fit : bool
+        False for rejected outliers.
+    anchor : bool
+        The reference wavelength is known to better than 0.75 px (isolated
+        atomic lines, resolved or tight blends); the RMS is computed over these.
+    rejected : bool
+        Rejected by the outlier test.
+    blended : bool
+        The feature merges several reference lines, or the detected line was flagged blended.
+    saturated : bool
+    snr : float
+    """
+
+    pixel: float
+    pixel_uncertainty: float
+    reference_nm: float
+    reference_uncertainty_nm: float
+    fitted_nm: float
+    residual_nm: float
+    residual_px: float
+    species: str
+    members_nm: tuple[float, ...]
+    lamp: str
+    used_in_fit: bool
+    anchor: bool
+    rejected: bool
+    blended: bool
+    saturated: bool
+    snr: float
+
+    def to_dict(self) -> dict:
+        d = {name: getattr(self, name) for name in self.__dataclass_fields__}
+        d["members_nm"] = list(self.members_nm)
+        return d
+
+    @classmethod
+    def from_dict(cls, data) -> "MatchedLine":
+        values = dict(data)
+        values["members_nm"] = tuple(float(v) for v in values["members_nm"])
+        return cls(**values)
+
+
+@dataclass(frozen=True)
+class WavelengthSolution:
+    """A polynomial pixel -> air wavelength mapping with its covariance.
+
+    wavelength_nm(p) = sum_k c_k t**k with t = (p - pixel_centre) / pixel_scale.
+
+    Attributes
+    ----------
+    coefficients : tuple of float
+        c_0 ... c_order (nm).
+    covariance : tuple of tuple of float
+        Covariance of the coefficients (nm^2), already scaled by the reduced chi-square where that exceeds 1.
+    pixel_centre, pixel_scale : float
+    pixel_range : tuple of float
+        The pixel range of the spectrum the solution was fitted on (first, last).
+    """
+
+    coefficients: tuple[float, ...]
+    covariance: tuple[tuple[float, ...], ...]
+    pixel_centre: float
+    pixel_scale: float
+    pixel_range: tuple[float, float]
+
+    @property
+    def order(self) -> int:
+        return len(self.coefficients) - 1
+
+    def _t(self, pixel):
+        return (np.asarray(pixel, dtype=float) - self.pixel_centre) / self.pixel_scale
+
+    def wavelength_nm(self, pixel) -> np.ndarray:
+        """Air wavelength (nm) at ``pixel``."""
+        return np.polynomial.polynomial.polyval(self._t(pixel), self.coefficients)
+
+    def dispersion_nm_per_px(self, pixel) -> np.ndarray:
+        """d(wavelength)/d(pixel) in nm/px (negative when blue is on the right)."""
+        derivative = np.polynomial.polynomial.polyder(self.coefficients)
+        return np.polynomial.polynomial.polyval(self._t(pixel), derivative) / self.pixel_scale
+
+    def uncertainty_nm(self, pixel) -> np.ndarray:
+        """1-sigma uncertainty of the solution's wavelength at ``pixel`` (nm)."""
+        t = self._t(pixel)
+        basis = np.stack([t**k for k in range(self.order + 1)], axis=-1)
+        cov = np.asarray(self.covariance, dtype=float)
+        return np.sqrt(np.maximum(np.einsum("...i,ij,...j->...", basis, cov, basis), 0.0))
+
+    def pixel_of(self, wavelength_nm) -> np.ndarray:
+        """Pixel at which the solution reaches ``wavelength_nm`` (inverse, by interpolation on a fine grid)."""
+        low, high = self.pixel_range
+        grid = np.linspace(low, high, int(abs(high - low)) * 4 + 2)
+        values = self.wavelength_nm(grid)
+        if values[-1] < values[0]:
+            grid, values = grid[::-1], values[::-1]
+        return np.interp(np.asarray(wavelength_nm, dtype=float), values, grid, left=np.nan, right=np.nan)
+
+    @property
+    def blue_on_right(self) -> bool:
+        return bool(self.dispersion_nm_per_px(0.5 * sum(self.pixel_range)) < 0)
+
+    def to_dict(self) -> dict:
+        return {
+            "model": "polynomial",
+            "variable": "t = (pixel - pixel_centre) / pixel_scale",
+            "order": self.order,
+            "coefficients_nm": list(self.coefficients),
+            "covariance_nm2": [list(row) for row in self.covariance],
+            "pixel_centre": self.pixel_centre,
+            "pixel_scale": self.pixel_scale,
+            "pixel_range": list(self.pixel_range),
+        }
+
+    @classmethod
+    def from_dict(cls, data) -> "WavelengthSolution":
+        return cls(
+            coefficients=tuple(float(c) for c in data["coefficients_nm"]),
+            covariance=tuple(tuple(float(v) for v in row) for row in data["covariance_nm2"]),
+            pixel_centre=float(data["pixel_centre"]),
+            pixel_scale=float(data["pixel_scale"]),
+            pixel_range=(float(data["pixel_range"][0]), float(data["pixel_range"][1])),
+        )
+
+
+@dataclass(frozen=True)
+class WavelengthCalibration:
+    """The result of an automatic calibration.
+
+    Attributes
+    ----------
+    solution : WavelengthSolution
+    matches : tuple of MatchedLine
+        Sorted by pixel.
+    rms_px, rms_nm : float
+        RMS residual of the lines used in the fit.
+    max_uncertainty_nm : float
+        Largest 1-sigma solution uncertainty over the pixel range.
+    verdict : str
+        ``"good"``, ``"fair"`` or ``"poor"`` (see :data:`VERDICTS`).
+    verdict_reason : str
+        One line on why.
+    lamps : tuple of str
+    line_list_sources : tuple of str
+        "species: source" for each line list used.
+    coverage_fraction : float
+        Fraction of the pixel range between the outermost fitted lines.
+    n_detected : int
+        Lines the matcher was given (after dropping broad bands).
+    notes : tuple of str
+        Things a user should know (blends excluded, lines rejected, ...).
+    """
+
+    solution: WavelengthSolution
+    matches: tuple[MatchedLine, ...]
+    rms_px: float
+    rms_nm: float
+    max_uncertainty_nm: float
+    verdict: str
+    verdict_reason: str
+    lamps: tuple[str, ...]
+    line_list_sources: tuple[str, ...]
+    coverage_fraction: float
+    n_detected: int
+    notes: tuple[str, ...] = ()
+
+    @property
+    def n_used(self) -> int:
+        return sum(m.used_in_fit for m in self.matches)
+
+    def wavelength_nm(self, pixel) -> np.ndarray:
+        return self.solution.wavelength_nm(pixel)
+
+    def uncertainty_nm(self, pixel) -> np.ndarray:
+        return self.solution.uncertainty_nm(pixel)
+
+    def format_table(self) -> str:
+        """The matched-line table, RMS and verdict as plain text."""
+        rows = ["   pixel   +-1s   reference_nm  fitted_nm  resid_nm resid_px  species        used  flags"]
+        for m in self.matches:
+            flags = ",".join(f for f, on in (("blend", m.blended), ("sat", m.saturated), ("outlier", m.rejected)) if on)
+            rows.append(
+                f"{m.pixel:8.2f} {m.pixel_uncertainty:6.3f}  {m.reference_nm:11.3f} {m.fitted_nm:10.3f} "
+                f"{m.residual_nm:+9.3f} {m.residual_px:+8.2f}  {m.species:<14s} {'yes' if m.used_in_fit else 'no ':<4s}  {flags}"
+            )
+        low, high = self.solution.pixel_range
+        disp = float(np.median(np.abs(self.solution.dispersion_nm_per_px(np.linspace(low, high, 9)))))
+        w0, w1 = sorted(self.solution.wavelength_nm([low, high]))
+        rows.append(
+            f"order {self.solution.order} polynomial, {self.n_used} lines used of {len(self.matches)} matched "
+            f"({self.n_detected} detected); RMS {self.rms_px:.3f} px = {self.rms_nm:.4f} nm; "
+            f"range {w0:.1f}-{w1:.1f} nm at {disp:.3f} nm/px, blue on the {'right' if self.solution.blue_on_right else 'left'}; "
+            f"solution 1-sigma <= {self.max_uncertainty_nm:.4f} nm"
+        )
+        rows.append(f"verdict: {self.verdict} ({self.verdict_reason})")
+        rows.extend(f"note: {note}" for note in self.notes)
+        return "\n".join(rows)
+
+    def to_dict(self) -> dict:
+        return {
+            "solution": self.solution.to_dict(),
+            "matches": [m.to_dict() for m in self.matches],
+            "rms_px": self.rms_px,
+            "rms_nm": self.rms_nm,
+            "max_uncertainty_nm": self.max_uncertainty_nm,
+            "verdict": self.verdict,
+            "verdict_reason": self.verdict_reason,
+            "lamps": list(self.lamps),
+            "line_list_sources": list(self.line_list_sources),
+            "coverage_fraction": self.coverage_fraction,
+            "n_detected": self.n_detected,
+            "notes": list(self.notes),
+        }
+
+    @classmethod
+    def from_dict(cls, data) -> "WavelengthCalibration":
+        return cls(
+            solution=WavelengthSolution.from_dict(data["solution"]),
+            matches=tuple(MatchedLine.from_dict(m) for m in data["matches"]),
+            rms_px=float(data["rms_px"]),
+            rms_nm=float(data["rms_nm"]),
+            max_uncertainty_nm=float(data["max_uncertainty_nm"]),
+            verdict=str(data["verdict"]),
+            verdict_reason=str(data["verdict_reason"]),
+            lamps=tuple(data["lamps"]),
+            line_list_sources=tuple(data["line_list_sources"]),
+            coverage_fraction=float(data["coverage_fraction"]),
+            n_detected=int(data["n_detected"]),
+            notes=tuple(data.get("notes", ())),
+        )
+
+
+# --------------------------------------------------------------------------- helpers for users
+
+
+def parse_pair(text: str) -> ManualPair:
+    """Parse ``PIXEL=NM`` or ``PIXEL=NM+-TOL`` (nm) into a :class:`ManualPair`."""
+    raw = str(text).strip()
+    pixel_text, sep, rest = raw.partition("=")
+    tolerance = 0.2
+    for marker in ("+-", "±"):
+        if marker in rest:
+            rest, _, tol_text = rest.partition(marker)
+            try:
+                tolerance = float(tol_text)
+            except ValueError:
+                raise InputError(f"manual pair {raw!r}: tolerance {tol_text!r} is not a number; write e.g. 812.4=632.8+-0.1") from None
+    try:
+        pixel, wavelength = float(pixel_text), float(rest)
+    except ValueError:
+        raise InputError(f"manual pair {raw!r} must look like PIXEL=NM, e.g. 812.4=632.8") from None
+    if not sep or not (200 <= wavelength <= 1200) or not math.isfinite(pixel) or not tolerance > 0:
+        raise InputError(
+            f"manual pair {raw!r} must look like PIXEL=NM with 200-1200 nm and a positive tolerance, e.g. 812.4=632.8"
+        )
+    return ManualPair(pixel=pixel, wavelength_nm=wavelength, tolerance_nm=tolerance)
+
+
+def dispersion_range_for_grating(
+    lines_per_mm: float, *, frame_width_px: int, field_of_view_deg: tuple[float, float] = (35.0, 95.0),
+    centre_nm: float = 550.0,
+) -> tuple[float, float]:
+    """Plausible nm/px range for a grating of ``lines_per_mm`` in front of a webcam.
+
+    dispersion = d cos(beta) / f with f = (width / 2) / tan(fov / 2) (pinhole
+    camera) and beta from the grating equation at ``centre_nm``; the field of
+    view of webcams spans roughly 35-95 degrees (common practice, no source).
+    The range is widened by 25% each way.
+    """
+    if not lines_per_mm > 0:
+        raise InputError(f"`lines_per_mm` must be positive, was {lines_per_mm}")
+    if frame_width_px < 16:
+        raise InputError(f"`frame_width_px` must be at least 16, was {frame_width_px}")
+    beta = math.radians(diffraction_angle_deg(centre_nm, lines_per_mm=lines_per_mm))
+    d_nm = 1e6 / lines_per_mm
+    values = []
+    for fov in field_of_view_deg:
+        focal = 0.5 * frame_width_px / math.tan(math.radians(fov) / 2)
+        values.append(d_nm * math.cos(beta) / focal)
+    return (min(values) / 1.25, max(values) * 1.25)
+
+
+# --------------------------------------------------------------------------- internal data
+
+
+@dataclass(frozen=True)
+class _Peaks:
+    pixel: np.ndarray
+    sigma: np.ndarray
+    amplitude: np.ndarray
+    fwhm: np.ndarray
+    snr: np.ndarray
+    blended: np.ndarray
+    saturated: np.ndarray
+    lamp: np.ndarray  # lamp index of each peak (combined calibrations)
+
+
+@dataclass(frozen=True)
+class _Features:
+    wavelength: np.ndarray
+    intensity: np.ndarray
+    sigma: np.ndarray
+    species: tuple[str, ...]
+    members: tuple[tuple[float, ...], ...]
+    merged: np.ndarray  # bool
+
+
+@dataclass
+class _Candidate:
+    coefficients: np.ndarray
+    covariance: np.ndarray
+    peak_index: np.ndarray
+    feature_index: np.ndarray
+    used: np.ndarray
+    rejected: np.ndarray
+    features: _Features
+    score: float
+    rms_px: float
+    chi2: float
+    anchor: np.ndarray = None
+    resid_px: np.ndarray = None
+
+
+def _peaks_from_table(table: LineTable, lamp_index: int = 0) -> _Peaks:
+    if not isinstance(table, LineTable):
+        raise InputError(f"`lines` must be a LineTable from benchspec.lines.find_lines, got {type(table).__name__}")
+    if table.kind != "emission":
+        raise InputError("wavelength calibration needs emission lines; find lines with absorption=False")
+    lines = list(table.lines)
+    if not lines:
+        return _Peaks(*(np.zeros(0) for _ in range(5)), np.zeros(0, bool), np.zeros(0, bool), np.zeros(0, int))
+    fwhm = np.array([l.fwhm_px for l in lines])
+    typical = float(np.median(fwhm[np.argsort([-l.peak for l in lines])[:7]]))
+    keep = [l for l in lines if l.fwhm_px <= 3.0 * typical]  # broad bands are continuum, not lines
+    arr = lambda name: np.array([getattr(l, name) for l in keep], dtype=float)
+    return _Peaks(
+        pixel=arr("centre_px"),
+        sigma=np.hypot(arr("centre_uncertainty_px"), _CENTRE_FLOOR_PX),
+        amplitude=arr("peak"),
+        fwhm=arr("fwhm_px"),
+        snr=arr("snr"),
+        blended=np.array([l.blended for l in keep], dtype=bool),
+        saturated=np.array([l.saturated for l in keep], dtype=bool),
+        lamp=np.full(len(keep), lamp_index, dtype=int),
+    )
+
+
+def _concat_peaks(items: Sequence[_Peaks]) -> _Peaks:
+    names = _Peaks.__dataclass_fields__
+    merged = {n: np.concatenate([getattr(p, n) for p in items]) for n in names}
+    order = np.argsort(merged["pixel"], kind="stable")
+    return _Peaks(**{n: v[order] for n, v in merged.items()})
+
+
+def _reference_lines(lamp: Lamp, low_nm: float = 370.0, high_nm: float = 1000.0):
+    lines = [l for l in lamp.lines() if low_nm <= l.wavelength_nm <= high_nm and l.relative_intensity > 0]
+    if not lines:
+        raise CalibrationError(f"lamp {lamp.name!r} has no reference lines between {low_nm:g} and {high_nm:g} nm")
+    # Line lists of different species use different intensity scales; each is normalised to its strongest line.
+    peak = {}
+    for l in lines:
+        peak[l.species] = max(peak.get(l.species, 0.0), l.relative_intensity)
+    wavelength = np.array([l.wavelength_nm for l in lines])
+    intensity = np.array([l.relative_intensity / peak[l.species] for l in lines])
+    tolerance = np.array([l.tolerance_nm for l in lines])
+    species = tuple(l.species for l in lines)
+    return wavelength, intensity, tolerance, species
+
+
+def _cluster(reference, resolution_nm: float) -> _Features:
+    """Merge reference lines closer than ``resolution_nm`` into blend features."""
+    wavelength, intensity, tolerance, species = reference
+    groups: list[list[int]] = []
+    for i in range(wavelength.size):
+        if groups and wavelength[i] - wavelength[groups[-1][-1]] < resolution_nm:
+            groups[-1].append(i)
+        else:
+            groups.append([i])
+    out_w, out_i, out_s, out_sp, out_m, out_merged = [], [], [], [], [], []
+    for g in groups:
+        g = np.array(g)
+        strongest = intensity[g].max()
+        g = g[intensity[g] >= 0.03 * strongest]  # lines this faint barely move a blend's centre
+        weights = intensity[g]
+        centre = float(np.sum(weights * wavelength[g]) / np.sum(weights))
+        spread = float(np.sqrt(np.sum(weights * (wavelength[g] - centre) ** 2) / np.sum(weights)))
+        listed = float(np.sqrt(np.sum(weights * tolerance[g] ** 2) / np.sum(weights)))
+        dominant = int(g[np.argmax(weights)])
+        out_w.append(centre)
+        out_i.append(float(np.sum(weights)))
+        out_s.append(math.hypot(listed, spread))
+        out_sp.append(species[dominant])
+        out_m.append(tuple(float(wavelength[k]) for k in g))
+        out_merged.append(g.size > 1)
+    return _Features(np.array(out_w), np.array(out_i), np.array(out_s), tuple(out_sp), tuple(out_m), np.array(out_merged))
+
+
+def _normalise(pixel_low: float, pixel_high: float):
+    centre = 0.5 * (pixel_low + pixel_high)
+    scale = max(0.5 * (pixel_high - pixel_low), 1.0)
+    return centre, scale
+
+
+# --------------------------------------------------------------------------- hypotheses
+
+
+def _triplet_hypotheses(peaks: _Peaks, features: _Features, *, centre, scale, d_low, d_high, n_peaks=12, n_features=22):
+    """Quadratic hypotheses (coefficient arrays, shape (h, 3)) from ratio-of-spacings triplet matches."""
+    strong_peaks = np.sort(np.argsort(-peaks.amplitude)[:n_peaks])
+    strong_features = np.sort(np.argsort(-features.intensity)[:n_features])
+    if strong_peaks.size < 3 or strong_features.size < 3:
+        return np.zeros((0, 3))
+    pt = np.array(list(itertools.combinations(strong_peaks, 3)))
+    ft = np.array(list(itertools.combinations(strong_features, 3)))
+    p = peaks.pixel[pt]
+    w = features.wavelength[ft]
+    ws = features.sigma[ft]
+    ratio_p = (p[:, 1] - p[:, 0]) / (p[:, 2] - p[:, 0])
+    ratio_w = (w[:, 1] - w[:, 0]) / (w[:, 2] - w[:, 0])
+    ratio_tol = 0.05 + (ws.sum(axis=1) + 0.0) / (w[:, 2] - w[:, 0])
+    span_p = p[:, 2] - p[:, 0]
+    span_w = w[:, 2] - w[:, 0]
+    hypotheses = []
+    for direction in (1, -1):
+        target = ratio_w if direction == 1 else 1.0 - ratio_w
+        close = np.abs(ratio_p[:, None] - target[None, :]) < ratio_tol[None, :]
+        mean_disp = span_w[None, :] / span_p[:, None]
+        close &= (mean_disp >= d_low / 1.3) & (mean_disp <= d_high * 1.3)
+        ip, iw = np.nonzero(close)
+        if ip.size == 0:
+            continue
+        t = (p[ip] - centre) / scale
+        lam = w[iw] if direction == 1 else w[iw][:, ::-1]
+        # Quadratic through three points, solved for each hypothesis at once.
+        vander = np.stack([np.ones_like(t), t, t**2], axis=-1)
+        try:
+            coeffs = np.linalg.solve(vander, lam[..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            continue
+        hypotheses.append(coeffs)
+    if not hypotheses:
+        return np.zeros((0, 3))
+    return np.concatenate(hypotheses)
+
+
+def _pair_hypotheses(pairs: Sequence[ManualPair], *, centre, scale):
+    if len(pairs) < 2:
+        return np.zeros((0, 3))
+    p = np.array([m.pixel for m in pairs])
+    w = np.array([m.wavelength_nm for m in pairs])
+    t = (p - centre) / scale
+    order = 1 if len(pairs) < 4 else 2
+    coeffs = np.polynomial.polynomial.polyfit(t, w, order)
+    return np.pad(coeffs, (0, 3 - coeffs.size))[None, :]
+
+
+def _score_hypotheses(coeffs, peaks: _Peaks, features: _Features, *, centre, scale, d_low, d_high, tol_px, pairs, t_ends):
+    """Coarse score of each hypothesis: lines landing on a feature; invalid hypotheses score -inf."""
+    t = (peaks.pixel - centre) / scale
+    lam = coeffs[:, 0:1] + coeffs[:, 1:2] * t + coeffs[:, 2:3] * t**2
+    disp = (coeffs[:, 1:2] + 2 * coeffs[:, 2:3] * t) / scale
+    end_disp = (coeffs[:, 1:2] + 2 * coeffs[:, 2:3] * t_ends[None, :]) / scale
+    same_sign = np.sign(end_disp[:, 0]) == np.sign(end_disp[:, 1])
+    magnitude = np.abs(end_disp)
+    valid = same_sign & (magnitude.min(axis=1) >= d_low / 1.6) & (magnitude.max(axis=1) <= d_high * 1.6)
+    valid &= magnitude.max(axis=1) <= 1.8 * magnitude.min(axis=1)
+    order = np.argsort(features.wavelength)
+    fw = features.wavelength[order]
+    index = np.clip(np.searchsorted(fw, lam), 1, fw.size - 1)
+    left, right = fw[index - 1], fw[index]
+    nearest = np.where(np.abs(lam - left) < np.abs(lam - right), index - 1, index)
+    distance = np.abs(lam - fw[nearest])
+    allowed = tol_px * np.abs(disp) + features.sigma[order][nearest]
+    hit = distance < allowed
+    weight = 1.0 + 0.5 * (np.argsort(np.argsort(-peaks.amplitude)) < 6)
+    score = (hit * weight[None, :]).sum(axis=1)
+    for pair in pairs:
+        tp = (pair.pixel - centre) / scale
+        lp = coeffs[:, 0] + coeffs[:, 1] * tp + coeffs[:, 2] * tp**2
+        dp = np.abs(coeffs[:, 1] + 2 * coeffs[:, 2] * tp) / scale
+        valid &= np.abs(lp - pair.wavelength_nm) < 4.0 * dp + 3 * pair.tolerance_nm
+    return np.where(valid, score, -np.inf)
+
+
+# --------------------------------------------------------------------------- fitting
+
+
+def _weighted_polyfit(t, lam, sigma, order):
+    vander = np.stack([t**k for k in range(order + 1)], axis=-1)
+    weights = 1.0 / sigma
+    a = vander * weights[:, None]
+    b = lam * weights
+    coeffs, *_ = np.linalg.lstsq(a, b, rcond=None)
+    residual = lam - vander @ coeffs
+    chi2 = float(np.sum((residual / sigma) ** 2))
+    try:
+        cov = np.linalg.inv(a.T @ a)
+    except np.linalg.LinAlgError:
+        cov = np.full((order + 1, order + 1), np.inf)
+    return coeffs, cov, residual, chi2
+
+
+def _robust_fit(t, lam, sigma, *, max_order, monotonic_t):
+    """Weighted polynomial fit, outliers rejected at 4 robust sigma, order 1-3 by BIC.
+
+    Returns (coeffs, cov_scaled, keep_mask, chi2_reduced) or None.
+    """
+    n = t.size
+    if n < 2:
+        return None
+    keep = np.ones(n, dtype=bool)
+    base_order = 1 if n < 5 else 2
+    for _ in range(max(1, n // 3)):
+        if keep.sum() <= base_order + 2:
+            break
+        coeffs, _, residual, _ = _weighted_polyfit(t[keep], lam[keep], sigma[keep], base_order)
+        z = (lam - np.polynomial.polynomial.polyval(t, coeffs)) / sigma
+        spread = max(1.0, 1.4826 * float(np.median(np.abs(z[keep] - np.median(z[keep])))))
+        worst = int(np.argmax(np.where(keep, np.abs(z), -1)))
+        if abs(z[worst]) > 4.0 * spread and abs(z[worst]) > 4.0:
+            keep[worst] = False
+        else:
+            break
+    best = None
+    m = int(keep.sum())
+    for order in range(1, max_order + 1):
+        if m < order + 2 and not (order == 1 and m == 2):
+            break
+        coeffs, cov, residual, chi2 = _weighted_polyfit(t[keep], lam[keep], sigma[keep], order)
+        deriv = np.polynomial.polynomial.polyval(monotonic_t, np.polynomial.polynomial.polyder(coeffs))
+        if order > 1 and not (np.all(deriv > 0) or np.all(deriv < 0)):
+            continue  # a fold inside the range is never physical
+        bic = chi2 + (order + 1) * math.log(max(m, 2))
+        if best is None or bic < best[0] - 2.0:  # an order must earn its place (Delta BIC > 2)
+            best = (bic, coeffs, cov, chi2, order)
+    if best is None:
+        return None
+    _, coeffs, cov, chi2, order = best
+    dof = max(1, m - (order + 1))
+    reduced = chi2 / dof
+    return coeffs, cov * max(1.0, reduced), keep, reduced
+
+
+def _cluster_adaptive(reference, resolution_nm: float, predicted_nm: np.ndarray) -> _Features:
+    """Blend features that follow what was detected.
+
+    Lines closer than 0.8 resolution element can never be separated and are
+    merged. Neighbours up to 1.5 elements apart stay separate features only
+    if enough detected lines fall among them to account for each; otherwise
+    the group is one blend feature at its intensity-weighted centroid.
+    """
+    sub = _cluster(reference, 0.8 * resolution_nm)
+    groups: list[list[int]] = []
+    for k in range(sub.wavelength.size):
+        if groups and sub.wavelength[k] - sub.wavelength[groups[-1][-1]] < 1.5 * resolution_nm:
+            groups[-1].append(k)
+        else:
+            groups.append([k])
+    w, i, s, sp, m, merged = [], [], [], [], [], []
+    for g in groups:
+        if len(g) > 1:
+            strongest = max(sub.intensity[k] for k in g)
+            significant = [k for k in g if sub.intensity[k] >= 0.15 * strongest]
+            low = sub.wavelength[g[0]] - 0.6 * resolution_nm
+            high = sub.wavelength[g[-1]] + 0.6 * resolution_nm
+            seen = int(np.count_nonzero((predicted_nm >= low) & (predicted_nm <= high)))
+            if seen < len(significant):
+                weights = sub.intensity[g]
+                members = tuple(x for k in g for x in sub.members[k])
+                centre = float(np.sum(weights * sub.wavelength[g]) / np.sum(weights))
+                spread = float(np.sqrt(np.sum(weights * ((sub.wavelength[g] - centre) ** 2 + sub.sigma[g] ** 2)) / np.sum(weights)))
+                w.append(centre), i.append(float(np.sum(weights))), s.append(spread)
+                sp.append(sub.species[g[int(np.argmax(weights))]]), m.append(members), merged.append(True)
+                continue
+        for k in g:
+            w.append(float(sub.wavelength[k])), i.append(float(sub.intensity[k])), s.append(float(sub.sigma[k]))
+            sp.append(sub.species[k]), m.append(sub.members[k]), merged.append(bool(sub.merged[k]))
+    return _Features(np.array(w), np.array(i), np.array(s), tuple(sp), tuple(m), np.array(merged, dtype=bool))
+
+
+def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, pairs, max_order, n_trials=1):
+    """Iterative matching + robust fit from a starting polynomial. Returns a _Candidate or None."""
+    coeffs = np.trim_zeros(np.asarray(initial, dtype=float), "b")
+    if coeffs.size < 2:
+        return None
+    t = (peaks.pixel - centre) / scale
+    previous = None
+    result = None
+    for tol_px in (4.0, 3.0, 2.5, 2.0, 2.0, 2.0, 2.0):
+        lam = np.polynomial.polynomial.polyval(t, coeffs)
+        disp = np.abs(np.polynomial.polynomial.polyval(t, np.polynomial.polynomial.polyder(coeffs))) / scale
+        median_disp = float(np.median(disp)) if disp.size else 1.0
+        if not median_disp > 0 or not np.all(disp > 0):
+            return None
+        features = _cluster_adaptive(reference, fwhm * median_disp, lam)
+        fw = features.wavelength
+        cost = np.abs(lam[:, None] - fw[None, :]) / disp[:, None]  # px
+        allowed = tol_px + 0.3 * peaks.fwhm[:, None] + 2 * features.sigma[None, :] / disp[:, None] + 3 * peaks.sigma[:, None]
+        ok = cost < allowed
+        pi, fi = np.nonzero(ok)
+        order = np.argsort(cost[pi, fi])
+        taken_p, taken_f, chosen = set(), set(), []
+        for k in order:  # one detected line per feature, closest first
+            a, b = int(pi[k]), int(fi[k])
+            if a in taken_p or b in taken_f:
+                continue
+            taken_p.add(a)
+            taken_f.add(b)
+            chosen.append((a, b))
+        chosen.sort()
+        assignment = tuple(chosen)
+        if len(assignment) + len(pairs) < 2:
+            return None
+        p_idx = np.array([a for a, _ in assignment], dtype=int)
+        f_idx = np.array([b for _, b in assignment], dtype=int)
+        tt = np.r_[t[p_idx], [(m.pixel - centre) / scale for m in pairs]]
+        ll = np.r_[fw[f_idx], [m.wavelength_nm for m in pairs]]
+        ss = np.r_[
+            np.hypot(peaks.sigma[p_idx] * disp[p_idx], features.sigma[f_idx]),
+            [math.hypot(m.tolerance_nm, _CENTRE_FLOOR_PX * median_disp) for m in pairs],
+        ]
+        # The solution must not fold where there is light: over the lines' span and a margin beyond it.
+        margin = 0.15 * (tt.max() - tt.min())
+        monotonic_t = np.linspace(max(t_ends[0], tt.min() - margin), min(t_ends[1], tt.max() + margin), 33)
+        fit = _robust_fit(tt, ll, ss, max_order=min(max_order, max(1, tt.size - 2)), monotonic_t=monotonic_t)
+        if fit is None:
+            return None
+        new_coeffs, cov, keep, reduced = fit
+        result = (new_coeffs, cov, p_idx, f_idx, keep, reduced, features)
+        coeffs = new_coeffs
+        if assignment == previous and tol_px == 2.0:
+            break
+        previous = assignment
+    if result is None:
+        return None
+    coeffs, cov, p_idx, f_idx, keep, reduced, features = result
+    keep_lines = keep[: p_idx.size]
+    used = keep_lines.copy()
+    rejected = ~keep_lines
+    lam = np.polynomial.polynomial.polyval(t[p_idx], coeffs)
+    disp = np.abs(np.polynomial.polynomial.polyval(t[p_idx], np.polynomial.polynomial.polyder(coeffs))) / scale
+    resid_px = (features.wavelength[f_idx] - lam) / disp
+    anchor = used & (features.sigma[f_idx] / disp <= _FEATURE_FIT_LIMIT_PX)
+    basis = anchor if anchor.sum() >= 3 else used
+    rms = float(np.sqrt(np.mean(resid_px[basis] ** 2))) if basis.any() else np.inf
+    candidate = _Candidate(coeffs, cov, p_idx, f_idx, used, rejected, features, 0.0, rms, reduced)
+    candidate.anchor = anchor
+    candidate.resid_px = resid_px
+    candidate.score = _final_score(candidate, peaks, centre=centre, scale=scale, t_ends=t_ends, fwhm=fwhm, n_pairs=len(pairs))
+    return candidate
+
+
+def _final_score(c: _Candidate, peaks: _Peaks, *, centre, scale, t_ends, fwhm, n_pairs):
+    """Evidence for a solution in nats: how unlikely its matches are by chance (a-contrario style).
+
+    For each matched line the chance that a line dropped at random lands
+    within |residual| of some feature is about 2 |residual| times the local
+    feature density (features per px); the score sums -ln of those chances,
+    charges the polynomial's free parameters, and charges strong features
+    that fall in the range with no detected line near them.
+    """
+    f = c.features
+    t_feat = _invert(c.coefficients, f.wavelength, t_ends)
+    feature_px = t_feat * scale + centre
+    inside = np.isfinite(feature_px)
+    range_px = (t_ends[1] - t_ends[0]) * scale
+    score = 0.0
+    for k, (pi, fi) in enumerate(zip(c.peak_index, c.feature_index)):
+        if not c.used[k]:
+            continue
+        near = np.abs(feature_px[inside] - peaks.pixel[pi]) < 20 * fwhm
+        density = max(int(near.sum()), 1) / min(40 * fwhm, range_px)
+        width = 2 * max(abs(c.resid_px[k]), peaks.sigma[pi], 0.1)
+        score += -math.log(min(1.0, width * density))
+    score -= 1.5 * (c.coefficients.size - n_pairs if n_pairs < c.coefficients.size else 0)
+    # Brightness should roughly follow the listed intensities: a factor 10 either way is 1 sigma
+    # (camera response and lamp-to-lamp differences), so a bright line on a faint reference costs evidence.
+    use = c.used
+    if use.sum() >= 3:
+        log_peak = np.log(peaks.amplitude[c.peak_index[use]])
+        log_ref = np.log(np.maximum(f.intensity[c.feature_index[use]], 1e-6))
+        delta = (log_peak - np.median(log_peak)) - (log_ref - np.median(log_ref))
+        score -= float(np.sum(0.5 * (delta / math.log(10.0)) ** 2))
+    if c.feature_index.size:
+        level = 0.5 * float(np.median(f.intensity[c.feature_index]))
+        matched = set(c.feature_index.tolist())
+        for k in np.nonzero(inside & (f.intensity >= level))[0]:
+            if k in matched:
+                continue
+            if np.min(np.abs(peaks.pixel - feature_px[k])) > 2 * fwhm:
+                score -= 1.0
+    score -= 3.0 * max(0.0, c.rms_px - 0.5)
+    return score
+
+
+def _invert(coeffs, wavelength, t_ends):
+    grid = np.linspace(t_ends[0], t_ends[1], 512)
+    values = np.polynomial.polynomial.polyval(grid, coeffs)
+    if values[-1] < values[0]:
+        grid, values = grid[::-1], values[::-1]
+    return np.interp(wavelength, values, grid, left=np.nan, right=np.nan)
+
+
+def _distinct(a: _Candidate, b: _Candidate, t_probe, scale) -> bool:
+    la = np.polynomial.polynomial.polyval(t_probe, a.coefficients)
+    lb = np.polynomial.polynomial.polyval(t_probe, b.coefficients)
+    disp = np.abs(np.polynomial.polynomial.polyval(t_probe, np.polynomial.polynomial.polyder(a.coefficients))) / scale
+    return bool(np.max(np.abs(la - lb) / np.maximum(disp, 1e-9)) > 3.0)
+
+
+# --------------------------------------------------------------------------- the search
+
+
+def _search(peaks: _Peaks, reference, *, pixel_range, d_range, pairs, max_order):
+    """All refined candidates, best first."""
+    centre, scale = _normalise(*pixel_range)
+    t_ends = np.array([(pixel_range[0] - centre) / scale, (pixel_range[1] - centre) / scale])
+    t_probe = (peaks.pixel - centre) / scale if peaks.pixel.size else np.linspace(-1, 1, 5)
+    fwhm = float(np.median(peaks.fwhm[np.argsort(-peaks.amplitude)[:7]])) if peaks.pixel.size else 3.0
+    d_low, d_high = d_range
+    bands = []
+    edge = d_low
+    while edge < d_high:
+        bands.append((edge, min(edge * 1.6, d_high)))
+        edge *= 1.6
+    candidates: list[_Candidate] = []
+    seeds = []
+    for low, high in bands:
+        features = _cluster(reference, 1.2 * fwhm * math.sqrt(low * high))
+        coeffs = _triplet_hypotheses(peaks, features, centre=centre, scale=scale, d_low=low, d_high=high)
+        coeffs = np.concatenate([coeffs, _pair_hypotheses(pairs, centre=centre, scale=scale)])
+        if coeffs.shape[0] == 0:
+            continue
+        score = _score_hypotheses(coeffs, peaks, features, centre=centre, scale=scale, d_low=low, d_high=high,
+                                  tol_px=3.0 + 0.3 * fwhm, pairs=pairs, t_ends=t_ends)
+        finite = np.isfinite(score)
+        if not finite.any():
+            continue
+        order = np.argsort(-score)[: 400]
+        order = order[np.isfinite(score[order])]
+        kept = []
+        for k in order:
+            # keep hypotheses that differ (wavelengths at the ends and middle differ by > 3 px)
+            c = coeffs[k]
+            probe = c[0] + c[1] * np.array([-1.0, 0.0, 1.0]) + c[2] * np.array([1.0, 0.0, 1.0])
+            disp = abs(c[1]) / scale
+            if any(np.max(np.abs(probe - other)) < 3.0 * disp for other in kept):
+                continue
+            kept.append(probe)
+            seeds.append((float(score[k]), c))
+            if len(kept) >= 12:
+                break
+    seeds.sort(key=lambda s: -s[0])
+    for _, c in seeds[:60]:
+        refined = _refine(c, peaks, reference, centre=centre, scale=scale, fwhm=fwhm, t_ends=t_ends, pairs=pairs,
+                          max_order=max_order)
+        if refined is None:
+            continue
+        disp_ends = np.abs(np.polynomial.polynomial.polyval(t_ends, np.polynomial.polynomial.polyder(refined.coefficients))) / scale
+        if disp_ends.min() < d_low / 1.6 or disp_ends.max() > d_high * 1.6:
+            continue
+        candidates.append(refined)
+    candidates.sort(key=lambda c: -c.score)
+    distinct: list[_Candidate] = []
+    for c in candidates:
+        if all(_distinct(c, other, t_probe, scale) for other in distinct):
+            distinct.append(c)
+    return distinct, (centre, scale, t_ends, fwhm)
+
+
+def _explained(c: _Candidate, peaks: _Peaks):
+    """(fraction of the 5 strongest lines matched, fraction of line flux matched)."""
+    strongest = np.argsort(-peaks.amplitude)[: min(5, peaks.pixel.size)]
+    matched = np.zeros(peaks.pixel.size, dtype=bool)
+    matched[c.peak_index] = True
+    flux = peaks.amplitude * peaks.fwhm
+    return float(matched[strongest].mean()), float(flux[matched].sum() / max(flux.sum(), 1e-300))
+
+
+# Evidence (nats) a solution needs: chance matches over ~1e4 hypotheses stay well below it.
+_MIN_EVIDENCE = 14.0
+# A distinct runner-up within this many nats makes the match ambiguous (e^3 = 20 times less likely).
+_MIN_MARGIN = 3.0
+
+
+def _decide(candidates, peaks: _Peaks, *, lamp_label: str, pairs, context) -> _Candidate:
+    n_peaks = peaks.pixel.size
+    if not candidates:
+        raise CalibrationError(
+            f"no wavelength solution: the {n_peaks} detected lines do not match the {lamp_label} lines at any "
+            "dispersion in range; check --lamp, or add --hint-lines-per-mm or a --pair PIXEL=NM"
+        )
+    best = candidates[0]
+    n_used = int(best.used.sum())
+    need = 3 if pairs else 4
+    if n_used + len(pairs) < need:
+        raise CalibrationError(
+            f"only {n_used} of {n_peaks} detected lines match {lamp_label} lines; at least {need} are needed for a "
+            "trustworthy solution (3 with --pair); check --lamp, expose longer, or add --pair PIXEL=NM"
+        )
+    strong_fraction, flux_fraction = _explained(best, peaks)
+    if not pairs and (strong_fraction < 0.6 or flux_fraction < 0.5):
+        raise CalibrationError(
+            f"the lines do not fit {lamp_label}: the best match explains {strong_fraction:.0%} of the 5 brightest lines "
+            f"and {flux_fraction:.0%} of the line flux; check --lamp (or identify the source first)"
+        )
+    if best.rms_px > 1.0:
+        raise CalibrationError(
+            f"the best match to {lamp_label} leaves an RMS of {best.rms_px:.2f} px (limit 1 px); the lines are probably "
+            "not this lamp's, or the band is distorted; check --lamp and the geometry"
+        )
+    if not pairs and best.score < _MIN_EVIDENCE:
+        raise CalibrationError(
+            f"the best match to {lamp_label} ({n_used} lines) is not convincing: lines this many could fall on the "
+            f"lamp's lines by chance (evidence {best.score:.1f} of {_MIN_EVIDENCE:.0f} needed); check --lamp, "
+            "expose longer, or add --hint-lines-per-mm or a --pair PIXEL=NM"
+        )
+    if len(candidates) > 1 and candidates[1].score >= best.score - _MIN_MARGIN:
+        runner = candidates[1]
+        raise CalibrationError(
+            f"ambiguous: two different wavelength solutions fit {lamp_label} almost equally well "
+            f"({n_used} and {int(runner.used.sum())} lines); add --hint-lines-per-mm or a --pair PIXEL=NM"
+        )
+    return best
+
+
+def _build_result(best: _Candidate, peaks: _Peaks, *, lamps: Sequence[Lamp], pairs, context, pixel_range, extra_notes=()):
+    centre, scale, t_ends, fwhm = context
+    solution = WavelengthSolution(
+        coefficients=tuple(float(c) for c in best.coefficients),
+        covariance=tuple(tuple(float(v) for v in row) for row in best.covariance),
+        pixel_centre=float(centre),
+        pixel_scale=float(scale),
+        pixel_range=(float(pixel_range[0]), float(pixel_range[1])),
+    )
+    f = best.features
+    matches = []
+    for k, (pi, fi) in enumerate(zip(best.peak_index, best.feature_index)):
+        pixel = float(peaks.pixel[pi])
+        fitted = float(solution.wavelength_nm(pixel))
+        disp = abs(float(solution.dispersion_nm_per_px(pixel)))
+        lamp = lamps[int(peaks.lamp[pi])] if len(lamps) > int(peaks.lamp[pi]) else lamps[0]
+        matches.append(
+            MatchedLine(
+                pixel=pixel,
+                pixel_uncertainty=float(peaks.sigma[pi]),
+                reference_nm=float(f.wavelength[fi]),
+                reference_uncertainty_nm=float(f.sigma[fi]),
+                fitted_nm=fitted,
+                residual_nm=float(f.wavelength[fi] - fitted),
+                residual_px=float((f.wavelength[fi] - fitted) / disp),
+                species=f.species[fi],
+                members_nm=f.members[fi],
+                lamp=lamp.name,
+                used_in_fit=bool(best.used[k]),
+                anchor=bool(best.anchor[k]),
+                rejected=bool(best.rejected[k]),
+                blended=bool(f.merged[fi] or peaks.blended[pi]),
+                saturated=bool(peaks.saturated[pi]),
+                snr=float(peaks.snr[pi]),
+            )
+        )
+    for pair in pairs:
+        fitted = float(solution.wavelength_nm(pair.pixel))
+        disp = abs(float(solution.dispersion_nm_per_px(pair.pixel)))
+        matches.append(
+            MatchedLine(pair.pixel, 0.0, pair.wavelength_nm, pair.tolerance_nm, fitted, pair.wavelength_nm - fitted,
+                        (pair.wavelength_nm - fitted) / disp, "manual", (pair.wavelength_nm,), pair.label, True, True,
+                        False, False, False, float("nan"))
+        )
+    matches.sort(key=lambda m: m.pixel)
+    used = [m for m in matches if m.used_in_fit and m.anchor]
+    if len(used) < 3:
+        used = [m for m in matches if m.used_in_fit]
+    rms_px = float(np.sqrt(np.mean([m.residual_px**2 for m in used])))
+    rms_nm = float(np.sqrt(np.mean([m.residual_nm**2 for m in used])))
+    grid = np.linspace(pixel_range[0], pixel_range[1], 257)
+    max_sigma = float(np.max(solution.uncertainty_nm(grid)))
+    used_pixels = [m.pixel for m in used]
+    coverage = (max(used_pixels) - min(used_pixels)) / max(pixel_range[1] - pixel_range[0], 1.0)
+    notes = list(extra_notes)
+    n_loose = sum(1 for m in matches if m.used_in_fit and not m.anchor)
+    if n_loose:
+        notes.append(f"{n_loose} matched line(s) with loosely known wavelengths (blends, phosphor bands) were fitted "
+                     "with their larger uncertainty and left out of the RMS")
+    for m in matches:
+        if m.rejected:
+            notes.append(f"line at {m.pixel:.1f} px ({m.reference_nm:.2f} nm) rejected as an outlier ({m.residual_px:+.2f} px)")
+    if any(m.saturated and m.used_in_fit for m in matches):
+        notes.append("saturated lines were fitted from their unclipped wings; shorten the exposure for better centres")
+    n_fit = sum(1 for m in matches if m.used_in_fit)
+    n_anchor = sum(1 for m in matches if m.used_in_fit and m.anchor)
+    summary = f"{n_fit} lines fitted ({n_anchor} with tightly known wavelengths), RMS {rms_px:.2f} px, lines span {coverage:.0%} of the range"
+    if n_fit >= 5 and n_anchor >= 3 and rms_px <= 0.3 and coverage >= 0.4:
+        verdict, reason = "good", summary
+    elif n_fit >= 4 and rms_px <= 0.6:
+        verdict, reason = "fair", summary
+        if coverage < 0.4:
+            reason += "; wavelengths outside the calibrated lines are extrapolated"
+    else:
+        verdict = "poor"
+        reason = summary + "; add lines (another lamp, --pair) before trusting it"
+    sources = tuple(dict.fromkeys(f"{ll.species}: {ll.source}" for lamp in lamps for ll in lamp.line_lists()))
+    return WavelengthCalibration(
+        solution=solution,
+        matches=tuple(matches),
+        rms_px=rms_px,
+        rms_nm=rms_nm,
+        max_uncertainty_nm=max_sigma,
+        verdict=verdict,
+        verdict_reason=reason,
+        lamps=tuple(dict.fromkeys(l.name for l in lamps)),
+        line_list_sources=sources,
+        coverage_fraction=float(coverage),
+        n_detected=int(peaks.pixel.size),
+        notes=tuple(notes),
+    )
+
+
+# --------------------------------------------------------------------------- public entry points
+
+
+def _as_lamp(lamp) -> Lamp:
+    if isinstance(lamp, Lamp):
+        return lamp
+    if not isinstance(lamp, str):
+        raise InputError(f"`lamp` must be a lamp name such as 'cfl', got {type(lamp).__name__}")
+    return load_lamp(lamp)
+
+
+def _check_options(d_range, max_order, pairs):
+    low, high = (float(v) for v in d_range)
+    if not (0 < low < high):
+        raise InputError(f"`dispersion_range_nm_per_px` must be (low, high) with 0 < low < high, was {d_range}")
+    if max_order not in (1, 2, 3):
+        raise InputError(f"`max_order` must be 1, 2 or 3, was {max_order}")
+    for pair in pairs:
+        if not isinstance(pair, ManualPair):
+            raise InputError(f"`pairs` must hold ManualPair objects (see parse_pair), got {type(pair).__name__}")
+    return (low, high)
+
+
+def calibrate_lines(
+    lines: LineTable,
+    *,
+    lamp: str | Lamp = "cfl",
+    pairs: Sequence[ManualPair] = (),
+    dispersion_range_nm_per_px: tuple[float, float] = (0.1, 3.0),
+    max_order: int = 3,
+    suggest_lamps: bool = True,
+) -> WavelengthCalibration:
+    """Calibrate a line table against a lamp's reference lines, with no first guess.
+
+    Parameters
+    ----------
+    lines : LineTable
+        Emission lines of the lamp frame (``benchspec.lines.find_lines``).
+    lamp : str or Lamp
+        Lamp name (``"cfl"``, ``"hg"``, ``"ne"``, ``"he"``, ``"h"``, ``"ar"``, ``"kr"``, ``"xe"``, ``"na"``).
+    pairs : sequence of ManualPair
+        Extra fixed points (e.g. a laser), used in the fit and to constrain the search.
+    dispersion_range_nm_per_px : (float, float)
+        Allowed |nm/px|; narrow it with :func:`dispersion_range_for_grating` when the grating is known.
+    max_order : int
+        Highest polynomial order considered (1-3); the data choose the order.
+    suggest_lamps : bool
+        On failure, try the other lamps and name one that fits in the error message.
+
+    Returns
+    -------
+    WavelengthCalibration
+
+    Raises
+    ------
+    CalibrationError
+        Fewer than 3 usable lines, lines that fit no solution, a wrong lamp,
+        an ambiguous match, or an RMS above 1 px.
+    """
+    d_range = _check_options(dispersion_range_nm_per_px, max_order, pairs)
+    lamp_obj = _as_lamp(lamp)
+    peaks = _peaks_from_table(lines)
+    pixel_range = (min(lines.pixel_range), max(lines.pixel_range))
+    return _calibrate_peaks(peaks, [lamp_obj], pixel_range=pixel_range, d_range=d_range, pairs=tuple(pairs),
+                            max_order=max_order, suggest_lamps=suggest_lamps)
+
+
+def _calibrate_peaks(peaks, lamps, *, pixel_range, d_range, pairs, max_order, suggest_lamps, extra_notes=()):
+    label = " + ".join(f"lamp {l.name!r}" for l in lamps)
+    if peaks.pixel.size + len(pairs) < 3:
+        raise CalibrationError(
+            f"only {peaks.pixel.size} emission lines were detected; at least 3 are needed (4 without manual pairs); "
+            "check the lamp is on and in view, expose longer, or add --pair PIXEL=NM"
+        )
+    wavelength, intensity, tolerance, species = [], [], [], []
+    for lamp in lamps:
+        w, i, t, s = _reference_lines(lamp)
+        wavelength.append(w), intensity.append(i), tolerance.append(t), species.extend(s)
+    order = np.argsort(np.concatenate(wavelength), kind="stable")
+    reference = (np.concatenate(wavelength)[order], np.concatenate(intensity)[order], np.concatenate(tolerance)[order],
+                 tuple(np.array(species, dtype=object)[order]))
+    candidates, context = _search(peaks, reference, pixel_range=pixel_range, d_range=d_range, pairs=pairs,
+                                  max_order=max_order)
+    try:
+        best = _decide(candidates, peaks, lamp_label=label, pairs=pairs, context=context)
+    except CalibrationError as exc:
+        if suggest_lamps and len(lamps) == 1 and not pairs:
+            hint = _suggest_other_lamp(peaks, lamps[0].name, pixel_range=pixel_range, d_range=d_range, max_order=max_order)
+            if hint:
+                raise CalibrationError(f"{exc}; the lines fit lamp {hint!r}: try --lamp {hint}") from None
+        raise
+    return _build_result(best, peaks, lamps=lamps, pairs=pairs, context=context, pixel_range=pixel_range,
+                         extra_notes=extra_notes)
+
+
+def _suggest_other_lamp(peaks, current, *, pixel_range, d_range, max_order):
+    for name in available_lamps():
+        if name == current:
+            continue
+        try:
+            other = _calibrate_peaks(peaks, [load_lamp(name)], pixel_range=pixel_range, d_range=d_range, pairs=(),
+                                     max_order=max_order, suggest_lamps=False)
+        except CalibrationError:
+            continue
+        if other.verdict == "good":
+            return name
+    return None
+
+
+def calibrate_spectrum(
+    spectrum: Spectrum,
+    *,
+    lamp: str | Lamp = "cfl",
+    min_snr: float = 5.0,
+    pairs: Sequence[ManualPair] = (),
+    dispersion_range_nm_per_px: tuple[float, float] = (0.1, 3.0),
+    max_order: int = 3,
+) -> WavelengthCalibration:
+    """Find the emission lines of a lamp spectrum (pixel axis) and calibrate them; see :func:`calibrate_lines`."""
+    table = find_lines(spectrum, min_snr=min_snr)
+    return calibrate_lines(table, lamp=lamp, pairs=pairs, dispersion_range_nm_per_px=dispersion_range_nm_per_px,
+                           max_order=max_order)
+
+
+def calibrate_combined(
+    observations: Sequence[tuple[LineTable, str | Lamp]],
+    *,
+    pairs: Sequence[ManualPair] = (),
+    dispersion_range_nm_per_px: tuple[float, float] = (0.1, 3.0),
+    max_order: int = 3,
+) -> WavelengthCalibration:
+    """One solution from frames of several lamps taken with the same setup.
+
+    Each lamp's lines are matched only to that lamp's reference lines. The
+    lamps that can be solved alone seed the solution; then every lamp's lines
+    are matched with it and one polynomial is fitted to all of them.
+
+    Parameters
+    ----------
+    observations : sequence of (LineTable, lamp)
+        Line tables on the same pixel axis, each with its lamp.
+    """
+    d_range = _check_options(dispersion_range_nm_per_px, max_order, pairs)
+    if not observations:
+        raise InputError("`observations` is empty; give at least one (line table, lamp) pair")
+    lamps = [_as_lamp(l) for _, l in observations]
+    tables = [t for t, _ in observations]
+    if len(tables) == 1:
+        return calibrate_lines(tables[0], lamp=lamps[0], pairs=pairs, dispersion_range_nm_per_px=d_range, max_order=max_order)
+    ranges = [t.pixel_range for t in tables]
+    pixel_range = (min(min(r) for r in ranges), max(max(r) for r in ranges))
+    seeds = []
+    for table, lamp in zip(tables, lamps):
+        try:
+            seeds.append(calibrate_lines(table, lamp=lamp, pairs=pairs, dispersion_range_nm_per_px=d_range,
+                                         max_order=max_order, suggest_lamps=False))
+        except CalibrationError:
+            continue
+    all_peaks = _concat_peaks([_peaks_from_table(t, k) for k, t in enumerate(tables)])
+    if not seeds:
+        # Nothing solvable alone: match the union of lines against the union of the lamps' lines.
+        return _calibrate_peaks(all_peaks, lamps, pixel_range=pixel_range, d_range=d_range, pairs=tuple(pairs),
+                                max_order=max_order, suggest_lamps=False)
+    seed = max(seeds, key=lambda s: (s.n_used, -s.rms_px))
+    centre, scale = _normalise(*pixel_range)
+    t_ends = np.array([(pixel_range[0] - centre) / scale, (pixel_range[1] - centre) / scale])
+    # Re-express the seed polynomial in the combined normalisation.
+    grid = np.linspace(pixel_range[0], pixel_range[1], 64)
+    start = np.polynomial.polynomial.polyfit((grid - centre) / scale, seed.solution.wavelength_nm(grid), seed.solution.order)
+    matched = []
+    for k, (table, lamp) in enumerate(zip(tables, lamps)):
+        peaks = _peaks_from_table(table, k)
+        if peaks.pixel.size == 0:
+            continue
+        w, i, t, s = _reference_lines(lamp)
+        fwhm = float(np.median(peaks.fwhm))
+        candidate = _refine(start, peaks, (w, i, t, s), centre=centre, scale=scale, fwhm=fwhm, t_ends=t_ends, pairs=(),
+                            max_order=max_order)
+        if candidate is None:
+            continue
+        matched.append((peaks, candidate))
+    if not matched:
+        return seed
+    # Joint fit over every lamp's matches.
+    tt, ll, ss, owners = [], [], [], []
+    for peaks, c in matched:
+        disp = np.abs(np.polynomial.polynomial.polyval((peaks.pixel[c.peak_index] - centre) / scale,
+                                                       np.polynomial.polynomial.polyder(c.coefficients))) / scale
+        for j, (pi, fi) in enumerate(zip(c.peak_index, c.feature_index)):
+            if c.features.sigma[fi] / disp[j] > _FEATURE_FIT_LIMIT_PX:
+                continue
+            tt.append((peaks.pixel[pi] - centre) / scale)
+            ll.append(c.features.wavelength[fi])
+            ss.append(math.hypot(peaks.sigma[pi] * disp[j], c.features.sigma[fi]))
+    for pair in pairs:
+        tt.append((pair.pixel - centre) / scale), ll.append(pair.wavelength_nm), ss.append(pair.tolerance_nm)
+    fit = _robust_fit(np.array(tt), np.array(ll), np.array(ss), max_order=min(max_order, max(1, len(tt) - 2)),
+                      monotonic_t=np.linspace(t_ends[0], t_ends[1], 33))
+    if fit is None:
+        return seed
+    coeffs, cov, keep, reduced = fit
+    # Rebuild one candidate over the union of peaks so the result lists every lamp's matches.
+    reference_parts = [_reference_lines(l) for l in lamps]
+    w = np.concatenate([r[0] for r in reference_parts])
+    order = np.argsort(w, kind="stable")
+    reference = (w[order], np.concatenate([r[1] for r in reference_parts])[order],
+                 np.concatenate([r[2] for r in reference_parts])[order],
+                 tuple(np.array([s for r in reference_parts for s in r[3]], dtype=object)[order]))
+    fwhm = float(np.median(all_peaks.fwhm))
+    union = _refine(coeffs, all_peaks, reference, centre=centre, scale=scale, fwhm=fwhm, t_ends=t_ends, pairs=tuple(pairs),
+                    max_order=max_order)
+    if union is None or union.used.sum() < seed.n_used:
+        return seed
+    context = (centre, scale, t_ends, fwhm)
+    return _build_result(union, all_peaks, lamps=lamps, pairs=tuple(pairs), context=context, pixel_range=pixel_range,
+                         extra_notes=(f"combined {len(tables)} frames of lamps {', '.join(l.name for l in lamps)}",))
