@@ -310,8 +310,14 @@ def _find_key(obj: Any, names: Sequence[str]) -> Any:
         current = queue.pop(0)
         if isinstance(current, Mapping):
             for name in names:
-                if name in current and not isinstance(current[name], (Mapping, list)):
-                    return current[name]
+                value = current.get(name)
+                if value is None or isinstance(value, Mapping):
+                    continue
+                if isinstance(value, list):
+                    if value and all(isinstance(v, (str, int, float)) for v in value):
+                        return "; ".join(str(v) for v in value)
+                    continue
+                return value
             queue.extend(v for v in current.values() if isinstance(v, (Mapping, list)))
         elif isinstance(current, list):
             queue.extend(v for v in current if isinstance(v, (Mapping, list)))
@@ -319,10 +325,10 @@ def _find_key(obj: Any, names: Sequence[str]) -> Any:
 
 
 _CALIBRATION_KEYS = {
-    "lamp": ("lamp", "lamp_name"),
+    "lamp": ("lamp", "lamp_name", "lamps"),
     "rms_nm": ("rms_nm",),
     "rms_px": ("rms_px", "rms_pixels"),
-    "line_list_source": ("line_list_source", "source_of_line_list", "lines_source"),
+    "line_list_source": ("line_list_source", "line_list_sources", "source_of_line_list", "lines_source"),
     "polynomial_order": ("polynomial_order", "order"),
     "verdict": ("verdict", "quality"),
 }

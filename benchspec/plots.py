@@ -184,7 +184,7 @@ def normalise_residuals(residuals) -> dict | None:
             continue
         wavelength.append(float(w))
         residual.append(float(r))
-        used.append(bool(row.get("used", not row.get("rejected", False))))
+        used.append(bool(row.get("used", row.get("used_in_fit", not row.get("rejected", False)))))
         labels.append(str(row.get("label") or row.get("species") or ""))
     if not wavelength:
         return None
