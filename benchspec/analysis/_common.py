@@ -152,6 +152,29 @@ def fit_gaussian_line(x, y, sigma, *, centre_guess: float, width_guess: float, a
     }
 
 
+def parabolic_vertex(x, y, sigma, index: int):
+    """Vertex of the parabola through samples ``index-1, index, index+1`` and its 1-sigma.
+
+    Returns (position, uncertainty) in the units of ``x``; None at the ends or
+    when the three samples do not form an extremum.
+    """
+    if index <= 0 or index >= len(y) - 1:
+        return None
+    y0, y1, y2 = float(y[index - 1]), float(y[index]), float(y[index + 1])
+    denom = y0 - 2 * y1 + y2
+    if denom == 0:
+        return None
+    delta = 0.5 * (y0 - y2) / denom
+    if abs(delta) > 1:
+        return None
+    step = 0.5 * (float(x[index + 1]) - float(x[index - 1]))
+    d0 = 0.5 / denom - 0.5 * (y0 - y2) / denom**2
+    d1 = (y0 - y2) / denom**2
+    d2 = -0.5 / denom - 0.5 * (y0 - y2) / denom**2
+    err = step * float(np.sqrt((d0 * sigma[index - 1]) ** 2 + (d1 * sigma[index]) ** 2 + (d2 * sigma[index + 1]) ** 2))
+    return float(x[index]) + delta * step, err
+
+
 def interpolate_onto(spectrum: Spectrum, wavelength_nm: np.ndarray, *, name: str):
     """Intensity, uncertainty and saturation of ``spectrum`` on another wavelength grid (linear interpolation).
 

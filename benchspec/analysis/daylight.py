@@ -1,0 +1,371 @@
+"""The dark lines of daylight: Fraunhofer lines and telluric bands.
+
+A daylight spectrum (sunlight scattered from a white card or the sky - never
+the Sun itself) is divided by its continuum; the dips are found, centred,
+and labelled with their classical letters (C = H-alpha, D = sodium, ...).
+The O2 and H2O bands formed in our own atmosphere are marked as telluric.
+
+The reference set (``calibration/fraunhofer.csv``) is also offered as a
+:class:`~benchspec.refdata.LineList`, so a wavelength calibration can use
+daylight when no lamp is at hand, and :func:`find_absorption_features` works
+on an uncalibrated (pixel) spectrum for the same purpose.
+"""
+
+from __future__ import annotations
+
+import csv
+import functools
+import io
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.ndimage import percentile_filter
+from scipy.signal import find_peaks
+
+from ..errors import AnalysisError, FileFormatError, InputError
+from ..refdata import LineList, ReferenceLine, read_data_text
+from ..spectrum import Spectrum
+from ._common import gaussian_smooth, parabolic_vertex, positive_uncertainty, require_calibrated, sample_step_nm
+
+__all__ = [
+    "DaylightReferenceLine",
+    "AbsorptionFeature",
+    "DaylightLine",
+    "DaylightResult",
+    "load_daylight_lines",
+    "daylight_line_list",
+    "continuum_normalise",
+    "find_absorption_features",
+    "identify_daylight_lines",
+]
+
+
+@dataclass(frozen=True)
+class DaylightReferenceLine:
+    """One reference dark line of daylight (air wavelength)."""
+
+    label: str
+    wavelength_nm: float
+    species: str
+    origin: str  # "solar" or "telluric"
+    depth: float
+    width_nm: float
+
+    @property
+    def atmospheric(self) -> bool:
+        """True for bands formed in the Earth's atmosphere (O2, H2O)."""
+        return self.origin == "telluric"
+
+
+@functools.lru_cache(maxsize=1)
+def load_daylight_lines() -> tuple[DaylightReferenceLine, ...]:
+    """The Fraunhofer and telluric lines of ``calibration/fraunhofer.csv``, by wavelength.
+
+    The file's header names its sources; depths and widths are rough
+    typical values for a low-resolution spectrum.
+    """
+    text = read_data_text("fraunhofer.csv")
+    body = "\n".join(line for line in text.splitlines() if line.strip() and not line.startswith("#"))
+    rows = []
+    for number, row in enumerate(csv.DictReader(io.StringIO(body)), start=2):
+        try:
+            rows.append(
+                DaylightReferenceLine(
+                    label=row["label"].strip(),
+                    wavelength_nm=float(row["wavelength_nm"]),
+                    species=row["species"].strip(),
+                    origin=row["origin"].strip(),
+                    depth=float(row["depth"]),
+                    width_nm=float(row["width_nm"]),
+                )
+            )
+        except (KeyError, TypeError, ValueError, AttributeError) as exc:
+            raise FileFormatError(f"calibration/fraunhofer.csv: data row {number} is malformed ({exc})") from None
+    return tuple(sorted(rows, key=lambda r: r.wavelength_nm))
+
+
+def _fraunhofer_source() -> str:
+    for line in read_data_text("fraunhofer.csv").splitlines():
+        if line.lower().startswith("# source:"):
+            return line.split(":", 1)[1].strip()
+    return "calibration/fraunhofer.csv"
+
+
+def daylight_line_list(*, include_telluric: bool = True) -> LineList:
+    """The daylight reference lines as a :class:`~benchspec.refdata.LineList` for wavelength calibration.
+
+    ``relative_intensity`` holds the typical depth (0-1) of each dip;
+    ``tolerance_nm`` is half the line's typical width at low resolution
+    (at least 0.1 nm); ``note`` holds the classical letter. Broad bands
+    (width over 2 nm, e.g. the H2O band) are marked ``calibration=False``.
+    Absorption lines: find them with ``absorption=True`` in line finding.
+    """
+    lines = []
+    for ref in load_daylight_lines():
+        if ref.atmospheric and not include_telluric:
+            continue
+        species, _, ion = ref.species.partition(" ")
+        lines.append(
+            ReferenceLine(
+                wavelength_nm=ref.wavelength_nm,
+                relative_intensity=ref.depth,
+                species=ref.species,
+                ion=ion if ion in ("I", "II") else "",
+                tolerance_nm=max(0.1, ref.width_nm / 2),
+                calibration=ref.width_nm <= 2.0,
+                note=f"{ref.label} ({ref.origin})",
+            )
+        )
+    return LineList(
+        species="Fraunhofer",
+        name="Dark lines of daylight",
+        source=_fraunhofer_source(),
+        medium="air",
+        intensity_scale="typical depth below the continuum (0-1)",
+        lines=tuple(lines),
+    )
+
+
+def continuum_normalise(spectrum: Spectrum, *, window_nm: float = 20.0, percentile: float = 90.0) -> Spectrum:
+    """Divide a spectrum by its continuum (upper envelope), so dips read as depth below 1.
+
+    The continuum is a running ``percentile`` over ``window_nm`` (the dips
+    fill less than a tenth of the window, so they do not pull it down),
+    smoothed with a Gaussian of a quarter of the window. Works on an
+    uncalibrated spectrum too, with ``window_nm`` then read as pixels.
+
+    Returns
+    -------
+    Spectrum
+        Same samples; intensity and uncertainty divided by the continuum;
+        provenance records ``continuum_normalised``.
+    """
+    if not isinstance(spectrum, Spectrum):
+        raise InputError(f"`spectrum` must be a benchspec Spectrum, got {type(spectrum).__name__}")
+    if not window_nm > 0:
+        raise InputError(f"`window_nm` must be positive, was {window_nm}")
+    if not 50 <= percentile <= 100:
+        raise InputError(f"`percentile` must be in 50-100, was {percentile}")
+    x = spectrum.wavelength_nm if spectrum.is_calibrated else spectrum.pixel
+    step = float(np.median(np.diff(x)))
+    size = max(5, int(round(window_nm / step)) | 1)
+    if size >= spectrum.size:
+        raise InputError(f"`window_nm` = {window_nm:g} covers the whole spectrum ({spectrum.size} samples); use a smaller window")
+    y = np.where(np.isfinite(spectrum.intensity), spectrum.intensity, np.nanmedian(spectrum.intensity))
+    envelope = percentile_filter(y, percentile, size=size, mode="nearest")
+    continuum, _ = gaussian_smooth(envelope, size / 4)
+    floor = 1e-6 * float(np.nanmax(np.abs(continuum)))
+    if not np.nanmax(continuum) > 0:
+        raise AnalysisError("the spectrum has no positive continuum to normalise by; check it is a daylight spectrum, dark-subtracted")
+    continuum = np.where(continuum > floor, continuum, np.nan)
+    provenance = dict(spectrum.provenance)
+    provenance["continuum_normalised"] = {"window_nm": float(window_nm), "percentile": float(percentile)}
+    return spectrum.with_(
+        intensity=spectrum.intensity / continuum,
+        uncertainty=spectrum.uncertainty / continuum,
+        provenance=provenance,
+    )
+
+
+@dataclass(frozen=True)
+class AbsorptionFeature:
+    """A dip below the continuum. ``wavelength_nm`` is None for an uncalibrated spectrum."""
+
+    centre_px: float
+    wavelength_nm: float | None
+    uncertainty_nm: float | None
+    depth: float
+    depth_uncertainty: float
+    width_nm: float | None
+
+
+def find_absorption_features(
+    normalised: Spectrum,
+    *,
+    min_depth: float = 0.03,
+    min_snr: float = 4.0,
+    max_width_nm: float = 12.0,
+) -> tuple[AbsorptionFeature, ...]:
+    """Dips in a continuum-normalised spectrum (see :func:`continuum_normalise`).
+
+    A dip counts when its depth below the local continuum (its prominence)
+    is at least ``min_depth`` and ``min_snr`` times the noise. The centre is
+    the vertex of a parabola through the three lowest samples, with its
+    uncertainty propagated from the noise (and the calibration uncertainty
+    when the spectrum carries one).
+    """
+    if not isinstance(normalised, Spectrum):
+        raise InputError(f"`normalised` must be a benchspec Spectrum, got {type(normalised).__name__}")
+    if not 0 < min_depth < 1:
+        raise InputError(f"`min_depth` must be between 0 and 1, was {min_depth}")
+    y = np.where(np.isfinite(normalised.intensity), normalised.intensity, 1.0)
+    sigma = positive_uncertainty(normalised)
+    calibrated = normalised.is_calibrated
+    x = normalised.wavelength_nm if calibrated else normalised.pixel
+    step = float(np.median(np.diff(x)))
+    noise = float(np.median(sigma))
+    width_samples = max_width_nm / step if calibrated else max_width_nm
+    peaks, props = find_peaks(-y, prominence=max(min_depth, min_snr * noise), width=(None, width_samples))
+    features = []
+    for k, index in enumerate(peaks):
+        vertex = parabolic_vertex(x, -y, sigma, int(index))
+        if vertex is None:
+            position, err = float(x[index]), step / np.sqrt(12)
+        else:
+            position, err = vertex
+        pixel = float(np.interp(position, x, normalised.pixel)) if calibrated else position
+        wavelength = uncertainty = width = None
+        if calibrated:
+            wavelength = position
+            cal = 0.0
+            if normalised.wavelength_uncertainty_nm is not None:
+                cal = float(np.interp(position, x, normalised.wavelength_uncertainty_nm))
+            uncertainty = float(np.hypot(err, cal))
+            width = float(props["widths"][k] * step)
+        features.append(
+            AbsorptionFeature(
+                centre_px=pixel,
+                wavelength_nm=wavelength,
+                uncertainty_nm=uncertainty,
+                depth=float(props["prominences"][k]),
+                depth_uncertainty=float(np.hypot(sigma[index], noise)),
+                width_nm=width,
+            )
+        )
+    return tuple(features)
+
+
+@dataclass(frozen=True)
+class DaylightLine:
+    """A dip found in daylight, with its label where it matches a reference line.
+
+    ``label``, ``species`` and ``origin`` are None for an unidentified dip;
+    a dip matching several unresolved lines (Na D1 + D2 at low resolution)
+    has joined labels ("D2+D1").
+    """
+
+    wavelength_nm: float
+    uncertainty_nm: float
+    depth: float
+    label: str | None
+    species: str | None
+    origin: str | None
+    atmospheric: bool | None
+    reference_nm: tuple[float, ...]
+    offset_nm: float | None
+
+
+@dataclass(frozen=True)
+class DaylightResult:
+    """Lines found in a daylight spectrum and the normalised spectrum they were found in."""
+
+    lines: tuple[DaylightLine, ...]
+    normalised: Spectrum
+    tolerance_nm: float
+    missing_labels: tuple[str, ...]
+
+    @property
+    def identified(self) -> tuple[DaylightLine, ...]:
+        return tuple(l for l in self.lines if l.label is not None)
+
+
+def identify_daylight_lines(
+    spectrum: Spectrum,
+    *,
+    tolerance_nm: float | None = None,
+    window_nm: float = 20.0,
+    min_depth: float = 0.03,
+    min_snr: float = 4.0,
+) -> DaylightResult:
+    """Continuum-normalise a daylight spectrum, find its dips and label them.
+
+    Parameters
+    ----------
+    spectrum : Spectrum
+        Calibrated daylight spectrum (air wavelengths).
+    tolerance_nm : float, optional
+        Largest distance between a dip and its reference line; default the
+        larger of 1.5 nm and 2 samples plus 3x the calibration uncertainty.
+        Broad telluric bands (O2 A, B; H2O) get half their typical width on
+        top, because their deepest point sits a little red of the band head.
+    window_nm, min_depth, min_snr
+        See :func:`continuum_normalise` and :func:`find_absorption_features`.
+
+    Raises
+    ------
+    AnalysisError
+        When no dip is found at all.
+
+    Notes
+    -----
+    Each reference line is given to the nearest dip within tolerance; a dip
+    given several lines is reported as their blend.
+    """
+    spectrum = require_calibrated(spectrum)
+    step = sample_step_nm(spectrum.wavelength_nm)
+    if tolerance_nm is None:
+        cal = 0.0
+        if spectrum.wavelength_uncertainty_nm is not None:
+            cal = float(np.nanmedian(spectrum.wavelength_uncertainty_nm))
+        tolerance_nm = max(1.5, 2 * step) + 3 * cal
+    if not tolerance_nm > 0:
+        raise InputError(f"`tolerance_nm` must be positive, was {tolerance_nm}")
+    normalised = continuum_normalise(spectrum, window_nm=window_nm)
+    features = find_absorption_features(normalised, min_depth=min_depth, min_snr=min_snr)
+    wl = spectrum.wavelength_nm
+    if not features:
+        raise AnalysisError(
+            f"no absorption lines deeper than {100 * min_depth:g}% found in {wl[0]:.0f}-{wl[-1]:.0f} nm; "
+            "check it is a daylight spectrum, not saturated, with enough signal (stack frames)"
+        )
+    centres = np.array([f.wavelength_nm for f in features])
+    assigned: dict[int, list[DaylightReferenceLine]] = {}
+    missing = []
+    for ref in load_daylight_lines():
+        if not (wl[0] <= ref.wavelength_nm <= wl[-1]):
+            continue
+        allowed = tolerance_nm + (ref.width_nm / 2 if ref.atmospheric else 0.0)
+        distance = np.abs(centres - ref.wavelength_nm)
+        best = int(np.argmin(distance))
+        if distance[best] <= allowed:
+            assigned.setdefault(best, []).append(ref)
+        else:
+            missing.append(ref.label)
+    lines = []
+    for index, feature in enumerate(features):
+        refs = assigned.get(index, [])
+        if refs:
+            species = []
+            for r in refs:
+                if r.species not in species:
+                    species.append(r.species)
+            origins = {r.origin for r in refs}
+            reference = tuple(r.wavelength_nm for r in refs)
+            lines.append(
+                DaylightLine(
+                    wavelength_nm=feature.wavelength_nm,
+                    uncertainty_nm=feature.uncertainty_nm,
+                    depth=feature.depth,
+                    label="+".join(r.label for r in refs),
+                    species=" + ".join(species),
+                    origin="telluric" if origins == {"telluric"} else ("solar" if origins == {"solar"} else "mixed"),
+                    atmospheric="telluric" in origins,
+                    reference_nm=reference,
+                    offset_nm=float(feature.wavelength_nm - np.mean(reference)),
+                )
+            )
+        else:
+            lines.append(
+                DaylightLine(
+                    wavelength_nm=feature.wavelength_nm,
+                    uncertainty_nm=feature.uncertainty_nm,
+                    depth=feature.depth,
+                    label=None,
+                    species=None,
+                    origin=None,
+                    atmospheric=None,
+                    reference_nm=(),
+                    offset_nm=None,
+                )
+            )
+    return DaylightResult(lines=tuple(lines), normalised=normalised, tolerance_nm=float(tolerance_nm), missing_labels=tuple(missing))
