@@ -513,6 +513,10 @@ def write_json_file(path, obj: Any, *, force: bool = False, indent: int | None =
 
 
 def _finite_array(values, *, path: Path, name: str) -> np.ndarray:
+    # JSON numbers only: numpy would also turn "1" and true into 1.0
+    numeric_array = isinstance(values, np.ndarray) and values.dtype.kind in "fiu"
+    if not numeric_array and (not isinstance(values, (list, tuple)) or not all(type(v) in (int, float) for v in values)):
+        raise FileFormatError(f"{path}: `{name}` must be a list of numbers")
     try:
         array = np.asarray(values, dtype=np.float64)
     except (TypeError, ValueError):
