@@ -117,7 +117,7 @@ def normalise_line_labels(lines) -> list[dict]:
     for item in lines or ():
         if isinstance(item, Mapping):
             wavelength = None
-            for key in ("wavelength_nm", "centre_nm", "center_nm", "measured_nm", "reference_nm"):
+            for key in ("wavelength_nm", "centre_nm", "center_nm", "observed_nm", "measured_nm", "reference_nm"):
                 if item.get(key) is not None:
                     wavelength = item[key]
                     break
@@ -240,7 +240,7 @@ def _x_of(spectrum: Spectrum) -> tuple[np.ndarray, str]:
 
 
 def plot_spectrum(ax, spectrum: Spectrum, *, lines=None, label: str | None = None, colour: str = _TRACE,
-                  show_uncertainty: bool = True, colour_strip: bool = True) -> None:
+                  show_uncertainty: bool = True, colour_strip: bool = True, saturation_legend: bool = True) -> None:
     """Draw one spectrum on ``ax`` (a matplotlib Axes).
 
     Parameters
@@ -257,6 +257,8 @@ def plot_spectrum(ax, spectrum: Spectrum, *, lines=None, label: str | None = Non
         Draw the +-1 sigma band.
     colour_strip : bool
         Draw the visible-colour strip under a wavelength axis.
+    saturation_legend : bool
+        Name the saturated-sample markers in the legend.
     """
     x, x_label = _x_of(spectrum)
     y = spectrum.intensity
@@ -276,7 +278,7 @@ def plot_spectrum(ax, spectrum: Spectrum, *, lines=None, label: str | None = Non
     ax.set_ylim(bottom - 0.07 * span, top + headroom * span)
     if spectrum.saturated.any():
         ax.plot(x[spectrum.saturated], y[spectrum.saturated], linestyle="none", marker="o", markersize=1.8,
-                color=_SATURATED, zorder=4, label="saturated samples")
+                color=_SATURATED, zorder=4, label="saturated samples" if saturation_legend else None)
         ax.legend(loc="upper right", fontsize=6.5, handletextpad=0.3, borderaxespad=0.2)
     if labelled:
         _label_lines(ax, x, y, labelled, top=top, span=span)
@@ -409,7 +411,7 @@ def _draw_spectra(ax, spectra, *, lines=None, labels=None) -> None:
     for i, spectrum in enumerate(items):
         name = labels[i] if labels and i < len(labels) else None
         plot_spectrum(ax, spectrum, lines=lines if i == 0 else None, label=name, colour=_OVERLAY[i % len(_OVERLAY)],
-                      show_uncertainty=len(items) == 1 or i == 0, colour_strip=(i == 0))
+                      show_uncertainty=len(items) == 1 or i == 0, colour_strip=(i == 0), saturation_legend=(i == 0))
     if len(items) > 1:
         low = min(float(_x_of(s)[0].min()) for s in items)
         high = max(float(_x_of(s)[0].max()) for s in items)
