@@ -353,6 +353,8 @@ class Viewer:
 
         camera = ttk.LabelFrame(bar, text="Camera", padding=(4, 2))
         camera.grid(row=0, column=3, sticky="ns", padx=3)
+        self._bar, self._bar_groups, self._bar_layout = bar, [capture, waves, species, camera], None
+        root.bind("<Configure>", self._on_root_resize, add="+")
         ttk.Label(camera, text="Exposure").grid(row=0, column=0, padx=(0, 2))
         self.exposure = tk.DoubleVar(value=100.0)
         self.exposure_spin = ttk.Spinbox(camera, from_=1, to=10000, increment=10, width=6, textvariable=self.exposure)
@@ -367,6 +369,28 @@ class Viewer:
         # gridded only while lines clip
 
         self._build_light_chooser()
+
+    def _on_root_resize(self, event) -> None:
+        if event.widget is self.root:
+            self._reflow_bar(event.width)
+
+    def _reflow_bar(self, width: int) -> None:
+        """Lay the control groups out in as many rows as the window's width needs."""
+        rows, row, used = [], 0, 0
+        for group in self._bar_groups:
+            need = group.winfo_reqwidth() + 8
+            if used and used + need > width - 12:
+                row, used = row + 1, 0
+            rows.append(row)
+            used += need
+        if rows == self._bar_layout:
+            return
+        self._bar_layout = rows
+        column = {}
+        for group, r in zip(self._bar_groups, rows):
+            c = column.get(r, 0)
+            group.grid_configure(row=r, column=c)
+            column[r] = c + 1
 
     def _style_axes(self, ax) -> None:
         p = PALETTE
@@ -765,7 +789,8 @@ class Viewer:
         worker = self.worker
         if worker is not None:
             rate = self.stats.rate_hz()
-            cost = worker.process_time_s / max(1, worker.frames_processed) * 1000
+            recent = list(worker.recent_process_s)
+            cost = float(np.median(recent)) * 1000 if recent else 0.0
             self.rate_label.configure(text=f"{rate:4.1f} fps · {cost:.0f} ms · {worker.frames.dropped} dropped")
         self._status_after = self.root.after(500, self._update_status)
 
@@ -1078,7 +1103,8 @@ class Viewer:
         path = self._ask("Save the plot", "spectrum.png", [("PNG", "*.png"), ("SVG", "*.svg"), ("PDF", "*.pdf")])
         if path is None:
             return
-        self._run("save_plot", lambda: self.processor.save_plot(result, path, title=self.source_label.cget("text")),
+        title = f"benchspec bench viewer: {self.source_label.cget('text')}"  # read on the Tk thread
+        self._run("save_plot", lambda: self.processor.save_plot(result, path, title=title),
                   message=f"saving the plot to {path}…")
 
     def _done_save_spectrum(self, text):

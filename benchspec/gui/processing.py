@@ -183,7 +183,9 @@ class BenchProcessor:
         self._lock = threading.RLock()
         self.gamma = gamma
         self._preparer = FramePreparer(gamma=gamma)
-        self.geometry = None                 # the core geometry (or the placeholder's dict)
+        self.geometry = None                 # benchspec.geometry.Geometry
+        self._tables = None
+        self._row_span = (0, 0)
         self.geometry_shape: tuple[int, ...] | None = None
         self.overlay: BandOverlay | None = None
         self.dark = None                     # StackedFrame of the dark
@@ -206,20 +208,31 @@ class BenchProcessor:
         return stack_frames(list(images), gamma=self.gamma, dark=dark, check=False)
 
     # ------------------------------------------------------------------ geometry
-    def locate(self, linear: np.ndarray) -> BandOverlay:
-        """Find the band in a linear image and keep it as the geometry for live frames."""
-        with self._lock:
-            geometry, overlay = _placeholder_locate(linear)
-            self.geometry = geometry
-            self.geometry_shape = linear.shape[:2]
-            self.overlay = overlay
-            self._live_lines_cache = (-999, ())
-            return overlay
+    def locate(self, linear: np.ndarray, *, saturated=None) -> BandOverlay:
+        """Measure the band's geometry in a linear image and use it for live frames from now on."""
+        from ..geometry import measure_geometry, remap_tables
 
-    def _ensure_geometry(self, image: np.ndarray) -> None:
+        geometry = measure_geometry(linear, saturated=saturated)
+        map_x, map_y = remap_tables(geometry)
+        # Live frames are linearised only over the rows the band touches.
+        top = max(0, int(np.floor(float(map_y.min()))) - 1)
+        bottom = min(geometry.frame_height_px, int(np.ceil(float(map_y.max()))) + 2)
+        with self._lock:
+            self.geometry = geometry
+            self.geometry_shape = geometry.frame_shape
+            self._tables = (map_x, map_y - np.float32(top))
+            self._row_span = (top, bottom)
+            self.overlay = _overlay_of(geometry)
+            self._live_lines_cache = (-999, ())
+            return self.overlay
+
+    def _ensure_geometry(self, image: np.ndarray, stacked=None) -> None:
         if self.geometry is None or self.geometry_shape != image.shape[:2]:
-            linear, _ = self._preparer.prepare(image)
-            self.locate(linear)
+            if stacked is None:
+                linear, saturated = self._preparer.prepare(image)
+            else:
+                linear, saturated = stacked.image, stacked.saturated
+            self.locate(linear, saturated=saturated)
 
     # ------------------------------------------------------------------ live
     def live(self, image: np.ndarray, *, display_size: tuple[int, int], frame_index: int = 0,
@@ -231,7 +244,7 @@ class BenchProcessor:
         """
         display, scale = prepare_display(image, display_size)
         try:
-            self._ensure_geometry(image)
+            self._ensure_geometry(image, stacked)
         except BenchspecError as exc:
             empty = np.zeros(0)
             return LiveResult(frame_index, timestamp_s, display, scale, image.shape, empty, False, empty,
@@ -250,16 +263,23 @@ class BenchProcessor:
                           note=note)
 
     def _extract_live(self, image, stacked):
-        rows = self.geometry["rows"]
+        import cv2
+
+        top, bottom = self._row_span
         if stacked is not None:
-            linear = stacked.image[rows[0]:rows[1]]
-            saturated_px = stacked.saturated[rows[0]:rows[1]]
+            linear = stacked.image[top:bottom]
+            saturated_px = stacked.saturated[top:bottom]
         else:
-            linear, saturated_px = self._preparer.prepare(image[rows[0]:rows[1]])
+            linear, saturated_px = self._preparer.prepare(image[top:bottom])
             if self.dark is not None and self.dark.image.shape == image.shape[:2]:
-                linear = linear - self.dark.image[rows[0]:rows[1]]
+                linear = cv2.subtract(linear, self.dark.image[top:bottom])
+        map_x, map_y = self._tables
+        band = cv2.remap(np.ascontiguousarray(linear, dtype=np.float32), map_x, map_y, cv2.INTER_LINEAR,
+                         borderMode=cv2.BORDER_CONSTANT, borderValue=0)
+        sat_band = cv2.remap(saturated_px.astype(np.uint8), map_x, map_y, cv2.INTER_NEAREST,
+                             borderMode=cv2.BORDER_CONSTANT, borderValue=0) > 0
         full = self._preparer.full_scale(image.dtype)
-        return _placeholder_extract(linear, saturated_px, self.geometry, full_scale=full)
+        return _placeholder_extract(band, sat_band, self.geometry, full_scale=full)
 
     def _axis(self, pixel: np.ndarray) -> tuple[np.ndarray, bool]:
         cal = self.calibration
@@ -314,15 +334,15 @@ class BenchProcessor:
     # ------------------------------------------------------------------ spectrum, calibration, identification
     def spectrum_of(self, images: Sequence[np.ndarray], *, provenance: dict | None = None) -> Spectrum:
         """The spectrum of a stack of frames, on the wavelength axis once calibrated."""
-        stacked = self.stack(images)
-        self._ensure_geometry(images[0])
-        with self._lock:
-            rows = self.geometry["rows"]
-            pixel, intensity, saturated, _ = _placeholder_extract(
-                stacked.image[rows[0]:rows[1]], stacked.saturated[rows[0]:rows[1]], self.geometry,
-                full_scale=stacked.full_scale)
-            from ..lines import estimate_noise
+        from ..geometry import rectify
+        from ..lines import estimate_noise
 
+        stacked = self.stack(images)
+        self._ensure_geometry(images[0], stacked)
+        with self._lock:
+            band = rectify(stacked.image, self.geometry, saturated=stacked.saturated)
+            pixel, intensity, saturated, _ = _placeholder_extract(band.image, band.saturated, self.geometry,
+                                                                  full_scale=stacked.full_scale)
             noise = np.full(intensity.size, max(1e-6, estimate_noise(intensity)))
             spectrum = Spectrum(intensity=intensity, uncertainty=noise, pixel=pixel, saturated=saturated,
                                 provenance=dict(provenance or {}, frames=len(images)))
@@ -358,7 +378,7 @@ class BenchProcessor:
         if self.calibration is None:
             raise IdentificationError("identify needs a wavelength axis: calibrate first (with a known lamp) "
                                       "or load a calibration file")
-        spectrum = self.spectrum_of(images)
+        spectrum = _within(self.spectrum_of(images), 300.0, 1100.0)  # identify's domain
         result = identify(spectrum)
         summary = _identification_summary(result)
         with self._lock:
@@ -447,15 +467,48 @@ def _array_sha256(image: np.ndarray) -> str:
 
 
 def _apply_solution(spectrum: Spectrum, calibration) -> Spectrum:
-    """The spectrum on the calibration's wavelength axis (increasing)."""
+    """The spectrum on the calibration's wavelength axis (increasing).
+
+    Far outside the matched lines a cubic solution can turn back on itself;
+    only the monotonic stretch of columns around the matched lines is kept.
+    """
     wavelength = calibration.wavelength_nm(spectrum.pixel)
+    keep = _monotonic_span(wavelength, spectrum.pixel, calibration)
+    flip = wavelength.size > 1 and wavelength[keep][0] > wavelength[keep][-1]
+    order = keep if not flip else keep[::-1]
     uncertainty = calibration.uncertainty_nm(spectrum.pixel)
-    if wavelength.size > 1 and wavelength[0] > wavelength[-1]:
-        flip = slice(None, None, -1)
-        return spectrum.with_(intensity=spectrum.intensity[flip], uncertainty=spectrum.uncertainty[flip],
-                              pixel=spectrum.pixel[flip], saturated=spectrum.saturated[flip],
-                              wavelength_nm=wavelength[flip], wavelength_uncertainty_nm=uncertainty[flip])
-    return spectrum.with_(wavelength_nm=wavelength, wavelength_uncertainty_nm=uncertainty)
+    return spectrum.with_(intensity=spectrum.intensity[order], uncertainty=spectrum.uncertainty[order],
+                          pixel=spectrum.pixel[order], saturated=spectrum.saturated[order],
+                          wavelength_nm=wavelength[order], wavelength_uncertainty_nm=uncertainty[order])
+
+
+def _within(spectrum: Spectrum, low_nm: float, high_nm: float) -> Spectrum:
+    """The samples of a calibrated spectrum between ``low_nm`` and ``high_nm``."""
+    keep = (spectrum.wavelength_nm >= low_nm) & (spectrum.wavelength_nm <= high_nm)
+    if keep.all():
+        return spectrum
+    if keep.sum() < 16:
+        raise IdentificationError(f"the calibrated range {spectrum.wavelength_nm[0]:.0f}-{spectrum.wavelength_nm[-1]:.0f} nm "
+                                  f"has almost nothing within {low_nm:g}-{high_nm:g} nm; check the calibration")
+    fields = {name: getattr(spectrum, name)[keep] for name in
+              ("intensity", "uncertainty", "pixel", "wavelength_nm", "wavelength_uncertainty_nm", "saturated")
+              if getattr(spectrum, name) is not None}
+    return spectrum.with_(**fields)
+
+
+def _monotonic_span(wavelength: np.ndarray, pixel: np.ndarray, calibration) -> np.ndarray:
+    """Indices of the longest strictly monotonic run of ``wavelength`` through the matched lines."""
+    step = np.diff(wavelength)
+    sign = np.sign(np.median(step)) if step.size else 1.0
+    good = np.concatenate([[True], step * sign > 0])
+    centre = int(np.argmin(np.abs(pixel - np.median([m.pixel for m in calibration.matches] or [pixel.mean()]))))
+    low = centre
+    while low > 0 and good[low]:
+        low -= 1
+    high = centre + 1
+    while high < wavelength.size and good[high]:
+        high += 1
+    return np.arange(low, high)
 
 
 def _calibration_summary(result, *, lamp: str, frames_used: int, spectrum: Spectrum | None = None) -> CalibrationSummary:
@@ -486,42 +539,33 @@ def _grey(image: np.ndarray) -> np.ndarray:
     return image.mean(axis=2, dtype=np.float32) if image.ndim == 3 else image.astype(np.float32)
 
 
-def _placeholder_locate(linear: np.ndarray):
-    grey = _grey(linear)
-    small = grey[::2, ::4]
-    profile = np.percentile(small, 95, axis=1)
-    floor, top = float(np.median(profile)), float(profile.max())
-    if top <= 0 or top - floor < 0.05 * max(top, 1e-9):
-        raise GeometryError("no spectral band found: the brightest rows are barely above the rest; "
-                            "check the lamp is on and the band is in view")
-    rows = np.flatnonzero(profile > floor + 0.25 * (top - floor)) * 2
-    height, width = grey.shape[:2]
-    low, high = int(rows.min()), int(min(height - 1, rows.max() + 2))
-    gap = max(4, (high - low) // 4)
-    strip = max(4, (high - low) // 3)
-    bg = [(max(0, low - gap - strip), max(0, low - gap)), (min(height, high + gap), min(height, high + gap + strip))]
-    first = min(low, bg[0][0])
-    last = max(high + 1, bg[1][1])
-    xs = np.array([0.0, width - 1.0])
-    hline = lambda y: np.column_stack([xs, [y, y]])  # noqa: E731
-    overlay = BandOverlay(
-        band=(np.array([[0, low], [width - 1, low], [width - 1, high], [0, high], [0, low]], float),),
-        aperture=(hline(low + 1), hline(high - 1)),
-        background=tuple(hline(y) for pair in bg for y in pair),
-        description=f"band rows {low}-{high} (level; placeholder geometry)",
-    )
-    geometry = {"rows": (first, last), "aperture": (low - first, high + 1 - first),
-                "background": [(a - first, b - first) for a, b in bg]}
-    return geometry, overlay
+def _overlay_of(geometry) -> BandOverlay:
+    """Frame-coordinate polylines of the band's edges, aperture and background rows."""
+    columns = np.linspace(0, geometry.n_columns - 1, 24)
+
+    def row_line(row: float) -> np.ndarray:
+        x, y = geometry.frame_coordinates(columns, np.full(columns.shape, float(row)))
+        return np.column_stack([x, y])
+
+    top, bottom = row_line(0), row_line(geometry.n_rows - 1)
+    outline = np.vstack([top, bottom[::-1], top[:1]])
+    a0, a1 = geometry.aperture_rows
+    background = tuple(row_line(r) for pair in geometry.background_rows for r in (pair[0], pair[1] - 1))
+    curvature = "curvature measured" if geometry.curvature_known else "curvature unknown"
+    return BandOverlay(band=(outline,), aperture=(row_line(a0), row_line(a1 - 1)), background=background,
+                       description=f"band at {geometry.rotation_deg:+.2f} deg, {curvature}")
 
 
-def _placeholder_extract(linear, saturated_px, geometry, *, full_scale):
-    """Rows of the aperture summed minus the background median (``linear`` is the cut of rows)."""
-    low, high = geometry["aperture"]
-    cut = linear[low:high]
+def _placeholder_extract(band, saturated_band, geometry, *, full_scale):
+    """Box sum over the aperture rows of a rectified band, minus the mean background row.
+
+    A stand-in for benchspec.extract until its live extractor is wired in.
+    """
+    low, high = geometry.aperture_rows
+    cut = band[low:high]
     signal = cut.sum(axis=0, dtype=np.float64)
-    saturated = saturated_px[low:high].any(axis=0)
-    rows = [linear[a:b] for a, b in geometry["background"] if b > a]
+    saturated = saturated_band[low:high].any(axis=0)
+    rows = [band[a:b] for a, b in geometry.background_rows if b > a]
     if rows:
         signal = signal - np.concatenate(rows, axis=0).mean(axis=0, dtype=np.float64) * (high - low)
     peak = float(cut.max()) / full_scale if cut.size else 0.0

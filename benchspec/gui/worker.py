@@ -95,6 +95,7 @@ class LiveWorker:
         self.frames_read = 0
         self.frames_processed = 0
         self.process_time_s = 0.0
+        self.recent_process_s: list[float] = []   # the last 60 live processing times
         self.source_state = "running"
         self._reader = threading.Thread(target=self._read_loop, name="benchspec-reader", daemon=True)
         self._worker = threading.Thread(target=self._work_loop, name="benchspec-processing", daemon=True)
@@ -224,7 +225,11 @@ class LiveWorker:
                                       value=traceback.format_exc()))
                 time.sleep(0.2)
                 continue
-            self.process_time_s += time.perf_counter() - started
+            spent = time.perf_counter() - started
+            self.process_time_s += spent
+            self.recent_process_s.append(spent)
+            if len(self.recent_process_s) > 60:
+                del self.recent_process_s[:-60]
             self.frames_processed += 1
             self.results.put(result)
 

@@ -1,0 +1,345 @@
+"""The bench viewer, driven through its real widgets under Xvfb (``xdisplay`` fixture).
+
+Buttons are pressed with ``invoke()``, keys with ``event_generate``; file
+dialogs are replaced (the viewer takes them as parameters). Each test tears
+its window down. Results shown in the window are compared with the core
+calls on the same frames.
+"""
+
+from __future__ import annotations
+
+import shutil
+import time
+from pathlib import Path
+
+import cv2
+import numpy as np
+import pytest
+
+from benchspec.errors import SourceError
+from benchspec.frames import read_image
+from benchspec.safety import GENERAL_CAUTION, SOURCE_TYPES, cautions_for
+from benchspec.sources import ArraySource, CameraSource, DemoSource, FolderSource, VideoSource, demo_folder
+
+pytestmark = pytest.mark.gui
+
+tk = pytest.importorskip("tkinter")
+
+DEMO = demo_folder()
+
+
+def _pump(root, seconds: float) -> None:
+    end = time.monotonic() + seconds
+    while time.monotonic() < end:
+        root.update()
+        time.sleep(0.005)
+
+
+def _wait(root, condition, *, timeout: float = 10.0, what: str = "condition") -> None:
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        root.update()
+        if condition():
+            return
+        time.sleep(0.005)
+    raise AssertionError(f"timed out waiting for {what}")
+
+
+class Dialogs:
+    """Stand-ins for the file dialogs: hand out paths in a tmp dir and record the requests."""
+
+    def __init__(self, folder: Path):
+        self.folder = folder
+        self.next_save: str | None = None
+        self.next_open: str | None = None
+        self.asked: list[str] = []
+
+    def save(self, parent, title, default, types):
+        self.asked.append(title)
+        name = self.next_save or default
+        return str(self.folder / name)
+
+    def open(self, parent, title, types, folder=False):
+        self.asked.append(title)
+        return self.next_open
+
+
+@pytest.fixture
+def make_viewer(xdisplay, tmp_path):
+    from benchspec.gui.app import Viewer
+
+    made = []
+
+    def make(source=None, *, light=None, confirm: str | None = "fluorescent", messages=()):
+        root = tk.Tk()
+        root.geometry("1024x768+0+0")
+        dialogs = Dialogs(tmp_path)
+        viewer = Viewer(root, source=source, light=light, messages=messages,
+                        ask_save_path=dialogs.save, ask_open_path=dialogs.open)
+        viewer.dialogs = dialogs
+        made.append(viewer)
+        _pump(root, 0.05)
+        if confirm:
+            viewer.light_radios[confirm].invoke()
+            viewer.buttons["start"].invoke()
+        return viewer
+
+    yield make
+    for viewer in made:
+        viewer.close()
+
+
+def _first_frame(viewer, timeout=15.0):
+    _wait(viewer.root, lambda: viewer.stats.frames_shown >= 2, timeout=timeout, what="live frames")
+
+
+def _log(viewer) -> str:
+    return "\n".join(viewer.log_lines)
+
+
+def _wait_log(viewer, text, timeout=15.0):
+    _wait(viewer.root, lambda: text in _log(viewer), timeout=timeout, what=repr(text))
+
+
+def _screenshot(viewer, path: Path, xdisplay: str) -> Path:
+    from PIL import ImageGrab
+
+    root = viewer.root
+    root.update()
+    x, y, w, h = root.winfo_rootx(), root.winfo_rooty(), root.winfo_width(), root.winfo_height()
+    image = ImageGrab.grab(bbox=(x, y, x + w, y + h), xdisplay=xdisplay)
+    image.save(path)
+    return path
+
+
+def _core_calibration(frames, lamp):
+    """The core's calibration of the same frames, called directly (not through the viewer)."""
+    from benchspec.frames import stack_frames
+    from benchspec.geometry import measure_geometry, rectify
+    from benchspec.gui.processing import _placeholder_extract  # until the pipeline's extractor is wired
+    from benchspec.lines import estimate_noise
+    from benchspec.spectrum import Spectrum
+    from benchspec.wavecal import calibrate_spectrum
+
+    stacked = stack_frames(frames, check=False)
+    geometry = measure_geometry(stacked.image, saturated=stacked.saturated)
+    band = rectify(stacked.image, geometry, saturated=stacked.saturated)
+    pixel, intensity, saturated, _ = _placeholder_extract(band.image, band.saturated, geometry,
+                                                          full_scale=stacked.full_scale)
+    spectrum = Spectrum(intensity=intensity, uncertainty=np.full(intensity.size, estimate_noise(intensity)),
+                        pixel=pixel, saturated=saturated)
+    return calibrate_spectrum(spectrum, lamp=lamp), spectrum
+
+
+# --------------------------------------------------------------------------- the main path
+
+
+def test_demo_calibrate_identify_save(make_viewer, tmp_path, xdisplay):
+    from benchspec.gui.processing import _apply_solution, _within
+    from benchspec.identify import identify
+
+    viewer = make_viewer(DemoSource("cfl_1"))
+    _first_frame(viewer)
+    assert viewer.lamp.get() == "cfl"  # chosen from the light source
+    viewer.buttons["calibrate"].invoke()
+    _wait_log(viewer, "calibrated with cfl")
+    frames = list(viewer.action_frames)
+    core, pixel_spectrum = _core_calibration(frames, "cfl")
+    # what the window shows equals the core's answer on the same frames
+    assert f"RMS {core.rms_nm:.3f} nm = {core.rms_px:.2f} px" in viewer.fit_summary.cget("text")
+    assert viewer.calibration.rms_px == pytest.approx(core.rms_px, rel=1e-9)
+    rows = [viewer.fit_table.item(i, "values") for i in viewer.fit_table.get_children()]
+    assert len(rows) == len(core.matches)
+    assert [float(r[1]) for r in rows] == pytest.approx([m.reference_nm for m in core.matches], abs=1e-3)
+    # the live spectrum switches to a wavelength axis with labelled lines
+    _wait(viewer.root, lambda: viewer.last_result is not None and viewer.last_result.axis_is_wavelength,
+          what="wavelength axis")
+    assert "wavelength" in viewer.spec_axes.get_xlabel()
+    labels = [l.label for l in viewer.last_result.lines]
+    assert any("Hg" in label for label in labels), labels
+
+    viewer.buttons["identify"].invoke()
+    _wait_log(viewer, "identified:")
+    expected = identify(_within(_apply_solution(pixel_spectrum, core), 300.0, 1100.0))
+    shown = [viewer.species_table.item(i, "values") for i in viewer.species_table.get_children()]
+    assert shown[0][1] == expected.best.symbol
+    assert f"Verdict: {expected.verdict}" in viewer.species_summary.cget("text")
+
+    # save everything through the Save menu (dialogs replaced)
+    for index, name in enumerate(["spectrum.csv", "calibration.json", "frame.png", "plot.png"]):
+        viewer.dialogs.next_save = name
+        viewer.save_menu.invoke(index)
+        _wait_log(viewer, f"saved to {tmp_path / name}")
+    text = (tmp_path / "spectrum.csv").read_text()
+    assert "wavelength_nm" in text and "intensity" in text
+    assert cv2.imread(str(tmp_path / "frame.png")).shape == frames[-1].shape
+    assert (tmp_path / "plot.png").stat().st_size > 5000
+    shot = _screenshot(viewer, tmp_path / "viewer.png", xdisplay)
+    shutil.copy(shot, "/tmp/benchspec-viewer.png")
+    assert shot.stat().st_size > 10000
+
+
+def test_each_source_type_shows_its_cautions_before_capture(make_viewer):
+    source = DemoSource("cfl_1")
+    viewer = make_viewer(source, confirm=None)
+    assert viewer.gate.winfo_ismapped()
+    assert str(viewer.buttons["start"].cget("state")) == "disabled"
+    for key in SOURCE_TYPES:
+        viewer.light_radios[key].invoke()
+        shown = viewer.cautions_shown()
+        title, items = cautions_for(key)
+        assert title in shown
+        for item in items:
+            assert item in shown
+        assert GENERAL_CAUTION in shown  # the reminder to follow local lab-safety rules
+        assert viewer.worker is None      # nothing is captured before the cautions are confirmed
+    viewer.light_radios["laser"].invoke()
+    viewer.buttons["start"].invoke()
+    assert viewer.light == "laser" and viewer.worker is not None
+    assert not viewer.gate.winfo_ismapped()
+    # F1 brings the chooser back and pauses the live view until confirmed again
+    viewer.show_light_chooser()
+    viewer.root.update()
+    assert viewer.gate.winfo_ismapped() and not viewer.light_confirmed
+
+
+def test_layout_fits_1024x768_and_survives_resizing(make_viewer):
+    viewer = make_viewer(DemoSource("cfl_1"))
+    _first_frame(viewer)
+    root = viewer.root
+    for size in ("1024x768", "800x600", "1280x900", "1024x768"):
+        root.geometry(size)
+        _pump(root, 0.3)
+        width = root.winfo_width()
+        for name, button in viewer.buttons.items():
+            if name == "start":
+                continue
+            assert button.winfo_ismapped(), name
+            assert button.winfo_rootx() + button.winfo_width() <= root.winfo_rootx() + width + 1, (name, size)
+    assert viewer.stats.frames_shown > 5
+
+
+def test_keyboard_shortcuts_drive_the_viewer(make_viewer):
+    viewer = make_viewer(DemoSource("cfl_1"))
+    _first_frame(viewer)
+    root = viewer.root
+    root.focus_force()
+    root.update()
+    root.event_generate("<space>")
+    _wait(root, lambda: viewer.held is not None, what="hold")
+    assert viewer.buttons["hold"].cget("text") == "Live"
+    root.event_generate("<space>")
+    _wait(root, lambda: viewer.held is None, what="live again")
+    root.event_generate("<Key-c>")
+    _wait_log(viewer, "calibrated with cfl")
+
+
+def test_stack_and_dark(make_viewer):
+    viewer = make_viewer(DemoSource("cfl_1", pace=False))
+    _first_frame(viewer)
+    viewer.stack_count.set(4)
+    viewer.buttons["dark"].invoke()
+    _wait_log(viewer, "dark from 4 frame(s)")
+    viewer.buttons["clear_dark"].invoke()
+    viewer.buttons["stack"].invoke()
+    _wait(viewer.root, lambda: len(viewer.held_frames) == 4 and viewer.spectrum_state.cget("text") == "stack of 4",
+          what="stack of 4")
+    viewer.stack_count.set(0)
+    viewer.buttons["stack"].invoke()
+    assert "from 1 to 500" in viewer.message.cget("text")
+
+
+# --------------------------------------------------------------------------- faults and bad input
+
+
+def test_camera_lost_mid_stream_keeps_frames(make_viewer):
+    frame = read_image(DEMO / "cfl_1.png")
+    unplug_after = []  # frame index after which the "camera" is unplugged (set once stacking starts)
+
+    def make(index):
+        if unplug_after and index >= unplug_after[0]:
+            raise OSError("USB device disconnected")
+        return frame
+
+    source = ArraySource(make, frame_rate_hz=30, pace=True, name="camera 0")
+    viewer = make_viewer(source)
+    _first_frame(viewer)
+    viewer.stack_count.set(40)
+    viewer.buttons["stack"].invoke()  # asks for more frames than the camera will give
+    unplug_after.append(source.info.frames_delivered + 8)
+    _wait_log(viewer, "source lost")
+    _wait_log(viewer, "stack cut short")
+    assert "USB device disconnected" in _log(viewer)
+    assert "SOURCE LOST" in viewer.frame_canvas.itemcget(viewer._frame_text, "text")
+    _wait(viewer.root, lambda: 0 < len(viewer.held_frames) < 40, what="held partial stack")
+    kept = len(viewer.held_frames)
+    # still usable: calibrate on the frames captured before the loss
+    viewer.buttons["calibrate"].invoke()
+    _wait_log(viewer, "calibrated with cfl")
+    assert len(viewer.action_frames) == kept
+
+
+def test_no_camera_falls_back_to_demo_with_a_message(make_viewer):
+    from benchspec.cli.view import choose_source
+
+    source, messages = choose_source(None)  # this machine has no camera
+    assert source.kind == "demo" and "no camera found" in messages[0]
+    source2, messages2 = choose_source("5")
+    assert source2.kind == "demo" and "no camera at 5" in messages2[0]
+    source2.close()
+    viewer = make_viewer(source, messages=messages)
+    assert "no camera found" in _log(viewer)
+    _first_frame(viewer)
+    assert viewer.open_spec("/dev/video9") is False  # a camera that is not there
+    assert "no camera at /dev/video9" in viewer.message.cget("text")
+    assert viewer.worker is not None and viewer.worker.running  # the demo keeps running
+    frames = viewer.stats.frames_shown
+    _wait(viewer.root, lambda: viewer.stats.frames_shown > frames + 2, what="frames after the failure")
+
+
+def test_camera_that_refuses_settings_is_reported(make_viewer):
+    from test_sources import FakeCapture
+
+    fake = FakeCapture(refuse={cv2.CAP_PROP_AUTO_EXPOSURE, cv2.CAP_PROP_AUTO_WB}, shape=(120, 160, 3))
+    camera = CameraSource(0, capture_factory=lambda d: fake, retry_delay_s=0.0)
+    viewer = make_viewer(camera, confirm="led")
+    _wait_log(viewer, "the camera refused: auto_exposure, auto_white_balance")
+    assert str(viewer.buttons["exposure"].cget("state")) == "normal"
+    viewer.exposure.set(50)
+    viewer.buttons["exposure"].invoke()
+    _wait_log(viewer, "exposure set to 50")
+
+
+def test_video_that_ends_keeps_the_last_frame(make_viewer, tmp_path):
+    path = tmp_path / "short.avi"
+    frame = read_image(DEMO / "cfl_1.png")[::2, ::2]
+    writer = cv2.VideoWriter(str(path), cv2.VideoWriter_fourcc(*"MJPG"), 30.0, (frame.shape[1], frame.shape[0]))
+    for _ in range(6):
+        writer.write(np.ascontiguousarray(frame[..., ::-1]))
+    writer.release()
+    viewer = make_viewer(VideoSource(path, pace=True))
+    _wait_log(viewer, "the video ended after 6 frames")
+    assert "the video ended" in viewer.message.cget("text")
+    viewer.buttons["hold"].invoke()
+    _wait(viewer.root, lambda: viewer.held_frames and viewer.held_frames[0].shape == frame.shape, what="hold")
+    viewer.buttons["stack"].invoke()
+    _wait_log(viewer, "stack cut short")
+
+
+def test_folder_with_non_images_is_reported(make_viewer, tmp_path):
+    folder = tmp_path / "frames"
+    folder.mkdir()
+    shutil.copy(DEMO / "cfl_1.png", folder / "a.png")
+    (folder / "notes.txt").write_text("not a frame")
+    (folder / "broken.png").write_bytes(b"a text file renamed .png")
+    viewer = make_viewer(FolderSource(folder, loop=True, pace=True))
+    _wait_log(viewer, "notes.txt")
+    _wait_log(viewer, "skipped broken.png")
+    _first_frame(viewer)
+    # an empty folder opened later is refused in the window, and the viewer keeps going
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    viewer.dialogs.next_open = str(empty)
+    viewer.open_menu.invoke(3)
+    assert "holds no images" in viewer.message.cget("text")
+    assert viewer.worker.running
