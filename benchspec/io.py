@@ -491,12 +491,19 @@ def _reject_constant(name: str):
     raise ValueError(f"non-finite number {name}")
 
 
+def _finite_float(text: str) -> float:
+    value = float(text)
+    if not math.isfinite(value):  # 1e999 parses to inf without passing through parse_constant
+        raise ValueError(f"number {text[:20]} too large to be finite")
+    return value
+
+
 def read_json_file(path, *, what: str = "JSON file") -> Any:
     """Parse a UTF-8 JSON file strictly (no NaN/Infinity); errors name the file and the place."""
     path = Path(path)
     text = _decode_text(path, _read_bytes(path, what), what)
     try:
-        return json.loads(text, parse_constant=_reject_constant)
+        return json.loads(text, parse_constant=_reject_constant, parse_float=_finite_float)
     except json.JSONDecodeError as exc:
         hint = " (truncated?)" if exc.pos >= len(text.rstrip()) - 1 else ""
         raise FileFormatError(f"{path} is not valid JSON{hint}: {exc.msg} at line {exc.lineno} column {exc.colno}") from None
@@ -867,7 +874,7 @@ def _provenance_from_comments(path: Path, comments: Sequence[str]) -> dict:
     if raw is None:
         return {}
     try:
-        value = json.loads(raw, parse_constant=_reject_constant)
+        value = json.loads(raw, parse_constant=_reject_constant, parse_float=_finite_float)
     except (ValueError, RecursionError):
         raise FileFormatError(f"{path}: the `# provenance-json:` line is not valid JSON (truncated or edited?)") from None
     if not isinstance(value, dict):
@@ -1526,7 +1533,7 @@ def _read_jcamp(path: Path) -> Spectrum:
         if order != list(range(1, len(order) + 1)):
             raise FileFormatError(f"{path}: provenance chunks are missing (found {order[:5]}...); the file was edited or truncated")
         try:
-            provenance = json.loads("".join(provenance_chunks[i] for i in order), parse_constant=_reject_constant)
+            provenance = json.loads("".join(provenance_chunks[i] for i in order), parse_constant=_reject_constant, parse_float=_finite_float)
         except (ValueError, RecursionError):
             raise FileFormatError(f"{path}: the ##$BENCHSPEC PROVENANCE labels do not hold valid JSON (edited or truncated?)") from None
         if not isinstance(provenance, dict):
