@@ -52,8 +52,10 @@ class AbsorbanceSpectrum:
     ``valid`` is False where the blank is too weak, saturated or missing,
     or the sample is saturated; those samples hold NaN.
     ``beyond_measurable`` is True where the absorbance exceeds
-    ``max_measurable_absorbance`` at that wavelength: stray light or noise,
-    not the sample, then sets the reading.
+    ``max_measurable_absorbance`` at that wavelength (and is more than 3
+    sigma above zero), or where no light passed the sample (T <= 0, the
+    absorbance is then NaN): stray light or noise, not the sample, sets the
+    reading.
     """
 
     wavelength_nm: np.ndarray
@@ -77,11 +79,12 @@ class AbsorbanceSpectrum:
 def _estimate_stray_fraction(blank_signal, valid):
     """Stray light from the blank itself: its level where the lamp or camera gives no light.
 
-    Samples under 2% of the blank's peak are taken as regions that only
-    stray light reaches; with fewer than 5 of them the default is used.
+    Samples under 0.5% of the blank's peak are taken as regions that only
+    stray light reaches (an upper bound: some may be real light); with fewer
+    than 5 of them the default is used.
     """
     peak = float(np.nanmax(blank_signal[valid])) if np.any(valid) else 0.0
-    dark_region = np.isfinite(blank_signal) & (blank_signal < 0.02 * peak)
+    dark_region = np.isfinite(blank_signal) & (blank_signal < 0.005 * peak)
     if np.count_nonzero(dark_region) >= 5 and peak > 0:
         level = float(np.median(np.clip(blank_signal[dark_region], 0.0, None))) / peak
         return level, "measured from the blank's dark region"
@@ -108,7 +111,7 @@ def absorbance_spectrum(
         spectra are already dark-subtracted.
     stray_light_fraction : float, optional
         Stray light as a fraction of the blank's peak; default: measured from
-        the blank where it is below 2% of its peak, else 0.002.
+        the blank where it is below 0.5% of its peak, else 0.002.
     min_blank_snr : float
         Samples where the blank's signal is below this many sigma are invalid.
 
@@ -208,7 +211,9 @@ def absorbance_spectrum(
         max_measurable = np.where(valid, np.minimum(noise_limit, stray_limit), np.nan)
         absorbance = np.where(valid & (t > 0), -np.log10(t), np.nan)
         absorbance_sigma = np.where(valid & (t > 0), t_sigma / (t * np.log(10)), np.nan)
-        beyond = valid & ~(absorbance <= max_measurable)
+        # Beyond: above the limit and clearly above zero (a reading of 0 +- noise at a
+        # dim edge is not stray-limited), or no light through the sample at all.
+        beyond = valid & (((absorbance > max_measurable) & (absorbance > 3 * absorbance_sigma)) | ~(t > 0))
     if np.any(beyond):
         lo, hi = wl[beyond].min(), wl[beyond].max()
         warn_degraded(

@@ -209,7 +209,8 @@ def correlated_colour_temperature(
     if method not in ("Ohno 2013", "Robertson 1968"):
         raise InputError(f"`method` must be 'Ohno 2013' or 'Robertson 1968', was {method!r}")
     x, y = float(cie_x), float(cie_y)
-    if not (0 < x < 1 and 0 < y < 1 and x + y < 1):
+    # Noise can push a spectral colour a hair past the locus (z slightly < 0): allow 0.02.
+    if not (0 < x < 1 and 0 < y < 1 and x + y < 1.02):
         raise InputError(f"chromaticity (x, y) = ({x:.4f}, {y:.4f}) is outside the CIE 1931 diagram")
 
     def uv(xv, yv):

@@ -96,9 +96,10 @@ def _peak(wl, y, sigma):
     i = int(np.nanargmax(y))
     n = y.size
     lo = hi = i
-    while lo - 1 >= 0 and y[lo - 1] > 0.7 * y[i]:
+    # At most 10 samples each side: a white lamp's broad top is not one peak.
+    while lo - 1 >= 0 and y[lo - 1] > 0.7 * y[i] and i - lo < 10:
         lo -= 1
-    while hi + 1 < n and y[hi + 1] > 0.7 * y[i]:
+    while hi + 1 < n and y[hi + 1] > 0.7 * y[i] and hi - i < 10:
         hi += 1
     lo, hi = max(0, min(lo, i - 1)), min(n - 1, max(hi, i + 1))
     if hi - lo < 2:  # the maximum is at the edge of the spectrum
