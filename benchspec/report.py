@@ -136,8 +136,11 @@ def result_lines(results: Mapping[str, Any] | None, *, max_items: int = 12) -> l
     return lines
 
 
-def provenance_lines(provenance: Mapping[str, Any], *, name: str | None = None) -> list[str]:
-    """Provenance as report lines: every field a reader needs to redo the measurement."""
+def provenance_lines(provenance: Mapping[str, Any], *, name: str | None = None, max_frames: int = 6) -> list[str]:
+    """Provenance as report lines: every field a reader needs to redo the measurement.
+
+    At most ``max_frames`` frames are listed (the data export holds them all).
+    """
     out = []
     if name:
         out.append(f"[{name}]")
@@ -155,12 +158,12 @@ def provenance_lines(provenance: Mapping[str, Any], *, name: str | None = None) 
             out.append(f"  sha256 {imported.get('sha256')}")
         else:
             out.append("frames: not recorded")
-    for frame in frames[:6]:
+    for frame in frames[:max_frames]:
         if isinstance(frame, Mapping):
             out.append(f"frame ({frame.get('role', 'signal')}): {frame.get('path')}")
             out.append(f"  sha256 {frame.get('sha256')}")
-    if len(frames) > 6:
-        out.append(f"  ... {len(frames) - 6} more frames (see the data export)")
+    if len(frames) > max_frames:
+        out.append(f"  ... {len(frames) - max_frames} more frames (see the data export)")
     calibration = provenance.get("calibration")
     if isinstance(calibration, Mapping):
         out.append(
@@ -314,9 +317,9 @@ def build_report(
         prov: list[str] = []
         for i, spectrum in enumerate(items):
             name = names[i] if names[i] else (f"spectrum {i + 1}" if len(items) > 1 else None)
-            prov.extend(provenance_lines(spectrum.provenance, name=name))
+            prov.extend(provenance_lines(spectrum.provenance, name=name, max_frames=6 if len(items) == 1 else 2))
         _text_block(figure, prov, x=0.06, top=0.215, width_in=0.88 * page_w, height_in=0.195 * page_h,
-                    size=6.0, mono=True, heading="Provenance")
+                    size=6.0, mono=True, heading="Provenance", shrink_to=4.5)
     return figure
 
 
