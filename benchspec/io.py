@@ -615,7 +615,7 @@ def spectrum_from_dict(obj: Any, *, source="spectrum") -> Spectrum:
     if obj.get("schema") != SPECTRUM_SCHEMA:
         raise FileFormatError(f"{path}: not a benchspec spectrum (schema is {obj.get('schema')!r}, expected {SPECTRUM_SCHEMA!r})")
     version = obj.get("schema_version")
-    if version != SPECTRUM_SCHEMA_VERSION:
+    if version != SPECTRUM_SCHEMA_VERSION or isinstance(version, bool):
         raise FileFormatError(
             f"{path}: spectrum schema version {version!r} is not supported (this benchspec reads version {SPECTRUM_SCHEMA_VERSION}); "
             "upgrade benchspec or re-export the file"

@@ -160,7 +160,7 @@ def _check_json_object(path: Path, value: Any, schema: str) -> dict:
         raise FileFormatError(f"{path} must hold a JSON object")
     if value.get("schema") != schema:
         raise FileFormatError(f"{path} is not a {schema} file (schema is {value.get('schema')!r})")
-    if value.get("schema_version") != _VERSION:
+    if value.get("schema_version") != _VERSION or isinstance(value.get("schema_version"), bool):
         raise FileFormatError(
             f"{path}: {schema} schema version {value.get('schema_version')!r} is not supported "
             f"(this benchspec reads version {_VERSION}); upgrade benchspec"

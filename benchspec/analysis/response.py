@@ -395,7 +395,7 @@ def response_from_dict(obj: Any, *, source: str = "response") -> SpectralRespons
     if obj.get("format") != RESPONSE_FORMAT:
         raise bad(f"not a benchspec response file (format is {obj.get('format')!r}, expected {RESPONSE_FORMAT!r})")
     version = obj.get("version")
-    if version != RESPONSE_VERSION:
+    if version != RESPONSE_VERSION or isinstance(version, bool):
         raise bad(f"response file version {version!r} is not supported (this benchspec reads version {RESPONSE_VERSION})")
     for key in ("wavelength_nm", "relative_response", "uncertainty", "valid", "reference"):
         if key not in obj:
@@ -416,8 +416,14 @@ def response_from_dict(obj: Any, *, source: str = "response") -> SpectralRespons
         raise bad("no sample is marked valid")
     if np.any(valid & ~(np.isfinite(values) & (values > 0) & np.isfinite(sigma) & (sigma >= 0))):
         raise bad("a sample marked valid has a missing, non-positive or non-finite response")
-    if obj["reference"] not in REFERENCES:
+    if not isinstance(obj["reference"], str) or obj["reference"] not in REFERENCES:
         raise bad(f"reference {obj['reference']!r} is unknown")
+    for key in ("temperature_k", "smoothing_nm", "min_signal_fraction"):
+        value = obj.get(key)
+        if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value)):
+            raise bad(f"`{key}` must be a number or null, was {value!r}")
+    if obj.get("provenance") is not None and not isinstance(obj["provenance"], Mapping):
+        raise bad("`provenance` must be an object")
     runs = contiguous_runs(valid)
     start, stop = max(runs, key=lambda r: r[1] - r[0])
     temperature = obj.get("temperature_k")
