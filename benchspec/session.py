@@ -227,6 +227,8 @@ def _decode_frame(path: Path):
                 shape, _, dtype = reader(handle)
             if dtype.hasobject:
                 raise FileFormatError(f"{path}: frame holds Python objects; only numeric frames are loaded")
+            if dtype.kind not in "fiu" or dtype.fields is not None:
+                raise FileFormatError(f"{path}: frame has dtype {dtype}; only integer or float frames are loaded")
             pixels = int(np.prod(shape)) if shape else 1
             from .frames import MAX_FRAME_PIXELS
 
