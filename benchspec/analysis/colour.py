@@ -168,9 +168,15 @@ class ColourTemperature:
 
 
 def _uv_to_cct(u: float, v: float, method: str) -> tuple[float, float]:
+    import warnings
+
     import colour
 
-    cct, duv = colour.uv_to_CCT(np.array([u, v]), method=method)
+    with warnings.catch_warnings():
+        # Far from the locus colour-science warns about its table bounds; we judge
+        # the answer ourselves (|Duv| and the 1000-100000 K range) and say so plainly.
+        warnings.simplefilter("ignore")
+        cct, duv = colour.uv_to_CCT(np.array([u, v]), method=method)
     return float(cct), float(duv)
 
 
