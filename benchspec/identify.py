@@ -40,7 +40,7 @@ The method, in the order it runs:
    ``presence**2 * (1 - exp(-fraction / 0.04))``, in [0, 1]; a species that
    explains no observed line scores 0.
 8. **Verdict.** ``unknown`` when there are no observed lines, the best score
-   is below 0.35 or less than half of the line flux is explained;
+   is below 0.4 or less than 60% of the line flux is explained;
    ``identified`` when exactly one species scores at least 0.6 and at least
    70% of the line flux is explained; ``mixture`` when two or more do
    (a compact fluorescent lamp is the mixture Hg + CFL-phosphor);
@@ -89,10 +89,12 @@ _BROADEST_LINE_NM = 12.0
 _EXPLAINED_SHARE = 0.25  # a peak is explained when the model reaches this share of its height
 _SCORE_FRACTION_SCALE = 0.04
 _IDENTIFIED_SCORE = 0.6
-_UNKNOWN_SCORE = 0.35
+_UNKNOWN_SCORE = 0.4
+_UNKNOWN_EXPLAINED = 0.6
 _REPORTED_SCORE = 0.2
 _PASSES = 4  # fits: the first with NIST ratios, then with the response and per-line factors
-_RESPONSE_LIMIT = 30.0  # the shared smooth response may depart from 1 by at most this factor
+_RESPONSE_LIMIT = 10.0  # the shared smooth response may depart from 1 by at most this factor
+_RESPONSE_PRIOR_LINES = 3.0  # the prior "response = 1" weighs as much as this many well-measured lines
 
 
 # --------------------------------------------------------------------------- results
@@ -640,6 +642,7 @@ def identify(
 
     line_weights = [t.intensity.copy() for t in templates]
     knots = _response_knots(wavelength)
+    response = _fit_response(knots, np.array([]), np.array([]), np.array([]))
     low_factor, high_factor = 1.0 / intensity_tolerance, intensity_tolerance
     for iteration in range(_PASSES):
         columns = np.column_stack([_render(t, p, w, n) for t, p, w in zip(templates, profiles, line_weights)])
@@ -690,10 +693,47 @@ def identify(
             factor = np.where(usable_masks[k], smooth * line_factor, smooth * np.clip(current / smooth, low_factor, high_factor))
             line_weights[k] = template.intensity * factor
 
+    # What each species adds: refit without it and see how much explained line flux is lost.
+    near = _near_lines(wavelength, lines, lsf_fwhm)
+    full = _explained_total(wavelength, intensity, components, continuum, near)
+    marginal = np.zeros(len(templates))
+    for k in range(len(templates)):
+        if species_coef[k] <= 0:
+            continue
+        keep = [j for j in range(design.shape[1]) if j != k]
+        reduced, _ = optimize.nnls(design[:, keep] * weight[:, None], intensity * weight, maxiter=50 * design.shape[1])
+        coef_without = np.zeros(design.shape[1])
+        coef_without[keep] = reduced
+        comps_without = columns * (coef_without[: len(templates)] / scale)[None, :]
+        continuum_without = basis @ coef_without[len(templates):]
+        marginal[k] = max(0.0, full - _explained_total(wavelength, intensity, comps_without, continuum_without, near))
+
     return _assess(
         wavelength, intensity, sigma, templates, profiles, line_weights, shifts, species_coef, components, continuum,
-        lines, observed, lsf_fwhm, max_shift_nm, notes, n,
+        lines, observed, lsf_fwhm, max_shift_nm, notes, n, near, marginal, response, intensity_tolerance,
     )
+
+
+def _near_lines(wavelength: np.ndarray, lines: Sequence[ObservedLine], fwhm: float) -> np.ndarray:
+    """Samples within 1.5 FWHM of an observed line: where line flux is counted."""
+    centres = np.array([l.wavelength_nm for l in lines])
+    near = np.zeros(wavelength.size, dtype=bool)
+    lo = np.searchsorted(wavelength, centres - 1.5 * fwhm)
+    hi = np.searchsorted(wavelength, centres + 1.5 * fwhm, side="right")
+    for a, b in zip(lo, hi):
+        near[a:b] = True
+    return near
+
+
+def _explained_total(wavelength, intensity, components, continuum, near) -> float:
+    """Share of the observed line flux (near lines, above the continuum) that the model explains."""
+    step = np.gradient(wavelength)
+    excess = np.clip(intensity - continuum, 0.0, None)
+    total = float(np.sum(excess[near] * step[near]))
+    if total <= 0:
+        return 0.0
+    supported = np.minimum(components.sum(axis=1), excess)
+    return float(min(1.0, np.sum(supported[near] * step[near]) / total))
 
 
 def _response_knots(wavelength: np.ndarray) -> np.ndarray:
@@ -708,7 +748,9 @@ def _fit_response(knots: np.ndarray, at_nm: np.ndarray, log_ratio: np.ndarray, w
     Camera sensitivity and IR-cut filters change every line of every species
     in the same smooth way; fitting that once keeps the per-line tolerance
     for what differs from lamp to lamp. A ridge term pulls the curve towards
-    1 (the NIST ASD ratios) where few lines constrain it.
+    1 (the NIST ASD ratios) with the weight of a few well-measured lines, so
+    that a spectrum with one or two lines cannot bend the response to suit
+    a wrong species.
     """
     count = knots.size
     if at_nm.size < 3:
@@ -721,7 +763,7 @@ def _fit_response(knots: np.ndarray, at_nm: np.ndarray, log_ratio: np.ndarray, w
     w = weights / max(weights.max(), 1e-12)
     rows = [hats * w[:, None]]
     rhs = [log_ratio * w]
-    ridge = 0.05 * max(1.0, float(np.sqrt(np.sum(w**2))))
+    ridge = np.sqrt(_RESPONSE_PRIOR_LINES)
     rows.append(ridge * np.eye(count))
     rhs.append(np.zeros(count))
     if count > 2:
@@ -795,17 +837,11 @@ def _readonly(values) -> np.ndarray:
 
 
 def _assess(wavelength, intensity, sigma, templates, profiles, line_weights, shifts, species_coef, components, continuum,
-            lines, observed, fwhm, max_shift, notes, n) -> IdentificationResult:
+            lines, observed, fwhm, max_shift, notes, n, near, marginal, response, tolerance) -> IdentificationResult:
     model = components.sum(axis=1)
     excess = np.clip(intensity - continuum, 0.0, None)
     step = np.gradient(wavelength)
-    # Samples that belong to observed lines: within 1.5 FWHM of one.
     centres = np.array([l.wavelength_nm for l in lines])
-    near = np.zeros(n, dtype=bool)
-    lo = np.searchsorted(wavelength, centres - 1.5 * fwhm)
-    hi = np.searchsorted(wavelength, centres + 1.5 * fwhm, side="right")
-    for a, b in zip(lo, hi):
-        near[a:b] = True
     total_flux = float(np.sum(excess[near] * step[near]))
     supported = np.minimum(model, excess)  # model flux the data support
     share = np.divide(components, model[:, None], out=np.zeros_like(components), where=model[:, None] > 0)
@@ -832,12 +868,12 @@ def _assess(wavelength, intensity, sigma, templates, profiles, line_weights, shi
             for i in mine
         )
         presence, missing = _presence(template, profiles[k], line_weights[k] * species_coef[k], intensity, continuum,
-                                      model - components[:, k], sigma, n)
+                                      model - components[:, k], sigma, response, tolerance)
         fraction = float(np.clip(fractions[k], 0.0, 1.0))
         if not line_matches:
             score = 0.0
         else:
-            score = presence**2 * (1.0 - np.exp(-fraction / _SCORE_FRACTION_SCALE))
+            score = presence**2 * (1.0 - np.exp(-float(marginal[k]) / _SCORE_FRACTION_SCALE))
         matches.append(SpeciesMatch(template.symbol, float(score), fraction, float(presence), float(shifts[k]),
                                     line_matches, missing))
     matches.sort(key=lambda m: (-m.score, -m.fraction))
@@ -845,7 +881,7 @@ def _assess(wavelength, intensity, sigma, templates, profiles, line_weights, shi
 
     strong = [m for m in reported if m.score >= _IDENTIFIED_SCORE]
     best = reported[0].score if reported else 0.0
-    if best < _UNKNOWN_SCORE or explained_total < 0.5:
+    if best < _UNKNOWN_SCORE or explained_total < _UNKNOWN_EXPLAINED:
         verdict = "unknown"
         if best < _UNKNOWN_SCORE:
             notes.append("no species in the library explains the lines well enough")
@@ -897,23 +933,42 @@ def _line_match(line: ObservedLine, template: _Template, amplitude: np.ndarray, 
     return LineMatch(centre, reference, centre - reference, strongest, blend, float(min(share, 1.0)), line.snr)
 
 
-def _presence(template, profile, amplitude, intensity, continuum, others, sigma, n) -> tuple[float, tuple[float, ...]]:
-    """1 - share of the species' predicted flux (lines predicted above 3 sigma) that the data lack."""
+def _presence(template, profile, amplitude, intensity, continuum, others, sigma, response, tolerance) -> tuple[float, tuple[float, ...]]:
+    """How much of what the species predicts is really there: 1 - flux share of its lines missing beyond tolerance.
+
+    The species' expected line fluxes are its NIST ASD relative intensities
+    times the fitted instrument response, scaled to the lines it explains
+    best (the flux-weighted 80th percentile of observed/expected). A line is
+    *strong* when even at 1/tolerance of that it would stand 3 sigma above the
+    noise; a strong line weaker than expected/tolerance counts as (partly)
+    missing.
+    """
     rest = intensity - continuum - others
     size = template.intensity.size
     pp = np.bincount(template.pair_line, weights=profile**2, minlength=size)
     data = np.bincount(template.pair_line, weights=rest[template.pair_sample] * profile, minlength=size)
     noise = np.sqrt(np.bincount(template.pair_line, weights=(sigma[template.pair_sample] * profile) ** 2, minlength=size))
-    with np.errstate(divide="ignore", invalid="ignore"):
-        observed = np.where(pp > 0, data / pp, 0.0)  # least-squares line flux the data hold at this line
-        noise_flux = np.where(pp > 0, noise / pp, np.inf)
-    predicted = amplitude
-    strong = (predicted >= 3.0 * noise_flux) & (pp > 0)
+    inside = pp > 0
+    if not np.any(inside):
+        return 1.0, ()
+    observed = np.where(inside, data / np.where(inside, pp, 1.0), 0.0)  # least-squares line flux at each line
+    noise_flux = np.where(inside, noise / np.where(inside, pp, 1.0), np.inf)
+    nominal = template.intensity * response(template.wavelength_nm)
+    claimed = np.clip(np.minimum(observed, amplitude), 0.0, None)
+    ratio = np.where(inside & (nominal > 0), claimed / np.where(nominal > 0, nominal, 1.0), 0.0)
+    weights = np.where(inside, nominal, 0.0)
+    order = np.argsort(ratio)
+    cumulative = np.cumsum(weights[order])
+    if cumulative[-1] <= 0:
+        return 1.0, ()
+    scale = float(ratio[order][np.searchsorted(cumulative, 0.8 * cumulative[-1])])
+    expected = scale * nominal
+    strong = inside & (expected / tolerance >= 3.0 * noise_flux)
     if not np.any(strong):
         return 1.0, ()
-    deficit = np.clip(predicted - np.clip(observed, 0.0, None), 0.0, None)
-    absent = strong & (observed < 0.5 * predicted)
-    presence = 1.0 - float(deficit[absent].sum() / predicted[strong].sum())
-    order = np.argsort(-predicted[absent])
+    shortfall = np.clip(1.0 - tolerance * np.clip(observed, 0.0, None) / np.where(expected > 0, expected, 1.0), 0.0, 1.0)
+    presence = 1.0 - float(np.sum((expected * shortfall)[strong]) / np.sum(expected[strong]))
+    absent = strong & (shortfall > 0.5)
+    order = np.argsort(-expected[absent])
     missing = tuple(float(w) for w in template.wavelength_nm[absent][order][:10])
     return float(np.clip(presence, 0.0, 1.0)), missing

@@ -115,20 +115,20 @@ def _finish(wavelength, signal, rng, *, uncertainty_nm=0.2) -> Spectrum:
 
 
 def render_lamp(fluxes: dict[str, float], rng: np.random.Generator) -> tuple[Spectrum, dict]:
-    """A rendered spectrum of a lamp holding ``fluxes`` (species -> share of line flux)."""
+    """A rendered spectrum of a lamp holding ``fluxes`` (species -> share of the recorded line flux in range)."""
     fwhm, step, low, high, shift, stretch = _bench(rng)
     slit = fwhm * rng.uniform(0.0, 0.6)
     fine_step = min(fwhm / 12.0, step / 4.0)
     fine = np.arange(low - 20, high + 20, fine_step)
     response = _response(fine, rng)
     total = np.zeros_like(fine)
+    inside = (fine >= low) & (fine <= high)
     for symbol, share in fluxes.items():
-        flux = _lines_flux(symbol, fine, fwhm, slit, shift, stretch, rng)
-        inside = (fine >= low) & (fine <= high)
+        # the share is of the flux the camera records (after its response), inside the range
+        flux = _lines_flux(symbol, fine, fwhm, slit, shift, stretch, rng) * response
         norm = flux[inside].sum() * fine_step
         if norm > 0:
             total += share * flux / norm
-    total *= response
     edges, wavelength = _pixels(low, high, step)
     signal = _binned(edges, fine, total)
     truth = {"fwhm_nm": fwhm, "step_nm": step, "shift_nm": shift, "range_nm": (low, high), "species": dict(fluxes)}
