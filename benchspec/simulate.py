@@ -955,6 +955,9 @@ def render(bench: Bench, *, seed: int = 0, source: Mapping[str, Any] | str | Non
 # --------------------------------------------------------------------------- files
 
 
+_MAX_BENCH_FILE_BYTES = 2**20
+
+
 def load_bench(path: str | os.PathLike) -> Bench:
     """Read a bench file (TOML or JSON) and check every field; see ``demo_images/bench.toml``.
 
@@ -965,6 +968,12 @@ def load_bench(path: str | os.PathLike) -> Bench:
     """
     path = Path(path)
     try:
+        size = path.stat().st_size
+        if size > _MAX_BENCH_FILE_BYTES:  # a bench file is a few kB; do not read a huge file into memory
+            raise BenchFileError(
+                f"bench file {str(path)!r} is {size / 2**20:.0f} MB, far above the 1 MB a bench file can be; "
+                "check the path (`benchspec simulate --template` prints a documented one)"
+            )
         raw = path.read_bytes()
     except OSError as exc:
         raise BenchFileError(f"bench file {str(path)!r} cannot be read ({exc.strerror or exc}); check the path") from None
