@@ -927,6 +927,8 @@ def read_table(path, *, required: Sequence[str] = ()) -> Table:
 def _check_writable(spectrum: Spectrum) -> None:
     if not isinstance(spectrum, Spectrum):
         raise InputError(f"expected a benchspec Spectrum, got {type(spectrum).__name__}")
+    if spectrum.size < 2:
+        raise InputError(f"a spectrum needs at least 2 samples to be exported, this one has {spectrum.size}")
     for name in ("intensity", "uncertainty", "pixel", "wavelength_nm", "wavelength_uncertainty_nm"):
         array = getattr(spectrum, name)
         if array is not None and not np.all(np.isfinite(array)):

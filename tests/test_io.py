@@ -469,3 +469,20 @@ def test_provenance_is_in_every_data_export(tmp_path, calibrated):
         text = bio.write_spectrum(calibrated, tmp_path / f"s{extension}").read_text(encoding="utf-8")
         for fragment in ("cfl frame 1.png", "ab" * 32, "rms_nm=0.041", "NIST ASD", "gamma", benchspec.__version__, "created_utc"):
             assert fragment in text, (extension, fragment)
+
+
+finite = st.floats(min_value=-1e12, max_value=1e12, allow_nan=False, allow_infinity=False)
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(values=st.lists(finite, min_size=2, max_size=40), start=st.floats(200, 900), step=st.floats(0.01, 5.0),
+       even=st.booleans())
+def test_jcamp_property_independent_reader_agrees(tmp_path, values, start, step, even):
+    n = len(values)
+    wavelength = np.linspace(start, start + step * (n - 1), n) if even else start + step * np.arange(n) + 1e-3 * np.arange(n) ** 2
+    spectrum = benchspec.as_spectrum(wavelength, values)
+    path = bio.write_spectrum(spectrum, tmp_path / "p.jdx", force=True)
+    data = _jcamp_read(path)
+    np.testing.assert_array_equal(data["x"], spectrum.wavelength_nm)
+    np.testing.assert_array_equal(data["y"], spectrum.intensity)
+    _assert_same(spectrum, bio.read_spectrum(path))
