@@ -628,15 +628,24 @@ def identify(
     # Per-species shift: the one (within the allowance) that best correlates with the line signal.
     shifts, profiles = [], []
     for template in templates:
-        best = (-np.inf, 0.0, None)
-        grid = _shift_grid(max_shift_nm, sigma_lsf)
-        for shift in grid:
-            profile = _profiles(template, edges_lo, edges_hi, step, shift)
-            column = _render(template, profile, template.intensity, n)
-            norm = np.sqrt(np.sum((column * weight) ** 2))
-            value = np.sum(line_signal * column * weight**2) / norm if norm > 0 else -np.inf
-            if value > best[0]:
-                best = (value, shift, profile)
+        tried: dict[float, tuple[float, np.ndarray]] = {}
+
+        def correlation(shift: float) -> float:
+            shift = float(np.clip(shift, -max_shift_nm, max_shift_nm))
+            if shift not in tried:
+                profile = _profiles(template, edges_lo, edges_hi, step, shift)
+                column = _render(template, profile, template.intensity, n)
+                norm = np.sqrt(np.sum((column * weight) ** 2))
+                value = float(np.sum(line_signal * column * weight**2) / norm) if norm > 0 else -np.inf
+                tried[shift] = (value, profile)
+            return tried[shift][0]
+
+        coarse, spacing = _shift_grid(max_shift_nm, sigma_lsf)
+        best_shift = max(coarse, key=correlation)
+        for fine in (best_shift - spacing / 3, best_shift + spacing / 3):  # refine around the best coarse shift
+            correlation(fine)
+        best_shift = max(tried, key=lambda key: tried[key][0])
+        best = (tried[best_shift][0], best_shift, tried[best_shift][1])
         shifts.append(best[1])
         profiles.append(best[2])
 
@@ -649,7 +658,10 @@ def identify(
         scale = columns.max(axis=0)
         scale[scale <= 0] = 1.0
         design = np.hstack([columns / scale, basis])
-        coef, _ = optimize.nnls(design * weight[:, None], intensity * weight, maxiter=50 * design.shape[1])
+        # ||A x - b|| = ||R x - Q^T b|| + const with A = QR: solve the small triangular problem instead.
+        q, r = np.linalg.qr(design * weight[:, None])
+        qtb = q.T @ (intensity * weight)
+        coef, _ = optimize.nnls(r, qtb, maxiter=50 * design.shape[1])
         species_coef = coef[: len(templates)] / scale
         components = columns * species_coef[None, :]
         continuum = basis @ coef[len(templates):]
@@ -701,7 +713,7 @@ def identify(
         if species_coef[k] <= 0:
             continue
         keep = [j for j in range(design.shape[1]) if j != k]
-        reduced, _ = optimize.nnls(design[:, keep] * weight[:, None], intensity * weight, maxiter=50 * design.shape[1])
+        reduced, _ = optimize.nnls(r[:, keep], qtb, maxiter=50 * design.shape[1])
         coef_without = np.zeros(design.shape[1])
         coef_without[keep] = reduced
         comps_without = columns * (coef_without[: len(templates)] / scale)[None, :]
@@ -797,13 +809,15 @@ def _checked_species(species) -> tuple[str, ...]:
     return tuple(dict.fromkeys(chosen))
 
 
-def _shift_grid(max_shift: float, sigma_lsf: float) -> np.ndarray:
+def _shift_grid(max_shift: float, sigma_lsf: float) -> tuple[list[float], float]:
+    """Coarse shifts to try (spacing about one LSF sigma, at most 13 of them) and their spacing."""
     if max_shift <= 0:
-        return np.array([0.0])
-    count = int(np.clip(np.ceil(2 * max_shift / (0.5 * sigma_lsf)) + 1, 3, 25))
+        return [0.0], 0.0
+    count = int(np.clip(np.ceil(2 * max_shift / sigma_lsf) + 1, 3, 13))
     if count % 2 == 0:
         count += 1
-    return np.linspace(-max_shift, max_shift, count)
+    grid = np.linspace(-max_shift, max_shift, count)
+    return [float(g) for g in grid], float(grid[1] - grid[0])
 
 
 def _rough_baseline(wavelength: np.ndarray, intensity: np.ndarray, fwhm: float) -> np.ndarray:

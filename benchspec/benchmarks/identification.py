@@ -159,9 +159,10 @@ def render_led(rng: np.random.Generator) -> tuple[Spectrum, dict]:
 
 
 def _timed(spectrum: Spectrum):
-    start = time.perf_counter()
+    """The result and the CPU time it took (ms): CPU time, so that other work on the machine does not count."""
+    start = time.process_time()
     result = identify(spectrum)
-    return result, (time.perf_counter() - start) * 1000.0
+    return result, (time.process_time() - start) * 1000.0
 
 
 def run(quick: bool = False, *, seed: int = 20261201, verbose: bool = False) -> dict:
@@ -180,7 +181,7 @@ def run(quick: bool = False, *, seed: int = 20261201, verbose: bool = False) -> 
     -------
     dict
         ``single``, ``led``, ``mixtures`` (each with ``trials``, ``rate`` and
-        a breakdown), ``speed`` (ms per spectrum: median, p95, max),
+        a breakdown), ``speed_ms`` (CPU ms per spectrum: median, p95, max),
         ``targets`` and ``passed`` (target name -> bool).
     """
     rng = np.random.default_rng(seed)
@@ -268,7 +269,7 @@ def format_report(figures: dict) -> str:
         f"broad LED -> unknown      : {figures['led']['rate']:.1%} of {figures['led']['trials']} (target {t['led_unknown']:.0%}) {mark[p['led_unknown']]}",
         f"two-gas mixtures, top two : {figures['mixtures']['rate']:.1%} of {figures['mixtures']['trials']} (target {t['mixture_top2']:.0%}) {mark[p['mixture_top2']]}",
         "    " + "  ".join(f"{k} {v:.0%}" for k, v in figures["mixtures"]["per_pair"].items()),
-        f"speed per spectrum        : median {figures['speed_ms']['median']:.1f} ms, p95 {figures['speed_ms']['p95']:.1f} ms (target < {t['ms_per_spectrum']:.0f} ms) {mark[p['ms_per_spectrum']]}",
+        f"CPU time per spectrum     : median {figures['speed_ms']['median']:.1f} ms, p95 {figures['speed_ms']['p95']:.1f} ms (target < {t['ms_per_spectrum']:.0f} ms) {mark[p['ms_per_spectrum']]}",
     ]
     return "\n".join(lines)
 
