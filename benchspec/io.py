@@ -159,6 +159,22 @@ def _describe_os_error(exc: OSError) -> str:
     return (exc.strerror or str(exc) or type(exc).__name__).rstrip(".") + "; check the destination"
 
 
+def _sync_folder(folder: Path) -> None:
+    """Flush the folder entry of a rename to disk (POSIX); best effort elsewhere."""
+    if not hasattr(os, "O_DIRECTORY"):
+        return
+    try:
+        fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
 @contextlib.contextmanager
 def atomic_output(path, *, force: bool = False, binary: bool = False) -> Iterator[Any]:
     """Open a temporary file beside ``path``; on success rename it to ``path``.
@@ -215,6 +231,7 @@ def atomic_output(path, *, force: bool = False, binary: bool = False) -> Iterato
         if not force and path.exists():  # appeared while we were writing
             raise ExportError(f"{path} was created by someone else while writing; pass --force to overwrite it, or choose another name")
         os.replace(temp, path)
+        _sync_folder(folder)
     except OSError as exc:
         raise ExportError(f"could not write {path}: {_describe_os_error(exc)}; nothing was written") from exc
     finally:

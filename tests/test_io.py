@@ -265,6 +265,7 @@ BAD_FILES = {
     "other.json": (b'{"schema":"something.else"}', "not a benchspec spectrum"),
     "units.json": (b'{"schema":"benchspec.spectrum","schema_version":1,"units":{"wavelength":"um"},"intensity":[1,2],"uncertainty":[1,1],"pixel":[0,1]}', "nm"),
     "units.jdx": (b"##TITLE=x\n##JCAMP-DX=5.01\n##XUNITS=1/CM\n##XYPOINTS=(XY..XY)\n400, 1\n401, 2\n##END=\n", "XUNITS"),
+    "units.csv": (b"# schema: benchspec.spectrum/1\nwavelength_um,intensity,uncertainty,saturated\n0.4,1,1,0\n0.5,1,1,0\n", "not a wavelength in nm"),
     "wavenumber.txt": (b"wavenumber (cm-1),intensity\n20000,1\n20001,2\n", "not a wavelength"),
     "metres.txt": (b"4.0e-7 1\n5.0e-7 2\n", "does not look like wavelengths"),
     "shuffled.csv": (b"# schema: benchspec.spectrum/1\nwavelength_nm,intensity,uncertainty,saturated\n400,1,1,0\n402,1,1,0\n401,1,1,0\n", "not strictly increasing"),
