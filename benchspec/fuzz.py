@@ -426,11 +426,12 @@ def _optional_readers() -> list[Reader]:
     out: list[Reader] = []
     for make in (_calibration_reader, _response_reader, _session_reader):
         try:
-            reader = make()
+            made = make()
         except (ImportError, AttributeError, NotImplementedError):
             continue
-        if reader is not None:
-            out.append(reader)
+        if made is None:
+            continue
+        out.extend(made if isinstance(made, list) else [made])
     return out
 
 
@@ -438,12 +439,150 @@ def _calibration_reader() -> Reader | None:
     return None
 
 
+def _response_sample() -> bytes:
+    from .analysis.response import response_from_dict, response_to_dict
+
+    n = 30
+    wavelength = np.linspace(400.0, 700.0, n)
+    obj = {
+        "format": "benchspec-response", "version": 1, "reference": "planck", "temperature_k": 2900.0,
+        "smoothing_nm": 10.0, "min_signal_fraction": 0.05,
+        "wavelength_nm": [float(w) for w in wavelength],
+        "relative_response": [float(v) for v in np.linspace(0.2, 1.0, n)],
+        "uncertainty": [0.01] * n, "valid": [True] * n, "provenance": {"notes": _NOTE},
+    }
+    obj["relative_response"][5] = 0.12325  # a marker-like value, once
+    text = json.dumps(response_to_dict(response_from_dict(obj)), ensure_ascii=False, indent=1)
+    return text.replace("2900.0", _MARKER, 1).encode("utf-8")
+
+
 def _response_reader() -> Reader | None:
-    return None
+    from .analysis import response
+
+    return Reader("response-json", ".json", response.load_response, _response_sample(), True, "response")
 
 
-def _session_reader() -> Reader | None:
-    return None
+def _session_folder_for(path: Path) -> Path:
+    return path.parent / f"{path.stem} session"
+
+
+@functools.lru_cache(maxsize=1)
+def _session_template() -> Path:
+    """A session folder with the sample capture and screen, made once per process and copied per check."""
+    import atexit
+    import shutil
+
+    from .session import Session
+
+    root = Path(tempfile.mkdtemp(prefix="benchspec-fuzz-session-"))
+    atexit.register(shutil.rmtree, root, True)
+    folder = root / "session"
+    session = Session.create(folder, title=_NOTE)
+    record = _fill_capture(session)
+    session.save_screen(shown=[record.id], active=record.id, view={"x_range_nm": [400.0, 700.0], "title": _NOTE})
+    return folder
+
+
+def _session_copy_with(path: Path, relative: str) -> Path:
+    """A copy of the template session whose file ``relative`` is replaced by ``path`` (linked when huge)."""
+    import shutil
+
+    folder = _session_folder_for(path)
+    shutil.rmtree(folder, ignore_errors=True)
+    shutil.copytree(_session_template(), folder)
+    target = folder / relative.format(capture=_session_samples()["capture_id"])
+    target.unlink()
+    if path.stat().st_size > 4 * 2**20:
+        os.link(path, target)  # keeps a sparse file sparse
+    else:
+        target.write_bytes(path.read_bytes())
+    return folder
+
+
+def _open_session_with_manifest(path: Path):
+    """A session folder whose session.json holds the bytes of ``path``."""
+    import shutil
+
+    from .session import Session
+
+    folder = _session_copy_with(path, "session.json")
+    try:
+        return Session.open(folder)
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+
+
+def _open_session_with_capture(path: Path):
+    """The sample session whose one capture has the bytes of ``path`` as capture.json; every capture is loaded."""
+    import shutil
+
+    from .errors import FileFormatError
+    from .session import Session
+
+    folder = _session_copy_with(path, "captures/{capture}/capture.json")
+    try:
+        session = Session.open(folder)
+        if session.problems:
+            raise FileFormatError(session.problems[0])
+        for record in session.captures:
+            session.load_capture(record.id)
+        return session
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+
+
+def _open_session_with_screen(path: Path):
+    """The sample session whose screen.json holds the bytes of ``path``; the screen is restored."""
+    import shutil
+
+    from .errors import FileFormatError
+    from .session import Session
+
+    folder = _session_copy_with(path, "screen.json")
+    try:
+        state = Session.open(folder).restore_screen()
+        if state.problems:
+            raise FileFormatError(state.problems[0])
+        return state
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+
+
+def _read_npy_frame(path: Path):
+    from . import session
+
+    return session._decode_frame(path)  # the loader of float frames kept in sessions
+
+
+def _fill_capture(session):
+    """Add the sample capture (the same bytes every time) to ``session``."""
+    return session.add_capture(spectrum=_sample_spectrum(), frames=[_test_frame(), np.full((8, 8), float(_MARKER), np.float32)],
+                               label=_NOTE, metadata={"exposure_s": 0.033, "note": _NOTE})
+
+
+@functools.lru_cache(maxsize=1)
+def _session_samples() -> dict:
+    folder = _session_template()
+    capture = next(p for p in (folder / "captures").iterdir() if p.is_dir())
+    return {
+        "session": (folder / "session.json").read_bytes(),
+        "capture": (capture / "capture.json").read_bytes(),
+        "screen": (folder / "screen.json").read_bytes(),
+        "npy": next(capture.glob("*.npy")).read_bytes(),
+        "capture_id": capture.name,
+    }
+
+
+def _session_reader() -> list[Reader]:
+    from . import session  # noqa: F401 - only to know it exists
+
+    samples = _session_samples()
+    return [
+        Reader("session-manifest", ".json", _open_session_with_manifest, samples["session"], True, "session"),
+        Reader("session-capture", ".json", _open_session_with_capture, samples["capture"], True, "session"),
+        Reader("session-screen", ".json", _open_session_with_screen, samples["screen"], True, "session"),
+        Reader("session-npy-frame", ".npy", _read_npy_frame, samples["npy"], False, "npy"),
+    ]
 
 
 # --------------------------------------------------------------------------- the catalogue
@@ -796,6 +935,8 @@ def bad_inputs(reader_names: Sequence[str] | None = None) -> list[BadInput]:
             cases += _bench_cases(reader, samples)
         elif reader.family in _EXTRA_CASES:
             cases += _EXTRA_CASES[reader.family](reader, samples)
+        if reader.suffix == ".json":
+            cases += _json_schema_cases(reader)
         seen = set()
         for case in cases:
             if case.case not in seen:
@@ -804,8 +945,72 @@ def bad_inputs(reader_names: Sequence[str] | None = None) -> list[BadInput]:
     return out
 
 
+def _json_schema_cases(reader: Reader) -> list[BadInput]:
+    """Each top-level key of a JSON sample dropped, nulled or given the wrong type; versions changed."""
+    try:
+        obj = json.loads(reader.valid)
+    except ValueError:
+        return []
+    if not isinstance(obj, dict):
+        return []
+    r = reader.name
+    out: list[BadInput] = []
+    optional = {"provenance", "notes", "name", "title", "label", "temperature_k", "smoothing_nm", "min_signal_fraction",
+                "software", "wavelength_uncertainty_nm", "saturated", "active", "source_type", "valid_range_nm"}
+    # keys with documented defaults: nm; uncalibrated; unknown time; default view
+    optional |= {"spectrum-json": {"units", "wavelength_nm"}, "session-manifest": {"created_utc"},
+                 "session-screen": {"saved_utc", "view"}}.get(r, set())
+    for key, value in obj.items():
+        dump = lambda o: json.dumps(o, ensure_ascii=False).encode("utf-8")  # noqa: E731
+        if key not in optional and not r.startswith("bench"):
+            out.append(BadInput(r, f"schema-key-{key}-missing", dump({k: v for k, v in obj.items() if k != key})))
+        for label, wrong in (("null", None), ("string", "x"), ("number", 7), ("list", [1, "a"]), ("object", {"a": [1]}), ("bool", True)):
+            if type(wrong) is type(value) or (wrong is None and key in optional):
+                continue
+            # an object where an object is expected, or a list for a list, is not the wrong type
+            out.append(BadInput(r, f"schema-key-{key}-{label}", dump({**obj, key: wrong}),
+                                must_refuse=key not in optional and not r.startswith("bench")))
+        if key in ("version", "schema_version"):
+            for label, wrong in (("99", 99), ("0", 0), ("float", 1.5), ("string", "1")):
+                out.append(BadInput(r, f"schema-{key}-{label}", dump({**obj, key: wrong})))
+    return out
+
+
+def _npy_bytes(array: np.ndarray, *, allow_pickle: bool = False) -> bytes:
+    import io as _io
+
+    buffer = _io.BytesIO()
+    np.save(buffer, array, allow_pickle=allow_pickle)
+    return buffer.getvalue()
+
+
+def _npy_header_claiming(shape: tuple, dtype: str = "<f4") -> bytes:
+    header = "{'descr': '%s', 'fortran_order': False, 'shape': %r, }" % (dtype, shape)
+    header = header + " " * (118 - len(header)) + "\n"
+    return b"\x93NUMPY\x01\x00" + struct.pack("<H", len(header)) + header.encode("latin-1") + bytes(256)
+
+
+def _npy_cases(reader: Reader, samples: dict[str, bytes]) -> list[BadInput]:
+    r = reader.name
+    v = reader.valid
+    return [
+        # a pickle inside a .npy: must never be unpickled
+        BadInput(r, "object-array-pickle", _npy_bytes(np.array([{"a": 1}, None], dtype=object), allow_pickle=True)),
+        BadInput(r, "claims-100000x100000", _npy_header_claiming((100_000, 100_000))),
+        BadInput(r, "claims-negative-shape", _npy_header_claiming((-1, 10))),
+        BadInput(r, "claims-4-dimensions", _npy_header_claiming((2, 2, 2, 2))),
+        BadInput(r, "one-dimensional", _npy_bytes(np.zeros(10, np.float32))),
+        BadInput(r, "header-garbled", v.replace(b"'descr'", b"'dexcr'", 1)),
+        BadInput(r, "header-code", v.replace(b"'descr': '<f4'", b"'descr': __import__('os').getcwd()", 1)),
+        BadInput(r, "bad-magic-version", v[:6] + b"\x09\x00" + v[8:]),
+        BadInput(r, "structured-dtype", _npy_bytes(np.zeros((4, 4), dtype=[("a", "<f4"), ("b", "<i4")]))),
+        BadInput(r, "complex-frame", _npy_bytes(np.zeros((8, 8), np.complex64))),
+        BadInput(r, "nan-frame", _npy_bytes(np.full((8, 8), np.nan, np.float32)), must_refuse=False),
+    ]
+
+
 # Catalogue builders of the optional readers (filled in as their modules land).
-_EXTRA_CASES: dict[str, Callable[[Reader, dict], list[BadInput]]] = {}
+_EXTRA_CASES: dict[str, Callable[[Reader, dict], list[BadInput]]] = {"npy": _npy_cases}
 
 
 # --------------------------------------------------------------------------- checking one input
