@@ -254,9 +254,11 @@ class WavelengthCalibration:
     matches : tuple of MatchedLine
         Sorted by pixel.
     rms_px, rms_nm : float
-        RMS residual of the lines used in the fit.
+        Weighted RMS residual of the lines used in the fit (weights 1/sigma^2 of
+        each line's centre and reference uncertainty, so isolated atomic lines dominate).
     max_uncertainty_nm : float
-        Largest 1-sigma solution uncertainty over the pixel range.
+        Largest 1-sigma solution uncertainty between the outermost matched lines
+        (beyond them the solution is extrapolated; see ``uncertainty_nm``).
     verdict : str
         ``"good"``, ``"fair"`` or ``"poor"`` (see :data:`VERDICTS`).
     verdict_reason : str
@@ -311,7 +313,7 @@ class WavelengthCalibration:
             f"order {self.solution.order} polynomial, {self.n_used} lines used of {len(self.matches)} matched "
             f"({self.n_detected} detected); RMS {self.rms_px:.3f} px = {self.rms_nm:.4f} nm; "
             f"range {w0:.1f}-{w1:.1f} nm at {disp:.3f} nm/px, blue on the {'right' if self.solution.blue_on_right else 'left'}; "
-            f"solution 1-sigma <= {self.max_uncertainty_nm:.4f} nm"
+            f"solution 1-sigma <= {self.max_uncertainty_nm:.4f} nm between the outer lines"
         )
         rows.append(f"verdict: {self.verdict} ({self.verdict_reason})")
         rows.extend(f"note: {note}" for note in self.notes)
@@ -644,7 +646,10 @@ def _robust_fit(t, lam, sigma, *, max_order, monotonic_t):
             break
     best = None
     m = int(keep.sum())
-    for order in range(1, max_order + 1):
+    # A flat sensor behind a grating always bends the dispersion (x = f tan(beta)), so with enough
+    # lines the search starts at order 2; order 1 is only for three or four lines.
+    lowest = 2 if m >= 5 and max_order >= 2 else 1
+    for order in range(lowest, max_order + 1):
         if m < order + 2 and not (order == 1 and m == 2):
             break
         coeffs, cov, residual, chi2 = _weighted_polyfit(t[keep], lam[keep], sigma[keep], order)
@@ -685,6 +690,8 @@ def _cluster_adaptive(reference, resolution_nm: float, predicted_nm: np.ndarray)
             low = sub.wavelength[g[0]] - 0.6 * resolution_nm
             high = sub.wavelength[g[-1]] + 0.6 * resolution_nm
             seen = int(np.count_nonzero((predicted_nm >= low) & (predicted_nm <= high)))
+            if len(significant) <= seen < len(g):
+                g = significant  # faint neighbours only nudge a resolved strong line; they are not separate targets
             if seen < len(significant):
                 weights = sub.intensity[g]
                 members = tuple(x for k in g for x in sub.members[k])
@@ -747,26 +754,41 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
         if fit is None:
             return None
         new_coeffs, cov, keep, reduced = fit
-        result = (new_coeffs, cov, p_idx, f_idx, keep, reduced, features)
+        result = (new_coeffs, cov, p_idx, f_idx, keep, reduced, features, tt, ss)
         coeffs = new_coeffs
         if assignment == previous and tol_px == 2.0:
             break
         previous = assignment
     if result is None:
         return None
-    coeffs, cov, p_idx, f_idx, keep, reduced, features = result
-    keep_lines = keep[: p_idx.size]
+    coeffs, cov, p_idx, f_idx, keep, reduced, features, tt, ss = result
+    n_lines = p_idx.size
+    keep_lines = keep[:n_lines]
     used = keep_lines.copy()
     rejected = ~keep_lines
     lam = np.polynomial.polynomial.polyval(t[p_idx], coeffs)
     disp = np.abs(np.polynomial.polynomial.polyval(t[p_idx], np.polynomial.polynomial.polyder(coeffs))) / scale
     resid_px = (features.wavelength[f_idx] - lam) / disp
+    # Leave-one-out residuals r / (1 - h_ii) from the hat matrix of the weighted fit: a line the
+    # polynomial merely bends to pass through is not evidence for the solution.
+    vander = np.stack([tt[keep] ** k for k in range(coeffs.size)], axis=-1) / ss[keep][:, None]
+    try:
+        hat = np.einsum("ij,jk,ik->i", vander, np.linalg.pinv(vander.T @ vander), vander)
+    except np.linalg.LinAlgError:
+        hat = np.ones(int(keep.sum()))
+    leverage = np.zeros(tt.size)
+    leverage[keep] = np.clip(hat, 0.0, 0.98)
+    loo_px = resid_px / (1.0 - leverage[:n_lines])
     anchor = used & (features.sigma[f_idx] / disp <= _FEATURE_FIT_LIMIT_PX)
-    basis = anchor if anchor.sum() >= 3 else used
-    rms = float(np.sqrt(np.mean(resid_px[basis] ** 2))) if basis.any() else np.inf
+    sigma_px = ss[:n_lines] / disp
+    if used.any():
+        weights = 1.0 / sigma_px[used] ** 2
+        rms = float(np.sqrt(np.sum(weights * resid_px[used] ** 2) / np.sum(weights)))
+    else:
+        rms = np.inf
     candidate = _Candidate(coeffs, cov, p_idx, f_idx, used, rejected, features, 0.0, rms, reduced)
     candidate.anchor = anchor
-    candidate.resid_px = resid_px
+    candidate.resid_px = loo_px
     candidate.score = _final_score(candidate, peaks, centre=centre, scale=scale, t_ends=t_ends, fwhm=fwhm, n_pairs=len(pairs))
     return candidate
 
@@ -794,14 +816,17 @@ def _final_score(c: _Candidate, peaks: _Peaks, *, centre, scale, t_ends, fwhm, n
         width = 2 * max(abs(c.resid_px[k]), peaks.sigma[pi], 0.1)
         score += -math.log(min(1.0, width * density))
     score -= 1.5 * (c.coefficients.size - n_pairs if n_pairs < c.coefficients.size else 0)
-    # Brightness should roughly follow the listed intensities: a factor 10 either way is 1 sigma
-    # (camera response and lamp-to-lamp differences), so a bright line on a faint reference costs evidence.
+    # Brightness should roughly follow the listed intensities (camera response and lamp-to-lamp
+    # differences allow a factor 5 brighter or 30 fainter at 1 sigma): a bright line on a faint
+    # reference costs evidence.
     use = c.used
     if use.sum() >= 3:
         log_peak = np.log(peaks.amplitude[c.peak_index[use]])
         log_ref = np.log(np.maximum(f.intensity[c.feature_index[use]], 1e-6))
         delta = (log_peak - np.median(log_peak)) - (log_ref - np.median(log_ref))
-        score -= float(np.sum(0.5 * (delta / math.log(10.0)) ** 2))
+        # Asymmetric: a weak camera response dims lines a lot, but nothing makes a faint line bright.
+        spread = np.where(delta > 0, math.log(5.0), math.log(30.0))
+        score -= float(np.sum(0.5 * (delta / spread) ** 2))
     if c.feature_index.size:
         level = 0.5 * float(np.median(f.intensity[c.feature_index]))
         matched = set(c.feature_index.tolist())
@@ -834,8 +859,16 @@ def _distinct(a: _Candidate, b: _Candidate, t_probe, scale) -> bool:
 
 def _search(peaks: _Peaks, reference, *, pixel_range, d_range, pairs, max_order):
     """All refined candidates, best first."""
-    centre, scale = _normalise(*pixel_range)
-    t_ends = np.array([(pixel_range[0] - centre) / scale, (pixel_range[1] - centre) / scale])
+    # Normalise on the span of the detected lines (and pairs), and judge hypotheses only where there is
+    # light: a sensor much wider than the spectrum must not veto a solution by its extrapolation.
+    lit = np.r_[peaks.pixel, [m.pixel for m in pairs]]
+    if lit.size == 0:
+        lit = np.array(pixel_range, dtype=float)
+    margin = 0.1 * max(float(np.ptp(lit)), 10.0)
+    low, high = max(pixel_range[0], lit.min() - margin), min(pixel_range[1], lit.max() + margin)
+    centre, scale = _normalise(low, high)
+    t_full = np.array([(pixel_range[0] - centre) / scale, (pixel_range[1] - centre) / scale])
+    t_ends = np.array([(low - centre) / scale, (high - centre) / scale])
     t_probe = (peaks.pixel - centre) / scale if peaks.pixel.size else np.linspace(-1, 1, 5)
     fwhm = float(np.median(peaks.fwhm[np.argsort(-peaks.amplitude)[:7]])) if peaks.pixel.size else 3.0
     d_low, d_high = d_range
@@ -886,7 +919,7 @@ def _search(peaks: _Peaks, reference, *, pixel_range, d_range, pairs, max_order)
     for c in candidates:
         if all(_distinct(c, other, t_probe, scale) for other in distinct):
             distinct.append(c)
-    return distinct, (centre, scale, t_ends, fwhm)
+    return distinct, (centre, scale, t_full, fwhm)
 
 
 def _explained(c: _Candidate, peaks: _Peaks):
@@ -899,7 +932,7 @@ def _explained(c: _Candidate, peaks: _Peaks):
 
 
 # Evidence (nats) a solution needs: chance matches over ~1e4 hypotheses stay well below it.
-_MIN_EVIDENCE = 14.0
+_MIN_EVIDENCE = 12.0
 # A distinct runner-up within this many nats makes the match ambiguous (e^3 = 20 times less likely).
 _MIN_MARGIN = 3.0
 
@@ -925,6 +958,17 @@ def _decide(candidates, peaks: _Peaks, *, lamp_label: str, pairs, context) -> _C
             f"the lines do not fit {lamp_label}: the best match explains {strong_fraction:.0%} of the 5 brightest lines "
             f"and {flux_fraction:.0%} of the line flux; check --lamp (or identify the source first)"
         )
+    if not pairs:
+        brightest = np.argsort(-peaks.amplitude)[:3]
+        position = {int(p): k for k, p in enumerate(best.peak_index)}
+        for p in brightest:
+            k = position.get(int(p))
+            if k is not None and best.features.intensity[best.feature_index[k]] < 0.03:
+                raise CalibrationError(
+                    f"the lines do not fit {lamp_label}: the best match puts one of the brightest lines "
+                    f"({peaks.pixel[p]:.1f} px) on a reference line listed at "
+                    f"{best.features.intensity[best.feature_index[k]]:.1%} of the lamp's strongest; check --lamp"
+                )
     if best.rms_px > 1.0:
         raise CalibrationError(
             f"the best match to {lamp_label} leaves an RMS of {best.rms_px:.2f} px (limit 1 px); the lines are probably "
@@ -990,14 +1034,16 @@ def _build_result(best: _Candidate, peaks: _Peaks, *, lamps: Sequence[Lamp], pai
                         False, False, False, float("nan"))
         )
     matches.sort(key=lambda m: m.pixel)
-    used = [m for m in matches if m.used_in_fit and m.anchor]
-    if len(used) < 3:
-        used = [m for m in matches if m.used_in_fit]
-    rms_px = float(np.sqrt(np.mean([m.residual_px**2 for m in used])))
-    rms_nm = float(np.sqrt(np.mean([m.residual_nm**2 for m in used])))
-    grid = np.linspace(pixel_range[0], pixel_range[1], 257)
-    max_sigma = float(np.max(solution.uncertainty_nm(grid)))
+    used = [m for m in matches if m.used_in_fit]
+    # Weighted RMS (weights 1/sigma^2 of each line's total uncertainty): tightly known lines dominate it.
+    sigma_px = np.array([math.hypot(m.pixel_uncertainty, m.reference_uncertainty_nm / abs(float(solution.dispersion_nm_per_px(m.pixel))))
+                         for m in used])
+    weights = 1.0 / np.maximum(sigma_px, 1e-6) ** 2
+    rms_px = float(np.sqrt(np.sum(weights * np.array([m.residual_px for m in used]) ** 2) / np.sum(weights)))
+    rms_nm = float(np.sqrt(np.sum(weights * np.array([m.residual_nm for m in used]) ** 2) / np.sum(weights)))
     used_pixels = [m.pixel for m in used]
+    grid = np.linspace(min(m.pixel for m in matches), max(m.pixel for m in matches), 257)
+    max_sigma = float(np.max(solution.uncertainty_nm(grid)))
     coverage = (max(used_pixels) - min(used_pixels)) / max(pixel_range[1] - pixel_range[0], 1.0)
     notes = list(extra_notes)
     n_loose = sum(1 for m in matches if m.used_in_fit and not m.anchor)
