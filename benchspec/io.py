@@ -907,6 +907,10 @@ def read_table(path, *, required: Sequence[str] = ()) -> Table:
     """
     path = Path(path)
     comments, header, header_line, rows, _ = _read_csv_lines(path, "table")
+    return _table_from_lines(path, comments, header, header_line, rows, required=required)
+
+
+def _table_from_lines(path: Path, comments, header, header_line, rows, *, required: Sequence[str] = ()) -> Table:
     if header is None:
         raise FileFormatError(f"{path} has no header row; expected a line of column names such as wavelength_nm,intensity")
     if len(set(header)) != len(header) or any(not name for name in header):
@@ -925,11 +929,10 @@ def read_table(path, *, required: Sequence[str] = ()) -> Table:
     columns = {}
     for name, values in zip(header, cells):
         try:
-            numbers = [float(v) for v in values]
+            array = np.array(values, dtype=np.float64)  # parses each string like float()
         except ValueError:
             columns[name] = np.array(values, dtype=str)
             continue
-        array = np.array(numbers, dtype=np.float64)
         bad = np.flatnonzero(~np.isfinite(array))
         if bad.size:
             number = rows[int(bad[0])][0]
@@ -1003,7 +1006,7 @@ def _read_csv_spectrum(path: Path) -> Spectrum:
     if not value_names:
         raise FileFormatError(f"{path}: no `intensity` column (columns: {', '.join(header)})")
     value_name = "intensity" if "intensity" in value_names else value_names[0]
-    table = read_table(path, required=(value_name,))
+    table = _table_from_lines(path, comments, header, header_line, rows, required=(value_name,))
     cols = table.columns
     for name in cols:
         if cols[name].dtype.kind != "f":
