@@ -32,7 +32,8 @@ from tkinter import ttk
 from typing import Callable
 
 import numpy as np
-from matplotlib.backends.backend_tkagg import FigureCanvasTkAgg
+from concurrent.futures import ThreadPoolExecutor
+
 from matplotlib.collections import LineCollection
 from matplotlib.figure import Figure
 from PIL import Image, ImageTk
@@ -42,6 +43,7 @@ from ..errors import BenchspecError, SourceError
 from ..refdata import available_lamps
 from ..safety import GENERAL_CAUTION, SOURCE_TYPES, cautions_for
 from ..sources import FrameSource, open_source
+from .canvas import ThreadedCanvas
 from .colours import PALETTE, wavelength_hex
 from .processing import BenchProcessor, CalibrationSummary, IdentificationSummary, LiveResult
 from .worker import Event, LiveWorker
@@ -82,6 +84,7 @@ class ViewerStats:
     shown_times: list = field(default_factory=list)   # perf_counter of each frame shown (last 600)
     draw_time_s: float = 0.0
     full_redraws: int = 0
+    spectrum_skipped: int = 0   # frames whose trace waited for a full render
 
     def note_shown(self, now: float) -> None:
         self.frames_shown += 1
@@ -167,6 +170,8 @@ class Viewer:
         self._status_after = None
         self._display_size = (640, 300)
 
+        # Full plot redraws run here, off the Tk thread (see canvas.ThreadedCanvas).
+        self._plot_executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="benchspec-plot")
         self._build_style()
         self._build_window()
         self._bind_keys()
@@ -207,6 +212,8 @@ class Viewer:
         style.configure("Warn.TLabel", background=p["warning_light"], foreground=p["warning"],
                         font=("TkDefaultFont", 10, "bold"), padding=(8, 3))
         style.configure("Calm.TLabel", background=p["panel"], foreground=p["muted"], padding=(8, 3))
+        style.configure("Level.TLabel", background=p["paper"], foreground=p["muted"],
+                        font=("TkDefaultFont", 10, "bold"), padding=(8, 3))
         style.configure("TLabelframe", background=p["paper"], bordercolor=p["muted"])
         style.configure("TLabelframe.Label", background=p["paper"], foreground=p["accent"],
                         font=("TkDefaultFont", 9, "bold"))
@@ -299,15 +306,18 @@ class Viewer:
         self.spec_axes = self.spec_figure.add_subplot(1, 1, 1)
         self._style_axes(self.spec_axes)
         self.spec_figure.subplots_adjust(left=0.1, right=0.99, top=0.95, bottom=0.16)
-        self.spec_canvas = FigureCanvasTkAgg(self.spec_figure, master=spec_box)
+        self.spec_canvas = ThreadedCanvas(self.spec_figure, spec_box, self._plot_executor)
+        self.spec_canvas.on_rendered = self._on_spec_rendered
         self.spec_canvas.get_tk_widget().configure(height=260, highlightthickness=0)
         self.spec_canvas.get_tk_widget().grid(row=1, column=0, sticky="nsew")
         (self._spec_line,) = self.spec_axes.plot([], [], color=p["ink"], lw=1.0, animated=True)
-        self._spec_marks = LineCollection([], linewidths=2.2, animated=True)
+        # Line marks and labels are drawn into the static background and change only
+        # when the lines do (text is the costly part of a redraw); the trace is blitted.
+        self._spec_marks = LineCollection([], linewidths=2.2)
+        self._marks_spec = None
         self.spec_axes.add_collection(self._spec_marks)
         self._spec_labels = [self.spec_axes.text(0, 0, "", fontsize=7.5, rotation=90, ha="center", va="bottom",
-                                                 color=p["ink"], animated=True, visible=False) for _ in range(16)]
-        self.spec_canvas.mpl_connect("draw_event", self._on_spec_draw)
+                                                 color=p["ink"], visible=False) for _ in range(14)]
         views.add(spec_box, weight=3)
 
         # -- pages
@@ -365,8 +375,9 @@ class Viewer:
         # -- message strip
         self.message = ttk.Label(root, text="", style="Calm.TLabel", anchor="w")
         self.message.grid(row=3, column=0, sticky="ew")
-        self.clip_warning = ttk.Label(root, text="", style="Warn.TLabel", anchor="w")
-        # gridded only while lines clip
+        self.clip_warning = ttk.Label(root, text="Signal level: no frame yet", style="Level.TLabel", anchor="w")
+        self.clip_warning.grid(row=4, column=0, sticky="ew")
+        self._clip_text = ""
 
         self._build_light_chooser()
 
@@ -416,7 +427,7 @@ class Viewer:
         self.fit_axes = self.fit_figure.add_subplot(1, 1, 1)
         self._style_axes(self.fit_axes)
         self.fit_figure.subplots_adjust(left=0.22, right=0.97, top=0.92, bottom=0.26)
-        self.fit_canvas = FigureCanvasTkAgg(self.fit_figure, master=page)
+        self.fit_canvas = ThreadedCanvas(self.fit_figure, page, self._plot_executor)
         self.fit_canvas.get_tk_widget().configure(height=170, highlightthickness=0)
         self.fit_canvas.get_tk_widget().grid(row=1, column=0, sticky="ew", pady=2)
         columns = ("pixel", "nm", "species", "residual")
@@ -599,6 +610,8 @@ class Viewer:
         if self._closed:
             return
         try:
+            self.spec_canvas.poll()
+            self.fit_canvas.poll()
             self._handle_events()
             if self.worker is not None:
                 result = self.worker.results.take()
@@ -703,20 +716,24 @@ class Viewer:
                     canvas.create_line(*coords, fill=colour, width=1.5, dash=dash, tags="overlay")
         self.frame_legend.configure(text="amber: band   teal: aperture   violet: background rows")
 
-    def _on_spec_draw(self, _event) -> None:
+    def _on_spec_rendered(self) -> None:
+        """A full render is on screen: keep it as the background and draw the newest trace on it."""
         self._spec_background = self.spec_canvas.copy_from_bbox(self.spec_axes.bbox)
         self._blit_artists()
+        self.spec_canvas.blit(self.spec_axes.bbox)
 
     def _blit_artists(self) -> None:
         ax = self.spec_axes
         ax.draw_artist(self._spec_line)
-        ax.draw_artist(self._spec_marks)
-        for text in self._spec_labels:
-            if text.get_visible():
-                ax.draw_artist(text)
 
     def _draw_spectrum(self, result: LiveResult, *, force: bool = False) -> None:
         ax = self.spec_axes
+        if self.spec_canvas.rendering:
+            # the figure is being rendered on the helper thread; this trace waits for the next frame
+            self.stats.spectrum_skipped += 1
+            if force:
+                self._spec_axis_state = None
+            return
         x, y = result.axis, result.intensity
         if x.size == 0:
             self._spec_line.set_data([], [])
@@ -729,7 +746,9 @@ class Viewer:
         needs_redraw = force or state is None or state[0] != result.axis_is_wavelength or state[1] != xlim \
             or top > state[2] * 0.93 or top < state[2] * 0.3 or low < state[3]
         self._spec_line.set_data(x, y)
-        self._update_marks(result)
+        if needs_redraw or force:
+            self._marks_spec = None
+        needs_redraw = self._update_marks(result, top * 1.32 if needs_redraw else state[2]) or needs_redraw
         if needs_redraw:
             ylim_top = top * 1.32
             ax.set_xlim(*xlim)
@@ -739,49 +758,71 @@ class Viewer:
             ax.set_ylabel("signal (linear counts)", fontsize=9)
             self._spec_axis_state = (result.axis_is_wavelength, xlim, ylim_top, low * 1.1 if low < 0 else 0.0)
             self.stats.full_redraws += 1
-            self.spec_canvas.draw()  # the draw_event handler stores the background and blits
+            self._spec_background = None
+            self.spec_canvas.render_async()  # _on_spec_rendered stores the background and blits
             return
         if self._spec_background is None:
-            self.spec_canvas.draw()
             return
         self.spec_canvas.restore_region(self._spec_background)
         self._blit_artists()
         self.spec_canvas.blit(ax.bbox)
 
-    def _update_marks(self, result: LiveResult) -> None:
-        state = self._spec_axis_state
-        ylim_top = state[2] if state else (float(np.max(result.intensity)) * 1.32 if result.intensity.size else 1.0)
-        segments, colours = [], []
+    def _update_marks(self, result: LiveResult, ylim_top: float) -> bool:
+        """Place the line marks and labels; True when they changed (a full redraw is due).
+
+        Marks that stay within 1% of the axis span and 8% of its height count
+        as unchanged, so noise does not force a redraw every frame.
+        """
+        x_span = float(np.ptp(result.axis)) or 1.0
+        spec = []
+        for line in result.lines[: len(self._spec_labels)]:
+            if line.saturated:
+                colour = PALETTE["warning"]
+            elif line.wavelength_nm is not None:
+                colour = wavelength_hex(line.reference_nm or line.wavelength_nm)
+            else:
+                colour = PALETTE["accent"]
+            spec.append((line.label + (" clipped" if line.saturated else ""), line.position, line.height, colour,
+                         line.species))
+        old = self._marks_spec
+        if old is not None and len(old) == len(spec) and all(
+                a[4] == b[4] and a[3] == b[3] and abs(a[1] - b[1]) <= 0.01 * x_span and abs(a[2] - b[2]) <= 0.08 * ylim_top
+                for a, b in zip(old, spec)):
+            return False
+        self._marks_spec = spec
+        gap = 0.02 * ylim_top
         for text in self._spec_labels:
             text.set_visible(False)
-        for k, line in enumerate(result.lines[: len(self._spec_labels)]):
-            gap = 0.02 * ylim_top
-            segments.append([(line.position, line.height + gap), (line.position, line.height + 3 * gap)])
-            if line.saturated:
-                colours.append(PALETTE["warning"])
-            elif line.wavelength_nm is not None:
-                colours.append(wavelength_hex(line.wavelength_nm))
-            else:
-                colours.append(PALETTE["accent"])
-            label = self._spec_labels[k]
-            label.set_position((line.position, line.height + 3.6 * gap))
-            label.set_text(line.label + (" clipped" if line.saturated else ""))
-            label.set_color(PALETTE["warning"] if line.saturated else PALETTE["ink"])
+        segments, colours = [], []
+        for label, (text, x, height, colour, _species) in zip(self._spec_labels, spec):
+            segments.append([(x, height + gap), (x, height + 3 * gap)])
+            colours.append(colour)
+            label.set_position((x, height + 3.6 * gap))
+            label.set_text(text)
+            label.set_color(PALETTE["warning"] if text.endswith("clipped") else PALETTE["ink"])
             label.set_visible(True)
         self._spec_marks.set_segments(segments)
-        self._spec_marks.set_color(colours)
+        self._spec_marks.set_color(colours or PALETTE["accent"])
+        return True
 
     def _show_clipping(self, result: LiveResult) -> None:
+        """The level strip: peak level while all is well, a warning while lines clip.
+
+        The strip is always there with the same height, so the warning never
+        changes the layout (a relayout would redraw every plot).
+        """
         clipped = [l for l in result.lines if l.saturated]
         if result.saturated_columns:
-            what = (f"{len(clipped)} line(s) clip" if clipped else f"{result.saturated_columns} column(s) clip")
-            self.clip_warning.configure(text=f"CLIPPING: {what} at full scale. Shorten the exposure, close the "
-                                             "slit a little or move the lamp back; clipped lines give wrong "
-                                             "centres and strengths.")
-            if not self.clip_warning.winfo_ismapped():
-                self.clip_warning.grid(row=4, column=0, sticky="ew")
-        elif self.clip_warning.winfo_ismapped():
-            self.clip_warning.grid_remove()
+            what = f"{len(clipped)} line(s) clip" if clipped else f"{result.saturated_columns} column(s) clip"
+            text = (f"CLIPPING: {what} at full scale. Shorten the exposure, close the slit a little or move "
+                    "the lamp back; clipped lines give wrong centres and strengths.")
+            style = "Warn.TLabel"
+        else:
+            text = f"Signal level: brightest pixel in the aperture at {100 * result.peak_fraction:.0f}% of full scale"
+            style = "Level.TLabel"
+        if text != self._clip_text:
+            self._clip_text = text
+            self.clip_warning.configure(text=text, style=style)
 
     def _update_status(self) -> None:
         if self._closed:
@@ -971,6 +1012,7 @@ class Viewer:
             self.fit_table.insert("", "end", values=(f"{row['pixel']:.2f}", f"{row['wavelength_nm']:.3f}",
                                                      row.get("species", ""),
                                                      f"{row['residual_nm']:+.3f}" if row.get("used", True) else "not used"))
+        self.fit_canvas.wait()
         ax = self.fit_axes
         ax.clear()
         self._style_axes(ax)
@@ -1162,6 +1204,7 @@ class Viewer:
         self._stop_worker()
         if self.pending_source is not None:
             self.pending_source.close()
+        self._plot_executor.shutdown(wait=True)
         try:
             self.root.destroy()
         except tk.TclError:

@@ -60,13 +60,15 @@ class LiveLine:
     wavelength_nm: float | None
     species: str
     saturated: bool
+    reference_nm: float | None = None   # the matched reference line, when the line is identified
 
     @property
     def label(self) -> str:
         if self.wavelength_nm is None:
             return f"{self.position:.0f} px"
-        text = f"{self.wavelength_nm:.1f}"
-        return f"{text} {self.species}" if self.species else text
+        if self.species and self.reference_nm is not None:
+            return f"{self.reference_nm:.1f} {self.species}"
+        return f"{self.wavelength_nm:.1f}"
 
 
 @dataclass(frozen=True)
@@ -144,13 +146,16 @@ def prepare_display(image: np.ndarray, size: tuple[int, int]) -> tuple[np.ndarra
     # arbitrary one; a final linear step only when it would leave much room unused.
     step = int(np.ceil(1.0 / fit)) if fit < 1 else 1
     if step >= 2:
+        # a few edge pixels are dropped so the size divides exactly (the fast path)
+        view = view[: height - height % step, : width - width % step]
         view = cv2.resize(view, (max(1, width // step), max(1, height // step)), interpolation=cv2.INTER_AREA)
     out_w, out_h = max(1, int(width * fit)), max(1, int(height * fit))
     if out_w > 1.15 * view.shape[1] or fit > 1:
         view = cv2.resize(view, (out_w, out_h), interpolation=cv2.INTER_LINEAR)
     if view.ndim == 2:
         view = cv2.cvtColor(view, cv2.COLOR_GRAY2RGB)
-    return np.ascontiguousarray(view), view.shape[1] / width
+    scale = 1.0 / step if view.shape[1] == width // step else view.shape[1] / width
+    return np.ascontiguousarray(view), scale
 
 
 def _full_scale(image: np.ndarray) -> float:
@@ -298,20 +303,21 @@ class BenchProcessor:
         return labelled
 
     def _label(self, mark: LiveLine) -> LiveLine:
-        species = ""
-        known: list[tuple[float, str]] = []
+        """Name a mark on the wavelength axis after the reference line it matches (identification first)."""
+        known: list[tuple[float, float, str]] = []  # observed, reference, species
         if self.identification is not None:
             for match in self.identification.ranked:
                 for line in match.get("lines", ()):
-                    known.append((float(line["observed_nm"]), match["symbol"]))
+                    known.append((float(line["observed_nm"]), float(line["reference_nm"]), match["symbol"]))
         if self.calibration is not None:
-            known += [(row["wavelength_nm"], row["species"]) for row in self.calibration.rows]
+            known += [(row["wavelength_nm"], row["wavelength_nm"], row["species"]) for row in self.calibration.rows]
+        species, reference = "", None
         if known:
-            wl = np.array([k[0] for k in known])
-            nearest = int(np.argmin(np.abs(wl - mark.position)))
-            if abs(wl[nearest] - mark.position) <= 1.5:
-                species = known[nearest][1]
-        return LiveLine(mark.position, mark.height, mark.position, species, mark.saturated)
+            observed = np.array([k[0] for k in known])
+            nearest = int(np.argmin(np.abs(observed - mark.position)))
+            if abs(observed[nearest] - mark.position) <= 1.5:
+                _, reference, species = known[nearest]
+        return LiveLine(mark.position, mark.height, mark.position, species, mark.saturated, reference)
 
     # ------------------------------------------------------------------ dark
     def set_dark(self, images: Sequence[np.ndarray]) -> str:
