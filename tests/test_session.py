@@ -11,6 +11,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from hypothesis import HealthCheck, given, settings, strategies as st
 
 from benchspec import Spectrum
 from benchspec import io as bio
@@ -259,3 +260,39 @@ def test_convert_command(tmp_path, capsys):
     np.testing.assert_array_equal(bio.read_spectrum(out).intensity, [10, 12, 11])
     assert main(["convert", str(plain), str(out)]) == 2
     assert main(["convert", str(plain), str(tmp_path / "x.docx")]) == 2
+
+
+json_values = st.recursive(
+    st.none() | st.booleans() | st.integers(-5, 5) | st.floats(allow_nan=False, allow_infinity=False) | st.text(max_size=8),
+    lambda children: st.lists(children, max_size=4) | st.dictionaries(st.text(max_size=8), children, max_size=4),
+    max_leaves=12,
+)
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(manifest=json_values | st.fixed_dictionaries({
+    "schema": st.just("benchspec.capture"), "schema_version": st.just(1),
+    "id": st.just("20261201T193012Z-001") | st.text(max_size=24),
+    "created_utc": st.just("2026-12-01T19:30:12Z") | json_values, "label": st.just("x") | json_values,
+    "files": st.dictionaries(st.sampled_from(["spectrum.json", "frame-000.png", "frame-001.npy", "a/b", ".."]),
+                             st.fixed_dictionaries({"sha256": st.just("0" * 64) | json_values,
+                                                    "role": st.sampled_from(["frame", "spectrum", "calibration", "x"])}),
+                             max_size=3) | json_values,
+    "metadata": st.just({}) | json_values, "view": st.just({}) | json_values,
+    "source_type": st.none() | json_values}),
+    screen=json_values | st.fixed_dictionaries({"schema": st.just("benchspec.screen"), "schema_version": st.just(1),
+                                                "shown": st.just(["20261201T193012Z-001"]) | json_values,
+                                                "active": json_values, "view": json_values}),
+    contents=st.binary(max_size=64))
+def test_hostile_manifests_never_crash_loading(tmp_path_factory, manifest, screen, contents):
+    folder = tmp_path_factory.mktemp("hostile")
+    session = Session.create(folder / "s")
+    capture = session.capture_folder / "20261201T193012Z-001"
+    capture.mkdir()
+    for name in ("spectrum.json", "frame-000.png", "frame-001.npy"):
+        (capture / name).write_bytes(contents)
+    (capture / "capture.json").write_text(json.dumps(manifest), encoding="utf-8")
+    (session.path / "screen.json").write_text(json.dumps(screen), encoding="utf-8")
+    reopened = Session.open(session.path)  # never raises: a bad capture is a listed problem
+    state = reopened.restore_screen()
+    assert isinstance(state.problems, tuple)
