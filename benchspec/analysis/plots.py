@@ -169,10 +169,14 @@ def metrics_figure(metrics, spectrum, *, title: str | None = None):
         figure, axes = _figure(1)
         ax = axes[0]
         wl, y = spectrum.wavelength_nm, spectrum.intensity
-        colours = _colours(wl)
-        for i in range(wl.size - 1):
-            ax.fill_between(wl[i : i + 2], 0, y[i : i + 2], color=colours[i], linewidth=0)
-        ax.plot(wl, y, color="0.1", linewidth=0.9)
+        # The area under the curve shows each wavelength's own colour: one image, clipped by the curve.
+        grid = np.linspace(wl[0], wl[-1], 800)
+        top = float(np.nanmax(y)) * 1.05
+        image = ax.imshow(_colours(grid)[None, :, :], aspect="auto", extent=(wl[0], wl[-1], 0, top), origin="lower",
+                          interpolation="bilinear", zorder=1)
+        area = ax.fill_between(wl, 0, np.clip(np.nan_to_num(y), 0, None), facecolor="none", edgecolor="none")
+        image.set_clip_path(area.get_paths()[0], transform=ax.transData)
+        ax.plot(wl, y, color="0.1", linewidth=0.9, zorder=3)
         ax.axvline(metrics.peak_nm, color="0.2", linewidth=0.7, linestyle="--", label=f"peak {metrics.peak_nm:.2f} nm")
         ax.axvline(metrics.centroid_nm, color="0.5", linewidth=0.7, linestyle=":", label=f"centroid {metrics.centroid_nm:.2f} nm")
         if metrics.fwhm_nm is not None:
