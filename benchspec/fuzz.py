@@ -1004,6 +1004,10 @@ def _npy_cases(reader: Reader, samples: dict[str, bytes]) -> list[BadInput]:
         BadInput(r, "header-code", v.replace(b"'descr': '<f4'", b"'descr': __import__('os').getcwd()", 1)),
         BadInput(r, "bad-magic-version", v[:6] + b"\x09\x00" + v[8:]),
         BadInput(r, "structured-dtype", _npy_bytes(np.zeros((4, 4), dtype=[("a", "<f4"), ("b", "<i4")]))),
+        BadInput(r, "header-unclosed", v.replace(b"}", b" ", 1)),
+        BadInput(r, "claims-10e30-rows", _npy_header_claiming((10**30, 2))),
+        BadInput(r, "claims-float-shape", _npy_header_claiming((1e3, 4.5))),
+        BadInput(r, "claims-unknown-dtype", _npy_header_claiming((8, 8), dtype="<q9")),
         BadInput(r, "complex-frame", _npy_bytes(np.zeros((8, 8), np.complex64))),
         BadInput(r, "nan-frame", _npy_bytes(np.full((8, 8), np.nan, np.float32)), must_refuse=False),
     ]
@@ -1169,6 +1173,7 @@ def run(*, minutes: float, seed: int | None = None, reader_names: Sequence[str] 
     """
     try:
         from hypothesis import HealthCheck, given, settings
+        from hypothesis import seed as fixed_seed
     except ImportError:  # pragma: no cover - depends on the environment
         raise BenchspecError('the fuzzing run needs hypothesis: pip install -e ".[test]"') from None
     chosen = [r for r in readers() if reader_names is None or r.name in reader_names]
@@ -1186,8 +1191,9 @@ def run(*, minutes: float, seed: int | None = None, reader_names: Sequence[str] 
             round_number += 1
             stats = totals["per_reader"][reader.name]
 
+            @fixed_seed(master.getrandbits(64))  # --seed makes the whole run repeatable
             @settings(max_examples=batch, deadline=None, database=None, derandomize=False,
-                      suppress_health_check=list(HealthCheck), phases=None)
+                      suppress_health_check=list(HealthCheck))
             @given(mutations(reader))
             def one(sample):
                 if time.monotonic() > deadline:
@@ -1204,8 +1210,6 @@ def run(*, minutes: float, seed: int | None = None, reader_names: Sequence[str] 
                     _save_crash(out_dir, reader, data, outcome, description)
                     log(f"{reader.name}: {outcome.kind}: {outcome.message[:200]}")
 
-            # hypothesis seeds itself from this; --seed makes the run repeatable
-            one._hypothesis_internal_use_seed = master.getrandbits(64)
             one()
     totals["seconds"] = round(time.monotonic() - started, 1)
     return totals

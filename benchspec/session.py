@@ -48,6 +48,7 @@ import errno
 import os
 import re
 import shutil
+import tokenize
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Mapping, Sequence
@@ -235,7 +236,7 @@ def _decode_frame(path: Path):
             if len(shape) not in (2, 3) or pixels > 4 * MAX_FRAME_PIXELS:
                 raise FileFormatError(f"{path}: frame of shape {shape} is not a frame or too large to load")
             array = np.load(path, allow_pickle=False)
-        except (ValueError, OSError, EOFError) as exc:
+        except (ValueError, OSError, EOFError, SyntaxError, tokenize.TokenError) as exc:  # numpy parses the header as a literal
             raise FileFormatError(f"{path} is not a readable .npy frame ({exc})") from None
         return array
     from .frames import read_image
@@ -614,7 +615,8 @@ class Session:
             try:
                 captures.append(self.load_capture(capture_id, frames=False))
             except (FileFormatError, InputError) as exc:
-                problems.append(f"capture {capture_id}: {exc}")
+                listed = f" (listed in {path})" if path.exists() else ""
+                problems.append(f"capture {capture_id}{listed}: {exc}")
         kept = tuple(c.record.id for c in captures)
         if active not in kept:
             active = kept[-1] if kept else None
