@@ -267,7 +267,7 @@ class WavelengthCalibration:
     line_list_sources : tuple of str
         "species: source" for each line list used.
     coverage_fraction : float
-        Fraction of the pixel range between the outermost fitted lines.
+        Fraction of the span of detected lines that lies between the outermost fitted lines.
     n_detected : int
         Lines the matcher was given (after dropping broad bands).
     notes : tuple of str
@@ -1044,7 +1044,9 @@ def _build_result(best: _Candidate, peaks: _Peaks, *, lamps: Sequence[Lamp], pai
     used_pixels = [m.pixel for m in used]
     grid = np.linspace(min(m.pixel for m in matches), max(m.pixel for m in matches), 257)
     max_sigma = float(np.max(solution.uncertainty_nm(grid)))
-    coverage = (max(used_pixels) - min(used_pixels)) / max(pixel_range[1] - pixel_range[0], 1.0)
+    # Coverage: how much of the span holding detected lines is bracketed by fitted lines.
+    lit = np.r_[peaks.pixel, [p.pixel for p in pairs]]
+    coverage = min(1.0, (max(used_pixels) - min(used_pixels)) / max(float(np.ptp(lit)), 1.0))
     notes = list(extra_notes)
     n_loose = sum(1 for m in matches if m.used_in_fit and not m.anchor)
     if n_loose:

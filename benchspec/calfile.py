@@ -1,0 +1,348 @@
+"""The calibration file: geometry + wavelength solution of one setup, as versioned JSON.
+
+A calibration made once (``benchspec calibrate``) is applied to later frames
+of the same setup (``benchspec extract``). The file is UTF-8 JSON, written
+atomically (temporary file in the same folder, then ``os.replace``) and never
+over an existing file unless ``force=True`` (the command line's ``--force``).
+Reading validates it against the schema below; anything else is a
+:class:`~benchspec.errors.FileFormatError` that names the field.
+
+Schema ``benchspec.calibration/1``
+----------------------------------
+Top level (all keys required unless marked optional)::
+
+    schema              "benchspec.calibration/1"
+    created_utc         ISO 8601 time the calibration was made, e.g. "2026-12-01T19:30:00Z"
+    software            {"name": "benchspec", "version": "0.1.0"}
+    units               {"wavelength": "nm", "medium": "air", "pixel": "rectified column"}
+    geometry            benchspec.geometry.Geometry.to_dict(): frame size, band position,
+                        rotation, curvature (tilt/curvature polynomials), aperture and
+                        background rows (its own "schema" key is checked too)
+    wavelength_calibration
+        solution        {"model": "polynomial", "order": 1-3,
+                         "coefficients_nm": [c0, ...],           lambda = sum c_k t^k,
+                         "pixel_centre": p0, "pixel_scale": s,   t = (pixel - p0) / s,
+                         "covariance_nm2": [[...]],              (order+1) x (order+1),
+                         "pixel_range": [first, last]}           rectified columns fitted
+        matches         one object per matched line: pixel, pixel_uncertainty,
+                        reference_nm, reference_uncertainty_nm, fitted_nm, residual_nm,
+                        residual_px, species, members_nm (blend members), lamp,
+                        used_in_fit, anchor, rejected, blended, saturated, snr
+        rms_px, rms_nm  weighted RMS residual of the fitted lines
+        max_uncertainty_nm   largest 1-sigma of the solution between the outer lines
+        verdict         "good" | "fair" | "poor";  verdict_reason: one line
+        lamps           lamp names; line_list_sources: "species: source" strings
+        coverage_fraction, n_detected, notes
+    line_list           the reference lines the matcher could use: [{"wavelength_nm",
+                        "relative_intensity", "species", "tolerance_nm"}, ...]
+    frames              [{"path", "sha256", "lamp"}, ...]   lamp frames (sha256 of the file;
+                        null for frames passed as arrays)
+    dark_frames         [{"path", "sha256"}, ...]
+    settings            how the frames were turned into a spectrum: gamma, channel,
+                        stacking method, extraction method, min_snr, hint, manual pairs
+    reference_spectrum  intensity of the calibration spectrum per rectified column
+                        (n_columns numbers), used to notice a band that moved along
+                        the dispersion
+
+Every number must be finite; units other than the ones above are refused.
+A future incompatible change will bump the version to ``/2``; readers refuse
+versions they do not know.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Mapping, Sequence
+
+from . import __version__
+from .errors import ExportError, FileFormatError, InputError
+from .geometry import Geometry
+from .wavecal import MatchedLine, WavelengthCalibration
+
+__all__ = ["SCHEMA", "UNITS", "Calibration", "write_calibration", "read_calibration", "calibration_from_dict"]
+
+SCHEMA = "benchspec.calibration/1"
+UNITS = {"wavelength": "nm", "medium": "air", "pixel": "rectified column"}
+_TOP_KEYS = ("schema", "created_utc", "software", "units", "geometry", "wavelength_calibration", "line_list",
+             "frames", "dark_frames", "settings", "reference_spectrum")
+_MATCH_KEYS = {
+    "pixel": float, "pixel_uncertainty": float, "reference_nm": float, "reference_uncertainty_nm": float,
+    "fitted_nm": float, "residual_nm": float, "residual_px": float, "species": str, "members_nm": list, "lamp": str,
+    "used_in_fit": bool, "anchor": bool, "rejected": bool, "blended": bool, "saturated": bool, "snr": float,
+}
+
+
+@dataclass(frozen=True)
+class Calibration:
+    """Geometry and wavelength solution of a setup, with how they were made.
+
+    Attributes
+    ----------
+    geometry : Geometry
+    wavelength : WavelengthCalibration
+    frames : tuple of dict
+        ``{"path", "sha256", "lamp"}`` per lamp frame.
+    dark_frames : tuple of dict
+    settings : dict
+    line_list : tuple of dict
+    reference_spectrum : tuple of float
+        Calibration spectrum per rectified column.
+    created_utc : str
+    software_version : str
+    """
+
+    geometry: Geometry
+    wavelength: WavelengthCalibration
+    frames: tuple = ()
+    dark_frames: tuple = ()
+    settings: Mapping[str, Any] = field(default_factory=dict)
+    line_list: tuple = ()
+    reference_spectrum: tuple = ()
+    created_utc: str = ""
+    software_version: str = __version__
+
+    @property
+    def frame_shape(self) -> tuple[int, int]:
+        """(height, width) of the frames this calibration applies to."""
+        return self.geometry.frame_shape
+
+    @property
+    def rms_px(self) -> float:
+        return self.wavelength.rms_px
+
+    @property
+    def verdict(self) -> str:
+        return self.wavelength.verdict
+
+    def to_dict(self) -> dict:
+        """The JSON document (see the module docstring for the schema)."""
+        return {
+            "schema": SCHEMA,
+            "created_utc": self.created_utc or _utc_now(),
+            "software": {"name": "benchspec", "version": self.software_version},
+            "units": dict(UNITS),
+            "geometry": self.geometry.to_dict(),
+            "wavelength_calibration": self.wavelength.to_dict(),
+            "line_list": [dict(entry) for entry in self.line_list],
+            "frames": [dict(entry) for entry in self.frames],
+            "dark_frames": [dict(entry) for entry in self.dark_frames],
+            "settings": dict(self.settings),
+            "reference_spectrum": [float(v) for v in self.reference_spectrum],
+        }
+
+
+def _utc_now() -> str:
+    return datetime.now(timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")
+
+
+# --------------------------------------------------------------------------- validation
+
+
+def _fail(origin: str, message: str):
+    raise FileFormatError(f"{origin}: {message}; recalibrate (benchspec calibrate) to make a new file")
+
+
+def _check_finite(value, where: str, origin: str):
+    if isinstance(value, bool) or value is None or isinstance(value, str):
+        return
+    if isinstance(value, (int, float)):
+        if not math.isfinite(value):
+            _fail(origin, f"`{where}` holds a non-finite number ({value})")
+        return
+    if isinstance(value, Mapping):
+        for key, item in value.items():
+            _check_finite(item, f"{where}.{key}", origin)
+        return
+    if isinstance(value, (list, tuple)):
+        for k, item in enumerate(value):
+            _check_finite(item, f"{where}[{k}]", origin)
+        return
+    _fail(origin, f"`{where}` has an unsupported value of type {type(value).__name__}")
+
+
+def _number(value, where: str, origin: str) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        _fail(origin, f"`{where}` must be a number, got {type(value).__name__}")
+    return float(value)
+
+
+def _numbers(values, where: str, origin: str, *, length: int | None = None) -> list[float]:
+    if not isinstance(values, list):
+        _fail(origin, f"`{where}` must be a list of numbers")
+    out = [_number(v, f"{where}[{k}]", origin) for k, v in enumerate(values)]
+    if length is not None and len(out) != length:
+        _fail(origin, f"`{where}` must have {length} numbers, has {len(out)}")
+    return out
+
+
+def _validate_wavelength(data, origin: str, n_columns: int) -> WavelengthCalibration:
+    if not isinstance(data, Mapping):
+        _fail(origin, "`wavelength_calibration` must be an object")
+    for key in ("solution", "matches", "rms_px", "rms_nm", "max_uncertainty_nm", "verdict", "verdict_reason", "lamps",
+                "line_list_sources", "coverage_fraction", "n_detected"):
+        if key not in data:
+            _fail(origin, f"`wavelength_calibration.{key}` is missing")
+    solution = data["solution"]
+    if not isinstance(solution, Mapping):
+        _fail(origin, "`wavelength_calibration.solution` must be an object")
+    if solution.get("model") != "polynomial":
+        _fail(origin, f"`solution.model` must be 'polynomial', got {solution.get('model')!r}")
+    coefficients = _numbers(solution.get("coefficients_nm"), "solution.coefficients_nm", origin)
+    if not 2 <= len(coefficients) <= 4:
+        _fail(origin, f"`solution.coefficients_nm` must hold 2-4 numbers (order 1-3), has {len(coefficients)}")
+    order = solution.get("order")
+    if order != len(coefficients) - 1:
+        _fail(origin, f"`solution.order` is {order!r} but there are {len(coefficients)} coefficients")
+    covariance = solution.get("covariance_nm2")
+    if not isinstance(covariance, list) or len(covariance) != len(coefficients):
+        _fail(origin, "`solution.covariance_nm2` must be a square list of lists matching the coefficients")
+    for k, row in enumerate(covariance):
+        _numbers(row, f"solution.covariance_nm2[{k}]", origin, length=len(coefficients))
+    scale = _number(solution.get("pixel_scale"), "solution.pixel_scale", origin)
+    _number(solution.get("pixel_centre"), "solution.pixel_centre", origin)
+    if not scale > 0:
+        _fail(origin, f"`solution.pixel_scale` must be positive, was {scale}")
+    pixel_range = _numbers(solution.get("pixel_range"), "solution.pixel_range", origin, length=2)
+    if pixel_range[0] < -0.5 or pixel_range[1] > n_columns - 0.5:
+        _fail(origin, f"`solution.pixel_range` {pixel_range} lies outside the geometry's {n_columns} columns")
+    if not isinstance(data["matches"], list) or not data["matches"]:
+        _fail(origin, "`wavelength_calibration.matches` must be a non-empty list")
+    for k, match in enumerate(data["matches"]):
+        if not isinstance(match, Mapping):
+            _fail(origin, f"`matches[{k}]` must be an object")
+        for key, kind in _MATCH_KEYS.items():
+            if key not in match:
+                _fail(origin, f"`matches[{k}].{key}` is missing")
+            value = match[key]
+            if kind is float and (isinstance(value, bool) or not isinstance(value, (int, float))):
+                _fail(origin, f"`matches[{k}].{key}` must be a number")
+            if kind is not float and not isinstance(value, kind):
+                _fail(origin, f"`matches[{k}].{key}` must be a {kind.__name__}")
+        unknown = set(match) - set(_MATCH_KEYS)
+        if unknown:
+            _fail(origin, f"`matches[{k}]` has unknown field(s) {', '.join(sorted(unknown))}")
+        if not 200.0 <= float(match["reference_nm"]) <= 1200.0:
+            _fail(origin, f"`matches[{k}].reference_nm` is {match['reference_nm']}, not a wavelength in nm (200-1200)")
+    if data["verdict"] not in ("good", "fair", "poor"):
+        _fail(origin, f"`verdict` must be good, fair or poor, got {data['verdict']!r}")
+    for key in ("rms_px", "rms_nm", "max_uncertainty_nm", "coverage_fraction"):
+        if _number(data[key], key, origin) < 0:
+            _fail(origin, f"`{key}` must not be negative")
+    try:
+        return WavelengthCalibration.from_dict(data)
+    except (KeyError, TypeError, ValueError) as exc:
+        _fail(origin, f"the wavelength calibration is malformed ({exc})")
+
+
+def calibration_from_dict(data: Any, *, origin: str = "calibration") -> Calibration:
+    """Validate a parsed calibration document and build the :class:`Calibration`.
+
+    Raises
+    ------
+    FileFormatError
+        Wrong or unknown schema version, missing or unknown fields, wrong
+        types, non-finite numbers or units other than nm / air / rectified column.
+    """
+    if not isinstance(data, Mapping):
+        _fail(origin, "the file must hold a JSON object")
+    schema = data.get("schema")
+    if schema != SCHEMA:
+        if isinstance(schema, str) and schema.startswith("benchspec.calibration/"):
+            raise FileFormatError(
+                f"{origin}: calibration schema {schema!r} is not supported by this benchspec (reads {SCHEMA!r}); "
+                "recalibrate, or use the benchspec version that wrote it"
+            )
+        _fail(origin, f"not a benchspec calibration file (schema {schema!r}, expected {SCHEMA!r})")
+    missing = [k for k in _TOP_KEYS if k not in data]
+    if missing:
+        _fail(origin, f"field(s) {', '.join(missing)} missing")
+    unknown = sorted(set(data) - set(_TOP_KEYS))
+    if unknown:
+        _fail(origin, f"unknown field(s) {', '.join(unknown)}")
+    _check_finite(data, "calibration", origin)
+    units = data["units"]
+    if not isinstance(units, Mapping) or dict(units) != UNITS:
+        _fail(origin, f"`units` must be {UNITS}, got {units!r}")
+    if not isinstance(data["created_utc"], str) or not data["created_utc"]:
+        _fail(origin, "`created_utc` must be an ISO 8601 time string")
+    software = data["software"]
+    if not isinstance(software, Mapping) or not isinstance(software.get("version"), str):
+        _fail(origin, "`software` must be an object with a `version` string")
+    try:
+        geometry = Geometry.from_dict(data["geometry"])
+    except FileFormatError as exc:
+        raise FileFormatError(f"{origin}: {exc}") from None
+    wavelength = _validate_wavelength(data["wavelength_calibration"], origin, geometry.n_columns)
+    for key in ("line_list", "frames", "dark_frames"):
+        value = data[key]
+        if not isinstance(value, list) or not all(isinstance(v, Mapping) for v in value):
+            _fail(origin, f"`{key}` must be a list of objects")
+    for k, line in enumerate(data["line_list"]):
+        for key in ("wavelength_nm", "relative_intensity", "species", "tolerance_nm"):
+            if key not in line:
+                _fail(origin, f"`line_list[{k}].{key}` is missing")
+        wavelength_nm = _number(line["wavelength_nm"], f"line_list[{k}].wavelength_nm", origin)
+        if not 200.0 <= wavelength_nm <= 1200.0:
+            _fail(origin, f"`line_list[{k}].wavelength_nm` is {wavelength_nm}, not a wavelength in nm (200-1200)")
+    for k, frame in enumerate(data["frames"]):
+        if "path" not in frame or "sha256" not in frame:
+            _fail(origin, f"`frames[{k}]` needs `path` and `sha256`")
+    if not isinstance(data["settings"], Mapping):
+        _fail(origin, "`settings` must be an object")
+    reference = _numbers(data["reference_spectrum"], "reference_spectrum", origin)
+    if reference and len(reference) != geometry.n_columns:
+        _fail(origin, f"`reference_spectrum` has {len(reference)} values but the geometry has {geometry.n_columns} columns")
+    return Calibration(
+        geometry=geometry,
+        wavelength=wavelength,
+        frames=tuple(dict(f) for f in data["frames"]),
+        dark_frames=tuple(dict(f) for f in data["dark_frames"]),
+        settings=dict(data["settings"]),
+        line_list=tuple(dict(l) for l in data["line_list"]),
+        reference_spectrum=tuple(reference),
+        created_utc=data["created_utc"],
+        software_version=software["version"],
+    )
+
+
+# --------------------------------------------------------------------------- files
+
+
+def write_calibration(calibration: Calibration, path, *, force: bool = False) -> Path:
+    """Write ``calibration`` as JSON, atomically; refuse to replace a file unless ``force``.
+
+    Raises
+    ------
+    ExportError
+        The file exists (without ``force``), or the folder cannot be written.
+    """
+    from .io import write_json_file
+
+    if not isinstance(calibration, Calibration):
+        raise InputError(f"`calibration` must be a Calibration, got {type(calibration).__name__}")
+    path = Path(path)
+    if path.suffix.lower() != ".json":
+        raise ExportError(f"a calibration file must end in .json, not {path.name!r}")
+    if not force and (path.exists() or path.is_symlink()):
+        raise ExportError(f"{path} already exists; pass --force to overwrite it, or choose another name")
+    document = calibration.to_dict()
+    calibration_from_dict(document, origin=str(path))  # never write what we could not read back
+    return write_json_file(path, document, force=force, indent=1)
+
+
+def read_calibration(path) -> Calibration:
+    """Read and validate a calibration file (see the module docstring for the schema).
+
+    Raises
+    ------
+    FileFormatError
+        Missing, unreadable, truncated or invalid file.
+    """
+    from .io import read_json_file
+
+    path = Path(path)
+    data = read_json_file(path, what="calibration file")
+    return calibration_from_dict(data, origin=str(path))

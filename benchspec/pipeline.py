@@ -1,0 +1,391 @@
+"""Frames -> calibrated spectrum in a few calls: the public API the command line wraps.
+
+Example
+-------
+>>> from benchspec.pipeline import calibrate_frames, extract_frames      # doctest: +SKIP
+>>> cal = calibrate_frames(["cfl_1.png", "cfl_2.png"], lamp="cfl")       # doctest: +SKIP
+>>> print(cal.wavelength.format_table())                                 # doctest: +SKIP
+>>> write_calibration(cal, "bench.json")                                 # doctest: +SKIP
+>>> spectrum = extract_frames(["tube_*.png"], cal)                       # doctest: +SKIP
+
+:func:`calibrate_frames` stacks the lamp frames (dark-subtracted,
+linearised), finds the band and its geometry, extracts the spectrum, finds
+the lines and solves the wavelength calibration with no first guess.
+:func:`extract_frames` applies a stored calibration to later frames of the
+same setup and warns (:class:`~benchspec.errors.DegradedResultWarning`) when
+the band has moved since calibration.
+"""
+
+from __future__ import annotations
+
+import os
+import warnings
+from pathlib import Path
+from typing import Any, Iterable, Mapping, Sequence
+
+import numpy as np
+
+from .calfile import Calibration, read_calibration, write_calibration
+from .errors import CalibrationError, DegradedResultWarning, FrameError, InputError
+from .extract import extract_stack
+from .frames import StackedFrame, expand_sources, file_sha256, iter_frames, load_stack, stack_frames
+from .geometry import measure_band_shift, measure_geometry
+from .lines import LineTable, find_lines
+from .refdata import load_lamp
+from .spectrum import Spectrum
+from .wavecal import (
+    ManualPair,
+    WavelengthCalibration,
+    calibrate_combined,
+    calibrate_lines,
+    dispersion_range_for_grating,
+)
+
+__all__ = [
+    "Calibration",
+    "calibrate_frames",
+    "extract_frames",
+    "apply_calibration",
+    "read_calibration",
+    "write_calibration",
+]
+
+
+def _is_array_input(frames) -> bool:
+    if isinstance(frames, np.ndarray):
+        return True
+    return isinstance(frames, (list, tuple)) and len(frames) > 0 and all(isinstance(f, np.ndarray) for f in frames)
+
+
+def _stack(frames, *, dark, gamma, channel, method) -> tuple[StackedFrame, list[dict], list[dict]]:
+    """Stack paths or arrays; returns the stack and the frame / dark records (path, sha256)."""
+    dark_stack = None
+    dark_records: list[dict] = []
+    if dark is not None:
+        if isinstance(dark, StackedFrame):
+            dark_stack = dark
+        elif _is_array_input(dark):
+            arrays = [dark] if isinstance(dark, np.ndarray) and dark.ndim in (2, 3) and not isinstance(dark, list) else list(dark)
+            dark_stack = stack_frames(arrays, method="mean", gamma=gamma, channel=channel, check=False)
+            dark_records = [{"path": None, "sha256": None} for _ in arrays]
+        else:
+            dark_stack = load_stack(dark, method="mean", gamma=gamma, channel=channel)
+            dark_records = [{"path": p, "sha256": h} for p, h in zip(dark_stack.input_files, dark_stack.input_sha256)]
+    if _is_array_input(frames):
+        arrays = [frames] if isinstance(frames, np.ndarray) else list(frames)
+        stacked = stack_frames(arrays, method=method, gamma=gamma, channel=channel, dark=dark_stack)
+        records = [{"path": None, "sha256": None} for _ in arrays]
+    else:
+        stacked = load_stack(frames, method=method, gamma=gamma, channel=channel, dark=dark_stack)
+        records = [{"path": p, "sha256": h} for p, h in zip(stacked.input_files, stacked.input_sha256)]
+    return stacked, records, dark_records
+
+
+def _line_list_record(lamps) -> list[dict]:
+    out = []
+    for name in dict.fromkeys(lamps):
+        for line in load_lamp(name).lines():
+            out.append({"wavelength_nm": line.wavelength_nm, "relative_intensity": line.relative_intensity,
+                        "species": line.species, "tolerance_nm": line.tolerance_nm})
+    return out
+
+
+def calibrate_frames(
+    frames,
+    *,
+    lamp: str = "cfl",
+    dark=None,
+    gamma: str = "auto",
+    channel: str = "mean",
+    stack: str = "mean",
+    extraction: str = "optimal",
+    hint_lines_per_mm: float | None = None,
+    pairs: Sequence[ManualPair] = (),
+    more_lamps: Sequence[tuple[Any, str]] = (),
+    min_snr: float = 5.0,
+) -> Calibration:
+    """Calibrate a setup from frames of a lamp: geometry + wavelength solution.
+
+    Parameters
+    ----------
+    frames : path, glob, folder, video, sequence of them, or ndarray(s)
+        Frames of the lamp (stacked).
+    lamp : str
+        Lamp name (``cfl``, ``hg``, ``ne``, ``he``, ``h``, ``ar``, ``kr``, ``xe``, ``na``).
+    dark : same kinds as ``frames``, or StackedFrame, optional
+        Dark frames subtracted from every stack.
+    gamma, channel, stack : str
+        Linearisation, channel combination and stacking (see :mod:`benchspec.frames`).
+    extraction : {"optimal", "box"}
+    hint_lines_per_mm : float, optional
+        Groove density of the grating; narrows the dispersion search
+        (:func:`benchspec.wavecal.dispersion_range_for_grating`).
+    pairs : sequence of ManualPair
+        Manual pixel=nm pairs (e.g. a laser), on the rectified-column axis.
+    more_lamps : sequence of (frames, lamp)
+        Frames of other lamps taken with the same setup; all lines go into one solution.
+    min_snr : float
+        Line detection threshold.
+
+    Returns
+    -------
+    Calibration
+
+    Raises
+    ------
+    FrameError, GeometryError, FileFormatError, CalibrationError
+        Unusable frames, no band or a band at the edge, unreadable files, no
+        trustworthy wavelength solution.
+    """
+    load_lamp(lamp)  # a wrong lamp name fails before any work
+    for _, other in more_lamps:
+        load_lamp(other)
+    stacked, records, dark_records = _stack(frames, dark=dark, gamma=gamma, channel=channel, method=stack)
+    geometry = measure_geometry(stacked.image, saturated=stacked.saturated)
+    spectrum = extract_stack(stacked, geometry, method=extraction)
+    table = find_lines(spectrum, min_snr=min_snr)
+    d_range = (0.1, 3.0)
+    if hint_lines_per_mm is not None:
+        d_range = dispersion_range_for_grating(hint_lines_per_mm, frame_width_px=geometry.frame_width_px)
+    for record in records:
+        record["lamp"] = lamp
+    lamps = [lamp]
+    if more_lamps:
+        observations: list[tuple[LineTable, str]] = [(table, lamp)]
+        for other_frames, other_lamp in more_lamps:
+            other_stack, other_records, _ = _stack(other_frames, dark=dark, gamma=gamma, channel=channel, method=stack)
+            if other_stack.shape != stacked.shape:
+                raise FrameError(
+                    f"the {other_lamp} frames are {other_stack.shape[1]}x{other_stack.shape[0]} px but the {lamp} frames are "
+                    f"{stacked.shape[1]}x{stacked.shape[0]} px; combine frames of one camera setup only"
+                )
+            other_spectrum = extract_stack(other_stack, geometry, method=extraction)
+            observations.append((find_lines(other_spectrum, min_snr=min_snr), other_lamp))
+            for record in other_records:
+                record["lamp"] = other_lamp
+            records.extend(other_records)
+            lamps.append(other_lamp)
+        wavelength = calibrate_combined(observations, pairs=pairs, dispersion_range_nm_per_px=d_range)
+    else:
+        wavelength = calibrate_lines(table, lamp=lamp, pairs=pairs, dispersion_range_nm_per_px=d_range)
+    if wavelength.verdict == "poor":
+        warnings.warn(f"wavelength calibration is poor: {wavelength.verdict_reason}", DegradedResultWarning, stacklevel=2)
+    settings = {
+        "gamma": stacked.settings.get("gamma", gamma),
+        "gamma_requested": gamma,
+        "channel": channel,
+        "stack": stack,
+        "extraction": extraction,
+        "min_snr": min_snr,
+        "hint_lines_per_mm": hint_lines_per_mm,
+        "dispersion_range_nm_per_px": list(d_range),
+        "pairs": [{"pixel": p.pixel, "wavelength_nm": p.wavelength_nm, "tolerance_nm": p.tolerance_nm} for p in pairs],
+        "lamps": lamps,
+        "n_frames": stacked.n_frames,
+    }
+    return Calibration(
+        geometry=geometry,
+        wavelength=wavelength,
+        frames=tuple(records),
+        dark_frames=tuple(dark_records),
+        settings=settings,
+        line_list=tuple(_line_list_record(lamps)),
+        reference_spectrum=tuple(float(v) for v in spectrum.intensity),
+        created_utc="",
+    )
+
+
+# --------------------------------------------------------------------------- applying a calibration
+
+
+def _monotonic_span(wavelength: np.ndarray, anchor: int) -> tuple[int, int]:
+    """The contiguous run of columns around ``anchor`` where the wavelength is strictly monotonic."""
+    steps = np.diff(wavelength)
+    sign = np.sign(steps[min(max(anchor, 0), steps.size - 1)])
+    good = np.sign(steps) == sign
+    start = anchor
+    while start > 0 and good[start - 1]:
+        start -= 1
+    stop = anchor
+    while stop < steps.size and good[stop]:
+        stop += 1
+    return start, stop + 1
+
+
+def apply_calibration(spectrum: Spectrum, calibration: Calibration | WavelengthCalibration) -> Spectrum:
+    """A copy of a pixel-axis spectrum with the wavelength axis and its 1-sigma, wavelength increasing.
+
+    Columns where the polynomial is not monotonic (far outside the lines) are dropped.
+    """
+    wavelength_cal = calibration.wavelength if isinstance(calibration, Calibration) else calibration
+    if not isinstance(wavelength_cal, WavelengthCalibration):
+        raise InputError(f"`calibration` must be a Calibration or WavelengthCalibration, got {type(calibration).__name__}")
+    solution = wavelength_cal.solution
+    pixel = np.asarray(spectrum.pixel, dtype=float)
+    wavelength = solution.wavelength_nm(pixel)
+    centre = float(np.median([m.pixel for m in wavelength_cal.matches]))
+    anchor = int(np.argmin(np.abs(pixel - centre)))
+    start, stop = _monotonic_span(wavelength, anchor)
+    keep = slice(start, stop)
+    order = np.arange(start, stop)
+    if wavelength[stop - 1] < wavelength[start]:
+        order = order[::-1]
+    if order.size < 2:
+        raise CalibrationError("the wavelength solution is not monotonic over the spectrum; recalibrate")
+    provenance = dict(spectrum.provenance)
+    provenance["wavelength_calibration"] = {
+        "lamps": list(wavelength_cal.lamps),
+        "rms_px": wavelength_cal.rms_px,
+        "rms_nm": wavelength_cal.rms_nm,
+        "verdict": wavelength_cal.verdict,
+        "polynomial_order": solution.order,
+        "line_list_sources": list(wavelength_cal.line_list_sources),
+        "columns_kept": [int(start), int(stop)],
+    }
+    del keep
+    return Spectrum(
+        intensity=spectrum.intensity[order],
+        uncertainty=spectrum.uncertainty[order],
+        pixel=pixel[order],
+        wavelength_nm=wavelength[order],
+        wavelength_uncertainty_nm=solution.uncertainty_nm(pixel[order]),
+        saturated=spectrum.saturated[order],
+        provenance=provenance,
+    )
+
+
+def _calibration_mapping(calibration: Calibration, path) -> dict:
+    w = calibration.wavelength
+    return {
+        "path": None if path is None else str(path),
+        "lamp": ", ".join(w.lamps),
+        "rms_nm": w.rms_nm,
+        "rms_px": w.rms_px,
+        "line_list_source": "; ".join(w.line_list_sources),
+        "polynomial_order": w.solution.order,
+        "verdict": w.verdict,
+        "created_utc": calibration.created_utc,
+    }
+
+
+def _check_band(image, calibration: Calibration, label: str) -> dict:
+    shift = measure_band_shift(image, calibration.geometry)
+    if shift.measured and shift.moved:
+        warnings.warn(f"{label}: {shift.message}", DegradedResultWarning, stacklevel=3)
+    return {"measured": shift.measured, "moved": shift.moved, "across_px": shift.across_px,
+            "rotation_change_deg": shift.rotation_change_deg, "message": shift.message}
+
+
+def extract_frames(
+    frames,
+    calibration: Calibration | str | os.PathLike,
+    *,
+    dark=None,
+    each: bool = False,
+    extraction: str | None = None,
+):
+    """Apply a stored calibration to frames of the same setup.
+
+    Parameters
+    ----------
+    frames : path, glob, folder, video, sequence of them, or ndarray(s)
+    calibration : Calibration or path of a calibration file
+    dark : optional
+        Dark frames, as in :func:`calibrate_frames`.
+    each : bool
+        False: stack the frames into one spectrum. True: one spectrum per
+        frame (a time series; every frame of a video).
+    extraction : {"optimal", "box"}, optional
+        Default: the method stored in the calibration.
+
+    Returns
+    -------
+    Spectrum, or list of Spectrum with ``each=True``
+        Wavelength axis (increasing) with its 1-sigma uncertainty; the
+        provenance names the frames, their hashes and the calibration.
+
+    Warns
+    -----
+    DegradedResultWarning
+        The band has moved since calibration (the setup was bumped).
+
+    Raises
+    ------
+    FrameError
+        Frames of another size than the calibration's (another camera resolution).
+    """
+    from .io import build_provenance
+
+    cal_path = None
+    if isinstance(calibration, (str, os.PathLike)):
+        cal_path = Path(calibration)
+        calibration = read_calibration(cal_path)
+    if not isinstance(calibration, Calibration):
+        raise InputError(f"`calibration` must be a Calibration or a calibration file path, got {type(calibration).__name__}")
+    settings = calibration.settings
+    gamma = str(settings.get("gamma_requested", settings.get("gamma", "auto")))
+    channel = str(settings.get("channel", "mean"))
+    method = str(settings.get("stack", "mean"))
+    extraction = extraction or str(settings.get("extraction", "optimal"))
+    cal_record = _calibration_mapping(calibration, cal_path)
+    run_settings = {"gamma": gamma, "channel": channel, "stack": method, "extraction": extraction}
+
+    if not each:
+        stacked, records, dark_records = _stack(frames, dark=dark, gamma=gamma, channel=channel, method=method)
+        band = _check_band(stacked.image, calibration, "frames")
+        spectrum = extract_stack(stacked, calibration.geometry, method=extraction)
+        provenance = build_provenance(
+            frames=[r for r in records if r["path"]] or [{"path": None, "description": "frames passed as arrays", "sha256": None}],
+            dark_frames=[r for r in dark_records if r["path"]],
+            calibration=cal_record,
+            settings=dict(run_settings, gamma_resolved=stacked.settings.get("gamma"), n_frames=stacked.n_frames),
+            extra={"band_check": band},
+        )
+        return apply_calibration(spectrum.with_(provenance=provenance), calibration)
+
+    # One spectrum per frame: the dark is stacked once, every frame is linearised alike.
+    dark_stack = None
+    dark_records: list[dict] = []
+    if dark is not None:
+        if isinstance(dark, StackedFrame):
+            dark_stack = dark
+        elif _is_array_input(dark):
+            dark_stack = stack_frames([dark] if isinstance(dark, np.ndarray) else list(dark), gamma=gamma,
+                                      channel=channel, check=False)
+        else:
+            dark_stack = stack_frames(iter_frames(dark), gamma=gamma, channel=channel, check=False)
+            dark_records = [{"path": str(p), "sha256": file_sha256(p)} for p in expand_sources(dark)]
+    if _is_array_input(frames):
+        arrays = [frames] if isinstance(frames, np.ndarray) else list(frames)
+        sources = [(None, k, a) for k, a in enumerate(arrays)]
+    else:
+        sources = _iter_labelled(frames)
+    spectra = []
+    for path, index, frame in sources:
+        stacked = stack_frames([frame], gamma=gamma, channel=channel, dark=dark_stack)
+        label = f"{path or 'array'} frame {index}"
+        band = _check_band(stacked.image, calibration, label)
+        spectrum = extract_stack(stacked, calibration.geometry, method=extraction)
+        provenance = build_provenance(
+            frames=[{"path": None if path is None else str(path), "frame_index": index, "sha256": None}],
+            dark_frames=[r for r in dark_records if r["path"]],
+            calibration=cal_record,
+            settings=dict(run_settings, gamma_resolved=stacked.settings.get("gamma"), n_frames=1),
+            extra={"band_check": band, "time_series_index": len(spectra)},
+        )
+        spectra.append(apply_calibration(spectrum.with_(provenance=provenance), calibration))
+    if not spectra:
+        raise FrameError("no frames to extract; pass image files, a folder, a glob pattern or a video")
+    return spectra
+
+
+def _iter_labelled(frames):
+    """(path, index within the file, frame) for every frame named by ``frames``."""
+    from .frames import _is_video, iter_video, read_image
+
+    for path in expand_sources(frames):
+        if _is_video(path):
+            for index, frame in enumerate(iter_video(path)):
+                yield path, index, frame
+        else:
+            yield path, 0, read_image(path)
