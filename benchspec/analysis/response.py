@@ -400,13 +400,25 @@ def response_from_dict(obj: Any, *, source: str = "response") -> SpectralRespons
     for key in ("wavelength_nm", "relative_response", "uncertainty", "valid", "reference"):
         if key not in obj:
             raise bad(f"key {key!r} is missing")
-    try:
-        wl = np.array(obj["wavelength_nm"], dtype=np.float64)
-        values = np.array([np.nan if v is None else v for v in obj["relative_response"]], dtype=np.float64)
-        sigma = np.array([np.nan if v is None else v for v in obj["uncertainty"]], dtype=np.float64)
-        valid = np.array(obj["valid"], dtype=bool)
-    except (TypeError, ValueError) as exc:
-        raise bad(f"arrays are malformed ({exc})") from None
+    def numeric_list(key, *, allow_null):
+        items = obj[key]
+        if not isinstance(items, list):
+            raise bad(f"{key} must be a list")
+        for v in items:
+            if v is None and allow_null:
+                continue
+            if isinstance(v, bool) or not isinstance(v, (int, float)):
+                raise bad(f"{key} holds {v!r}; expected numbers{' or null' if allow_null else ''}")
+        return np.array([np.nan if v is None else v for v in items], dtype=np.float64)
+
+    wl = numeric_list("wavelength_nm", allow_null=False)
+    values = numeric_list("relative_response", allow_null=True)
+    sigma = numeric_list("uncertainty", allow_null=True)
+    if not isinstance(obj["valid"], list) or not all(isinstance(v, bool) for v in obj["valid"]):
+        raise bad("valid must be a list of true/false")
+    valid = np.array(obj["valid"], dtype=bool)
+    if not isinstance(obj["reference"], str):
+        raise bad("reference must be a string")
     n = wl.size
     if n < 2 or not all(a.ndim == 1 and a.size == n for a in (values, sigma, valid)):
         raise bad("wavelength_nm, relative_response, uncertainty and valid must be lists of the same length (at least 2)")
@@ -427,6 +439,20 @@ def response_from_dict(obj: Any, *, source: str = "response") -> SpectralRespons
     runs = contiguous_runs(valid)
     start, stop = max(runs, key=lambda r: r[1] - r[0])
     temperature = obj.get("temperature_k")
+    provenance = obj.get("provenance") or {}
+    if not isinstance(provenance, Mapping):
+        raise bad("provenance must be a JSON object")
+    numbers = {}
+    for key in ("temperature_k", "smoothing_nm", "min_signal_fraction"):
+        value = obj.get(key)
+        if value is None:
+            numbers[key] = None
+            continue
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+            raise bad(f"{key} must be a finite number or null, got {value!r}")
+        numbers[key] = float(value)
+    if obj["reference"] == "planck" and not (numbers["temperature_k"] and numbers["temperature_k"] > 0):
+        raise bad(f"a Planck response needs a positive temperature_k, got {temperature!r}")
     return SpectralResponse(
         wavelength_nm=wl,
         relative_response=np.where(valid, values, np.nan),
@@ -434,10 +460,10 @@ def response_from_dict(obj: Any, *, source: str = "response") -> SpectralRespons
         valid=valid,
         valid_range_nm=(float(wl[start]), float(wl[stop - 1])),
         reference=obj["reference"],
-        temperature_k=None if temperature is None else float(temperature),
-        smoothing_nm=float(obj.get("smoothing_nm") or 0.0),
-        min_signal_fraction=float(obj.get("min_signal_fraction") or 0.0),
-        provenance=dict(obj.get("provenance") or {}),
+        temperature_k=numbers["temperature_k"],
+        smoothing_nm=numbers["smoothing_nm"] or 0.0,
+        min_signal_fraction=numbers["min_signal_fraction"] or 0.0,
+        provenance=dict(provenance),
     )
 
 
