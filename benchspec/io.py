@@ -22,6 +22,8 @@ Formats, chosen by the extension of the destination
       is the column index along the dispersion axis of the rectified band
       (0 = first column of the rectified image), rows in the spectrum's order.
 
+    An absorbance, transmittance or reflectance spectrum (``provenance["quantity"]``)
+    names its value column after the quantity instead of ``intensity``.
     ``saturated`` is ``0`` or ``1``. Floats are written with Python's shortest
     round-trip representation, so a file read back gives the same numbers
     bit for bit.
@@ -135,6 +137,8 @@ _JCAMP_YUNITS = {
     "transmittance": "TRANSMITTANCE",
     "reflectance": "REFLECTANCE",
 }
+# Quantities whose CSV value column is named after them instead of "intensity".
+_NAMED_QUANTITIES = ("absorbance", "transmittance", "reflectance")
 # Column names of quantities other than "intensity" that a spectrum table may carry.
 _VALUE_COLUMNS = ("intensity", "absorbance", "transmittance", "reflectance", "irradiance", "relative_irradiance", "counts", "signal")
 
@@ -962,7 +966,8 @@ def _spectrum_csv_text(spectrum: Spectrum) -> str:
         columns["wavelength_nm"] = spectrum.wavelength_nm
     else:
         columns["pixel"] = spectrum.pixel
-    columns["intensity"] = spectrum.intensity
+    quantity = str(spectrum.provenance.get("quantity", "intensity"))
+    columns[quantity if quantity in _NAMED_QUANTITIES else "intensity"] = spectrum.intensity
     columns["uncertainty"] = spectrum.uncertainty
     columns["saturated"] = spectrum.saturated
     if spectrum.is_calibrated:

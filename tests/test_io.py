@@ -487,3 +487,17 @@ def test_jcamp_property_independent_reader_agrees(tmp_path, values, start, step,
     np.testing.assert_array_equal(data["x"], spectrum.wavelength_nm)
     np.testing.assert_array_equal(data["y"], spectrum.intensity)
     _assert_same(spectrum, bio.read_spectrum(path))
+
+
+@pytest.mark.parametrize("extension", [".csv", ".json", ".jdx"])
+def test_absorbance_spectrum_exports_in_every_format(tmp_path, rng, extension):
+    wavelength = 420.0 + 0.31 * np.arange(300.0) + 2e-5 * np.arange(300.0) ** 2
+    spectrum = benchspec.as_spectrum(wavelength, rng.uniform(0.0, 1.5, 300), uncertainty=np.full(300, 0.01),
+                                     provenance=bio.build_provenance(quantity="absorbance", intensity_unit="absorbance"))
+    path = bio.write_spectrum(spectrum, tmp_path / f"abs{extension}")
+    if extension == ".csv":
+        header = [line for line in path.read_text(encoding="utf-8").splitlines() if not line.startswith("#")][0]
+        assert header.startswith("wavelength_nm,absorbance,uncertainty,saturated")
+    if extension == ".jdx":
+        assert _jcamp_read(path)["yunits"] == "ABSORBANCE"
+    _assert_same(spectrum, bio.read_spectrum(path))
