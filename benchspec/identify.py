@@ -8,9 +8,11 @@ The method, in the order it runs:
    noise are found (``scipy.signal.find_peaks``); their centres are
    half-maximum centroids and their widths are measured at half prominence.
 3. **Line-spread function (LSF).** Unless ``fwhm_nm`` is given, the LSF
-   FWHM is the 30th percentile of the widths of the significant peaks. A
-   spectrum whose narrowest peak is broader than 12 nm has no lines (an LED,
-   a lamp continuum) and is ``unknown``. Each sample is modelled as the
+   FWHM is the 25th percentile of the widths of the significant peaks
+   (blends only widen peaks). A spectrum whose narrowest significant peak is
+   broader than 12 nm has no lines (an LED, a lamp continuum) and is
+   ``unknown``, unless it shows four or more peaks of which one is narrow
+   (a dense line spectrum seen at low resolution). Each sample is modelled as the
    integral of the line profile over the sample's own width (a box), so the
    model works at any sampling: 0.05 nm spectrometer pixels or the 5 nm
    steps of tabulated lamp spectra.
@@ -440,10 +442,17 @@ def _estimate_fwhm(lines: Sequence[ObservedLine], min_snr: float) -> float | Non
         return None
     clear = np.array([l.fwhm_nm for l in lines if l.snr >= 2.0 * min_snr])
     if clear.size >= 3:
-        return float(np.percentile(clear, 25))
-    strongest = max(l.snr for l in lines)
-    threshold = min(max(3.0 * min_snr, 0.1 * strongest), strongest)
-    return float(min(l.fwhm_nm for l in lines if l.snr >= threshold))
+        estimate = float(np.percentile(clear, 25))
+    else:
+        strongest = max(l.snr for l in lines)
+        threshold = min(max(3.0 * min_snr, 0.1 * strongest), strongest)
+        estimate = float(min(l.fwhm_nm for l in lines if l.snr >= threshold))
+    if estimate > _BROADEST_LINE_NM and len(lines) >= 4:
+        # Several peaks, the clear ones all blends: a dense line spectrum at low resolution
+        # (a single LED gives one or two broad peaks). The narrowest peak is the better guide.
+        narrowest = float(min(l.fwhm_nm for l in lines))
+        estimate = narrowest if narrowest <= _BROADEST_LINE_NM else estimate
+    return estimate
 
 
 # --------------------------------------------------------------------------- forward model
@@ -606,8 +615,7 @@ def identify(
     if not lines:
         notes.append(f"every peak is broader than {broad_limit:.1f} nm (twice the line width): no line spectrum")
         return _unknown(wavelength, max_shift_nm, notes, observed=observed, fwhm=lsf_fwhm)
-    # Gaussian part of the LSF: the sample box (variance step^2/12) is modelled separately.
-    sigma_lsf = np.sqrt(max((lsf_fwhm / _FWHM_PER_SIGMA) ** 2 - median_step**2 / 12.0, (0.25 * median_step) ** 2, 0.02**2))
+    sigma_lsf = _gaussian_sigma(lsf_fwhm, median_step)
 
     templates = []
     for symbol in candidates:
@@ -746,6 +754,11 @@ def _explained_total(wavelength, intensity, components, continuum, near) -> floa
         return 0.0
     supported = np.minimum(components.sum(axis=1), excess)
     return float(min(1.0, np.sum(supported[near] * step[near]) / total))
+
+
+def _gaussian_sigma(fwhm: float, median_step: float) -> float:
+    """Gaussian part of the LSF: the sample box (variance step^2/12) is modelled separately."""
+    return float(np.sqrt(max((fwhm / _FWHM_PER_SIGMA) ** 2 - median_step**2 / 12.0, (0.25 * median_step) ** 2, 0.02**2)))
 
 
 def _response_knots(wavelength: np.ndarray) -> np.ndarray:
