@@ -229,6 +229,18 @@ def _text_block(figure: Figure, lines: Sequence[str], *, x: float, top: float, w
                 family=_MONO if mono else None)
 
 
+def _calibration_core(calibration: Mapping[str, Any] | None) -> Mapping[str, Any]:
+    """The part of a calibration record that holds the verdict: the calibration file's
+    ``wavelength_calibration``, a wrapper's ``calibration``, or the record itself."""
+    if not calibration:
+        return {}
+    for key in ("wavelength_calibration", "calibration"):
+        inner = calibration.get(key)
+        if isinstance(inner, Mapping) and "verdict" in inner:
+            return inner
+    return calibration
+
+
 def build_report(
     spectra,
     *,
@@ -292,10 +304,11 @@ def build_report(
         residual_ax = figure.add_axes((0.09, 0.455, 0.86, 0.095))
         residual_data = normalise_residuals(calibration) if calibration else None
         residual_title = "wavelength calibration residuals"
-        if calibration and calibration.get("verdict"):
-            residual_title += f"; verdict: {calibration['verdict']}"
-            if calibration.get("verdict_reason"):
-                residual_title += f" ({str(calibration['verdict_reason'])[:90]})"
+        core = _calibration_core(calibration)
+        if core.get("verdict"):
+            residual_title += f"; verdict: {core['verdict']}"
+            if core.get("verdict_reason"):
+                residual_title += f" ({str(core['verdict_reason'])[:90]})"
         plot_residuals(residual_ax, residual_data, title=residual_title)
         residual_ax.xaxis.label.set_size(7.5)
         residual_ax.yaxis.label.set_size(7.5)

@@ -159,3 +159,13 @@ def test_report_command(tmp_path, helium, capsys):
     assert main(["report", str(tmp_path / "missing.csv"), "--out", str(tmp_path / "x.pdf")]) == 2
     assert not (tmp_path / "x.pdf").exists()
     assert main(["report", str(spectrum), "--out", str(out), "--force", "--source-type", "laser"]) == 0
+
+
+def test_calibration_file_layout_gives_residuals_and_verdict(tmp_path, helium):
+    # The calibration file nests the solution under `wavelength_calibration` (benchspec.calfile schema).
+    calibration_file = {"schema": "benchspec.calibration/1", "wavelength_calibration": CALIBRATION}
+    figure = build_report(helium, calibration=calibration_file)
+    titles = [ax.get_title(loc="left") for ax in figure.axes]
+    assert any("verdict: good" in t for t in titles)
+    residual_ax = next(ax for ax in figure.axes if ax.get_ylabel() == "residual (nm)")
+    assert len(residual_ax.collections[-1].get_offsets()) == len(CALIBRATION["matches"])
