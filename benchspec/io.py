@@ -1128,10 +1128,14 @@ def _read_plain_text(path: Path, text: str) -> Spectrum:
     x_scale = 1.0
     value_column = 1
     uncertainty_column = None
+    pixel_axis = False
+    unit_named = False
     if header is not None:
         if len(header) < 2:
             raise FileFormatError(f"{path}: the header {lines[0][1]!r} has fewer than two columns; need wavelength and intensity")
-        scale = _x_unit_from_header(path, header[0])
+        pixel_axis = bool(re.match(r"^\s*(pixel|pixels|px|column|col|index)\b", header[0].lower()))
+        scale = None if pixel_axis else _x_unit_from_header(path, header[0])
+        unit_named = scale is not None
         x_scale = 1.0 if scale is None else scale
         lowered = [h.lower() for h in header]
         for i, name in enumerate(lowered[1:], start=1):
@@ -1178,7 +1182,7 @@ def _read_plain_text(path: Path, text: str) -> Spectrum:
             raise FileFormatError(
                 f"{path} line {data[i + 1][0]}: wavelengths are not strictly increasing ({xs[i + 1]!r} after {xs[i]!r}); sort the rows and drop repeats"
             )
-    if header is None and (x[0] < 100 or x[-1] > 20000):
+    if not pixel_axis and not unit_named and (x[0] < 100 or x[-1] > 20000):
         raise FileFormatError(
             f"{path}: x runs from {x[0]:g} to {x[-1]:g}, which does not look like wavelengths in nm; "
             "add a header naming the unit, e.g. 'wavelength (A),intensity'"
@@ -1196,6 +1200,9 @@ def _read_plain_text(path: Path, text: str) -> Spectrum:
         "quantity": "intensity",
         "intensity_unit": "as imported",
     }
+    if pixel_axis:  # an uncalibrated spectrum: x is the pixel column
+        return _build_spectrum(path, wavelength=None, intensity=y, uncertainty=u, pixel=x, saturated=None,
+                               wavelength_uncertainty=None, provenance=provenance)
     return _build_spectrum(path, wavelength=x, intensity=y, uncertainty=u, pixel=None, saturated=None, wavelength_uncertainty=None, provenance=provenance)
 
 

@@ -210,6 +210,14 @@ def test_plain_text_spectra_import(tmp_path, name, content, wavelength, intensit
     assert np.all(spectrum.uncertainty > 0)
 
 
+def test_plain_text_pixel_axis_gives_an_uncalibrated_spectrum(tmp_path):
+    path = tmp_path / "raw.txt"
+    path.write_text("pixel counts\n10 5\n11 7\n12 6\n", encoding="utf-8")
+    spectrum = bio.read_spectrum(path)
+    assert not spectrum.is_calibrated
+    np.testing.assert_array_equal(spectrum.pixel, [10, 11, 12])
+
+
 def test_plain_text_uncertainty_column_is_used(tmp_path):
     path = tmp_path / "with sigma.csv"
     path.write_text("wavelength_nm,signal,sigma\n500,10,0.5\n501,11,0.6\n", encoding="utf-8")
@@ -268,6 +276,7 @@ BAD_FILES = {
     "units.csv": (b"# schema: benchspec.spectrum/1\nwavelength_um,intensity,uncertainty,saturated\n0.4,1,1,0\n0.5,1,1,0\n", "not a wavelength in nm"),
     "wavenumber.txt": (b"wavenumber (cm-1),intensity\n20000,1\n20001,2\n", "not a wavelength"),
     "metres.txt": (b"4.0e-7 1\n5.0e-7 2\n", "does not look like wavelengths"),
+    "metres header.txt": (b"wavelength intensity\n4.0e-7 1\n5.0e-7 2\n", "does not look like wavelengths"),
     "shuffled.csv": (b"# schema: benchspec.spectrum/1\nwavelength_nm,intensity,uncertainty,saturated\n400,1,1,0\n402,1,1,0\n401,1,1,0\n", "not strictly increasing"),
     "repeated.txt": (b"400 1\n401 1\n401 2\n", "not strictly increasing"),
     "ragged.csv": (b"# schema: benchspec.spectrum/1\nwavelength_nm,intensity,uncertainty,saturated\n400,1,1,0\n401,2,1\n", "truncated"),
