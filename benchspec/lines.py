@@ -213,6 +213,29 @@ def _gaussian_model(x0):
     return model
 
 
+def _gaussian_jacobian(x0):
+    """Analytic Jacobian of :func:`_gaussian_model` (one row per sample, one column per parameter).
+
+    Exact derivatives spare the fit one model evaluation per parameter per
+    iteration (finite differences), which made line fitting about 15 times slower.
+    """
+
+    def jacobian(x, *params):
+        jac = np.empty((x.size, len(params)))
+        jac[:, 0] = x - x0
+        jac[:, 1] = 1.0
+        for k in range(2, len(params), 3):
+            amplitude, centre, sigma = params[k : k + 3]
+            z = (x - centre) / sigma
+            e = np.exp(-0.5 * z * z)
+            jac[:, k] = e
+            jac[:, k + 1] = amplitude * e * z / sigma
+            jac[:, k + 2] = amplitude * e * z * z / sigma
+        return jac
+
+    return jacobian
+
+
 def _fit_group(x, y, sigma, use, guesses):
     """Least-squares fit of several Gaussians on a linear background.
 
@@ -223,6 +246,7 @@ def _fit_group(x, y, sigma, use, guesses):
     if xs.size < n_params + 1:
         return None
     model = _gaussian_model(float(np.mean(xs)))
+    jacobian = _gaussian_jacobian(float(np.mean(xs)))
     edge = np.r_[ys[:2], ys[-2:]]
     p0 = [0.0, float(np.min(edge))]
     lower = [-np.inf, -np.inf]
@@ -237,7 +261,8 @@ def _fit_group(x, y, sigma, use, guesses):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             params, cov = optimize.curve_fit(
-                model, xs, ys, p0=p0, sigma=ss, absolute_sigma=True, bounds=(lower, upper), maxfev=4000
+                model, xs, ys, p0=p0, sigma=ss, absolute_sigma=True, bounds=(lower, upper), maxfev=4000,
+                jac=jacobian, x_scale="jac",  # scaled by the Jacobian: amplitudes and centres differ by 1e4
             )
     except (RuntimeError, ValueError, optimize.OptimizeWarning):
         return None
@@ -393,7 +418,7 @@ def find_lines(
             fitted.append((float(centre), centre_sigma, float(width_sigma), float(amplitude), background, chi2,
                            bool(np.any(saturated & core)) or (clipped_group and len(group) == 1), len(group), k))
 
-    lines = _assemble(fitted, spectrum, sigma, continuum, kind, x, n)
+    lines = _assemble(fitted, spectrum, sigma, continuum, kind, x, n, min_snr)
     return LineTable(tuple(lines), kind, float(np.median(sigma)), float(min_snr), n,
                      (float(spectrum.pixel[0]), float(spectrum.pixel[-1])))
 
@@ -427,10 +452,13 @@ def _fit_single(x, y, sigma, saturated, peak, width, prominence, n):
             float(params[1] + params[0] * (centre - x0)), chi2, bool(np.any(saturated & core)))
 
 
-def _assemble(fitted, spectrum, sigma, continuum, kind, x, n):
+def _assemble(fitted, spectrum, sigma, continuum, kind, x, n, min_snr):
     if not fitted:
         return []
     fitted = [f for f in fitted if 0 <= f[0] <= n - 1 and np.isfinite(f[1]) and f[3] > 0]
+    # A fit can shrink a noise bump found at the detection threshold to nothing: keep fitted lines
+    # whose height still clears half the threshold.
+    fitted = [f for f in fitted if f[3] >= 0.5 * min_snr * sigma[int(np.clip(round(f[0]), 0, n - 1))]]
     fitted.sort(key=lambda f: f[0])
     # Two guesses can converge on the same line: keep the stronger.
     merged = []

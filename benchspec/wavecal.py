@@ -650,7 +650,8 @@ def _robust_fit(t, lam, sigma, *, max_order, monotonic_t):
     # lines the search starts at order 2; order 1 is only for three or four lines.
     lowest = 2 if m >= 5 and max_order >= 2 else 1
     for order in range(lowest, max_order + 1):
-        if m < order + 2 and not (order == 1 and m == 2):
+        # order 3 needs two spare lines, lower orders one (or none for a line through two points)
+        if m < order + (3 if order == 3 else 2) and not (order == 1 and m == 2):
             break
         coeffs, cov, residual, chi2 = _weighted_polyfit(t[keep], lam[keep], sigma[keep], order)
         deriv = np.polynomial.polynomial.polyval(monotonic_t, np.polynomial.polynomial.polyder(coeffs))
@@ -815,13 +816,13 @@ def _final_score(c: _Candidate, peaks: _Peaks, *, centre, scale, t_ends, fwhm, n
         density = max(int(near.sum()), 1) / min(40 * fwhm, range_px)
         width = 2 * max(abs(c.resid_px[k]), peaks.sigma[pi], 0.1)
         score += -math.log(min(1.0, width * density))
-    score -= 1.5 * (c.coefficients.size - n_pairs if n_pairs < c.coefficients.size else 0)
+    score -= 2.0 * max(0, c.coefficients.size - n_pairs)
     # Brightness should roughly follow the listed intensities (camera response and lamp-to-lamp
     # differences allow a factor 5 brighter or 30 fainter at 1 sigma): a bright line on a faint
     # reference costs evidence.
     use = c.used
     if use.sum() >= 3:
-        log_peak = np.log(peaks.amplitude[c.peak_index[use]])
+        log_peak = np.log(np.maximum(peaks.amplitude[c.peak_index[use]], 1e-12))
         log_ref = np.log(np.maximum(f.intensity[c.feature_index[use]], 1e-6))
         delta = (log_peak - np.median(log_peak)) - (log_ref - np.median(log_ref))
         # Asymmetric: a weak camera response dims lines a lot, but nothing makes a faint line bright.
@@ -937,6 +938,11 @@ _MIN_EVIDENCE = 12.0
 _MIN_MARGIN = 3.0
 
 
+def _explained_top(c: _Candidate, peaks: _Peaks, k: int) -> float:
+    strongest = np.argsort(-peaks.amplitude)[: min(k, peaks.pixel.size)]
+    return float(np.isin(strongest, c.peak_index).mean())
+
+
 def _decide(candidates, peaks: _Peaks, *, lamp_label: str, pairs, context) -> _Candidate:
     n_peaks = peaks.pixel.size
     if not candidates:
@@ -953,9 +959,10 @@ def _decide(candidates, peaks: _Peaks, *, lamp_label: str, pairs, context) -> _C
             "trustworthy solution (3 with --pair); check --lamp, expose longer, or add --pair PIXEL=NM"
         )
     strong_fraction, flux_fraction = _explained(best, peaks)
-    if not pairs and (strong_fraction < 0.6 or flux_fraction < 0.5):
+    top3 = _explained_top(best, peaks, 3)
+    if not pairs and (strong_fraction < 0.8 or top3 < 2 / 3 - 1e-9 or flux_fraction < 0.5):
         raise CalibrationError(
-            f"the lines do not fit {lamp_label}: the best match explains {strong_fraction:.0%} of the 5 brightest lines "
+            f"the lines do not fit {lamp_label}: the best match explains {top3:.0%} of the 3 and {strong_fraction:.0%} of the 5 brightest lines "
             f"and {flux_fraction:.0%} of the line flux; check --lamp (or identify the source first)"
         )
     if not pairs:

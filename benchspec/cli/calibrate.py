@@ -1,0 +1,173 @@
+"""``benchspec calibrate``, ``benchspec extract`` and ``benchspec lines``.
+
+* ``calibrate FRAME... --lamp NAME [--dark FRAME...] [--hint-lines-per-mm N] [--pair PIXEL=NM ...]
+  [--with LAMP=FRAME[,FRAME...] ...] --out CAL.json [--force]`` prints the matched-line table, the
+  RMS and the verdict, and writes the calibration file.
+* ``extract FRAME... --calibration CAL.json [--dark FRAME...] [--each] --out SPEC.csv [--force]``
+  writes the calibrated spectrum (CSV: ``#`` provenance lines, then
+  ``wavelength_nm,intensity,uncertainty,saturated,...``, one row per column,
+  wavelength increasing); ``--each`` writes one file per frame
+  (``SPEC_0000.csv``, ``SPEC_0001.csv``, ...), a time series. The extension
+  of ``--out`` picks the format (.csv, .json, .jdx).
+* ``lines SPEC.csv [--absorption] [--json]`` prints the line table.
+
+Errors print one line and exit with code 2; nothing is written then.
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+from pathlib import Path
+
+from ..errors import ExportError, InputError
+
+
+def register(subparsers) -> None:
+    cal = subparsers.add_parser(
+        "calibrate",
+        help="find the band and calibrate wavelengths automatically from frames of a lamp",
+        description="Stack the frames of a lamp, find the band, its rotation and curvature, extract the spectrum "
+        "and match its lines to the lamp's reference lines with no first guess.",
+    )
+    cal.add_argument("frames", nargs="+", metavar="FRAME", help="image files, a folder, a glob or a video of the lamp")
+    cal.add_argument("--lamp", default="cfl", help="lamp in the frames: cfl (default), hg, ne, he, h, ar, kr, xe, na")
+    cal.add_argument("--dark", nargs="+", metavar="FRAME", help="dark frames (same exposure, lamp off)")
+    cal.add_argument("--hint-lines-per-mm", type=float, metavar="N", help="grating groove density, narrows the search")
+    cal.add_argument("--pair", action="append", default=[], metavar="PIXEL=NM",
+                     help="a known line at a rectified column, e.g. 812.4=532.0 (or 812.4=532.0+-0.3); repeatable")
+    cal.add_argument("--with", dest="more", action="append", default=[], metavar="LAMP=FRAME[,FRAME]",
+                     help="frames of another lamp from the same setup, combined into one solution; repeatable")
+    cal.add_argument("--gamma", default="auto", choices=("auto", "2.2", "srgb", "1"),
+                     help="transfer curve of the frames (auto: 2.2 for 8-bit, 1 for 16-bit)")
+    cal.add_argument("--channel", default="mean", choices=("mean", "r", "g", "b", "luma"), help="colour channel combination")
+    cal.add_argument("--stack", default="mean", choices=("mean", "median"), help="how frames are stacked")
+    cal.add_argument("--extraction", default="optimal", choices=("optimal", "box"), help="extraction method")
+    cal.add_argument("--out", required=True, metavar="CAL.json", help="calibration file to write")
+    cal.add_argument("--force", action="store_true", help="overwrite --out if it exists")
+    cal.set_defaults(handler=_calibrate)
+
+    ext = subparsers.add_parser(
+        "extract",
+        help="apply a calibration file to frames and write the calibrated spectrum",
+        description="Rectify and extract frames with a stored calibration; warns when the band has moved.",
+    )
+    ext.add_argument("frames", nargs="+", metavar="FRAME", help="image files, a folder, a glob or a video")
+    ext.add_argument("--calibration", required=True, metavar="CAL.json", help="file written by `benchspec calibrate`")
+    ext.add_argument("--dark", nargs="+", metavar="FRAME", help="dark frames")
+    ext.add_argument("--each", action="store_true", help="one spectrum per frame (time series) instead of stacking")
+    ext.add_argument("--extraction", choices=("optimal", "box"), help="override the calibration's extraction method")
+    ext.add_argument("--out", required=True, metavar="SPEC.csv", help="output spectrum (.csv, .json or .jdx)")
+    ext.add_argument("--force", action="store_true", help="overwrite existing output files")
+    ext.set_defaults(handler=_extract)
+
+    lines = subparsers.add_parser("lines", help="find and measure the lines of a spectrum file")
+    lines.add_argument("spectrum", metavar="SPEC.csv", help="a spectrum file (benchspec CSV, JSON or JCAMP-DX)")
+    lines.add_argument("--absorption", action="store_true", help="find dips against a fitted continuum")
+    lines.add_argument("--min-snr", type=float, default=5.0, help="detection threshold (default 5)")
+    lines.add_argument("--json", action="store_true", help="print JSON instead of a table")
+    lines.set_defaults(handler=_lines)
+
+
+# --------------------------------------------------------------------------- calibrate
+
+
+def _parse_more(items):
+    out = []
+    for item in items:
+        lamp, sep, frames = item.partition("=")
+        if not sep or not lamp.strip() or not frames.strip():
+            raise InputError(f"--with {item!r} must look like LAMP=FRAME[,FRAME...], e.g. ne=neon_1.png,neon_2.png")
+        out.append(([f for f in frames.split(",") if f], lamp.strip()))
+    return out
+
+
+def _calibrate(args) -> int:
+    from ..calfile import write_calibration
+    from ..pipeline import calibrate_frames
+    from ..refdata import load_lamp
+    from ..wavecal import parse_pair
+
+    out = Path(args.out)
+    if out.suffix.lower() != ".json":
+        raise ExportError(f"--out must name a .json file, got {out.name!r}")
+    if out.exists() and not args.force:
+        raise ExportError(f"{out} already exists; pass --force to overwrite it, or choose another name")
+    load_lamp(args.lamp)
+    pairs = [parse_pair(p) for p in args.pair]
+    more = _parse_more(args.more)
+    calibration = calibrate_frames(
+        args.frames, lamp=args.lamp, dark=args.dark, gamma=args.gamma, channel=args.channel, stack=args.stack,
+        extraction=args.extraction, hint_lines_per_mm=args.hint_lines_per_mm, pairs=pairs, more_lamps=more,
+    )
+    geometry = calibration.geometry
+    print(f"band: rotation {geometry.rotation_deg:+.2f} deg, {geometry.n_columns} columns, aperture rows "
+          f"{geometry.aperture_rows[0]}-{geometry.aperture_rows[1]}, curvature "
+          f"{'measured from %d lines' % geometry.n_lines_traced if geometry.curvature_known else 'unknown'}")
+    print(calibration.wavelength.format_table())
+    path = write_calibration(calibration, out, force=args.force)
+    print(f"wrote {path}")
+    return 0
+
+
+# --------------------------------------------------------------------------- extract
+
+
+def _write(spectrum, path: Path, *, force: bool):
+    try:
+        from ..io import write_spectrum
+    except ImportError:  # pragma: no cover - io ships with benchspec
+        raise ExportError("writing spectra needs benchspec.io") from None
+    return write_spectrum(spectrum, path, force=force)
+
+
+def _extract(args) -> int:
+    from ..io import SPECTRUM_EXTENSIONS
+    from ..pipeline import extract_frames
+
+    out = Path(args.out)
+    if out.suffix.lower() not in SPECTRUM_EXTENSIONS:
+        raise ExportError(f"cannot tell the format of {out}: use one of {', '.join(SPECTRUM_EXTENSIONS)}")
+    if not args.each and out.exists() and not args.force:
+        raise ExportError(f"{out} already exists; pass --force to overwrite it, or choose another name")
+    result = extract_frames(args.frames, args.calibration, dark=args.dark, each=args.each, extraction=args.extraction)
+    if not args.each:
+        path = _write(result, out, force=args.force)
+        print(f"wrote {path} ({result.size} columns, {result.wavelength_nm[0]:.1f}-{result.wavelength_nm[-1]:.1f} nm)")
+        return 0
+    targets = [out.with_name(f"{out.stem}_{k:04d}{out.suffix}") for k in range(len(result))]
+    clash = [t for t in targets if t.exists()]
+    if clash and not args.force:
+        raise ExportError(f"{clash[0]} already exists; pass --force to overwrite the series, or choose another name")
+    for spectrum, target in zip(result, targets):
+        _write(spectrum, target, force=args.force)
+    print(f"wrote {len(targets)} spectra: {targets[0].name} ... {targets[-1].name}")
+    return 0
+
+
+# --------------------------------------------------------------------------- lines
+
+
+def _lines(args) -> int:
+    from ..io import read_spectrum
+    from ..lines import find_lines
+
+    spectrum = read_spectrum(args.spectrum)
+    table = find_lines(spectrum, absorption=args.absorption, min_snr=args.min_snr)
+    if args.json:
+        json.dump({"kind": table.kind, "noise": table.noise, "min_snr": table.min_snr, "lines": table.to_dicts()},
+                  sys.stdout, indent=1)
+        print()
+        return 0
+    calibrated = spectrum.is_calibrated
+    header = "   centre_nm  +-1s_nm  fwhm_nm" if calibrated else "   centre_px  +-1s_px  fwhm_px"
+    print(header + "        peak        area     snr  flags")
+    for line in table:
+        flags = ",".join(f for f, on in (("blend", line.blended), ("sat", line.saturated)) if on)
+        if calibrated:
+            position = f"{line.centre_nm:12.3f} {line.centre_uncertainty_nm:8.3f} {line.fwhm_nm:8.3f}"
+        else:
+            position = f"{line.centre_px:12.2f} {line.centre_uncertainty_px:8.3f} {line.fwhm_px:8.2f}"
+        print(f"{position} {line.peak:11.4g} {line.area:11.4g} {line.snr:7.1f}  {flags}")
+    print(f"{len(table)} {table.kind} lines (SNR >= {table.min_snr:g})")
+    return 0
