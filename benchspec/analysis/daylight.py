@@ -19,7 +19,6 @@ import io
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.ndimage import percentile_filter
 from scipy.signal import find_peaks
 
 from ..errors import AnalysisError, FileFormatError, InputError
@@ -126,13 +125,19 @@ def daylight_line_list(*, include_telluric: bool = True) -> LineList:
     )
 
 
-def continuum_normalise(spectrum: Spectrum, *, window_nm: float = 20.0, percentile: float = 90.0) -> Spectrum:
+def continuum_normalise(spectrum: Spectrum, *, window_nm: float = 8.0, min_continuum_fraction: float = 0.05) -> Spectrum:
     """Divide a spectrum by its continuum (upper envelope), so dips read as depth below 1.
 
-    The continuum is a running ``percentile`` over ``window_nm`` (the dips
-    fill less than a tenth of the window, so they do not pull it down),
-    smoothed with a Gaussian of a quarter of the window. Works on an
-    uncalibrated spectrum too, with ``window_nm`` then read as pixels.
+    The continuum is an iterative Gaussian smoothing (sigma a quarter of
+    ``window_nm``; the default 8 nm follows a webcam's colour-filter bumps and
+    IR-cut slope yet stays wider than lines at 1-3 nm resolution) in which samples below it are replaced by it before the
+    next pass, so dips stop pulling it down
+    (:func:`benchspec.lines.fit_continuum`); it follows a camera's slopes
+    and colour-filter bumps without the bias of a running maximum. Where the
+    continuum is below ``min_continuum_fraction`` of its peak (beyond the
+    camera's range, past an IR-cut filter) the normalised spectrum is NaN.
+    Works on an uncalibrated spectrum too, with ``window_nm`` then read as
+    pixels.
 
     Returns
     -------
@@ -140,31 +145,37 @@ def continuum_normalise(spectrum: Spectrum, *, window_nm: float = 20.0, percenti
         Same samples; intensity and uncertainty divided by the continuum;
         provenance records ``continuum_normalised``.
     """
+    from ..lines import fit_continuum
+
     if not isinstance(spectrum, Spectrum):
         raise InputError(f"`spectrum` must be a benchspec Spectrum, got {type(spectrum).__name__}")
     if not window_nm > 0:
         raise InputError(f"`window_nm` must be positive, was {window_nm}")
-    if not 50 <= percentile <= 100:
-        raise InputError(f"`percentile` must be in 50-100, was {percentile}")
+    if not 0 <= min_continuum_fraction < 1:
+        raise InputError(f"`min_continuum_fraction` must be in [0, 1), was {min_continuum_fraction}")
     x = spectrum.wavelength_nm if spectrum.is_calibrated else spectrum.pixel
     step = float(np.median(np.diff(x)))
-    size = max(5, int(round(window_nm / step)) | 1)
-    if size >= spectrum.size:
-        raise InputError(f"`window_nm` = {window_nm:g} covers the whole spectrum ({spectrum.size} samples); use a smaller window")
-    y = np.where(np.isfinite(spectrum.intensity), spectrum.intensity, np.nanmedian(spectrum.intensity))
-    envelope = percentile_filter(y, percentile, size=size, mode="nearest")
-    continuum, _ = gaussian_smooth(envelope, size / 4)
-    floor = 1e-6 * float(np.nanmax(np.abs(continuum)))
-    if not np.nanmax(continuum) > 0:
+    width = (window_nm / 4) / step
+    if 8 * width >= spectrum.size:
+        raise InputError(f"`window_nm` = {window_nm:g} is too wide for a spectrum of {spectrum.size} samples; use a smaller window")
+    y = np.array(spectrum.intensity, dtype=np.float64)
+    good = np.isfinite(y)
+    if np.count_nonzero(good) < 8:
+        raise AnalysisError("the spectrum has fewer than 8 finite samples; check the extraction")
+    y = np.interp(np.arange(y.size), np.flatnonzero(good), y[good])
+    continuum = fit_continuum(y, width=max(width, 1.0))
+    peak = float(np.max(continuum))
+    if not peak > 0:
         raise AnalysisError("the spectrum has no positive continuum to normalise by; check it is a daylight spectrum, dark-subtracted")
-    continuum = np.where(continuum > floor, continuum, np.nan)
+    usable = good & (continuum > min_continuum_fraction * peak)
     provenance = dict(spectrum.provenance)
-    provenance["continuum_normalised"] = {"window_nm": float(window_nm), "percentile": float(percentile)}
-    return spectrum.with_(
-        intensity=spectrum.intensity / continuum,
-        uncertainty=spectrum.uncertainty / continuum,
-        provenance=provenance,
-    )
+    provenance["continuum_normalised"] = {"window_nm": float(window_nm), "min_continuum_fraction": float(min_continuum_fraction)}
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return spectrum.with_(
+            intensity=np.where(usable, spectrum.intensity / continuum, np.nan),
+            uncertainty=np.where(usable, spectrum.uncertainty / continuum, np.nan),
+            provenance=provenance,
+        )
 
 
 @dataclass(frozen=True)
@@ -198,16 +209,20 @@ def find_absorption_features(
         raise InputError(f"`normalised` must be a benchspec Spectrum, got {type(normalised).__name__}")
     if not 0 < min_depth < 1:
         raise InputError(f"`min_depth` must be between 0 and 1, was {min_depth}")
-    y = np.where(np.isfinite(normalised.intensity), normalised.intensity, 1.0)
+    usable = np.isfinite(normalised.intensity)
+    y = np.where(usable, normalised.intensity, 1.0)
     sigma = positive_uncertainty(normalised)
     calibrated = normalised.is_calibrated
     x = normalised.wavelength_nm if calibrated else normalised.pixel
     step = float(np.median(np.diff(x)))
-    noise = float(np.median(sigma))
+    noise = float(np.median(sigma[usable])) if np.any(usable) else float(np.median(sigma))
     width_samples = max_width_nm / step if calibrated else max_width_nm
-    peaks, props = find_peaks(-y, prominence=max(min_depth, min_snr * noise), width=(None, width_samples))
+    peaks, props = find_peaks(-y, prominence=min_depth, width=(None, width_samples))
     features = []
     for k, index in enumerate(peaks):
+        # Significance against the local noise: the spectrum's noise changes along it.
+        if props["prominences"][k] < min_snr * sigma[index] or not usable[index]:
+            continue
         vertex = parabolic_vertex(x, -y, sigma, int(index))
         if vertex is None:
             position, err = float(x[index]), step / np.sqrt(12)
@@ -276,7 +291,7 @@ def identify_daylight_lines(
     spectrum: Spectrum,
     *,
     tolerance_nm: float | None = None,
-    window_nm: float = 20.0,
+    window_nm: float = 8.0,
     min_depth: float = 0.03,
     min_snr: float = 4.0,
 ) -> DaylightResult:
@@ -288,7 +303,8 @@ def identify_daylight_lines(
         Calibrated daylight spectrum (air wavelengths).
     tolerance_nm : float, optional
         Largest distance between a dip and its reference line; default the
-        larger of 1.5 nm and 2 samples plus 3x the calibration uncertainty.
+        larger of 1.5 nm and 2 samples, plus 3x the calibration uncertainty
+        at that line.
         Broad telluric bands (O2 A, B; H2O) get half their typical width on
         top, because their deepest point sits a little red of the band head.
     window_nm, min_depth, min_snr
@@ -306,13 +322,17 @@ def identify_daylight_lines(
     """
     spectrum = require_calibrated(spectrum)
     step = sample_step_nm(spectrum.wavelength_nm)
-    if tolerance_nm is None:
-        cal = 0.0
-        if spectrum.wavelength_uncertainty_nm is not None:
-            cal = float(np.nanmedian(spectrum.wavelength_uncertainty_nm))
-        tolerance_nm = max(1.5, 2 * step) + 3 * cal
+    given = tolerance_nm is not None
+    if not given:
+        tolerance_nm = max(1.5, 2 * step)
     if not tolerance_nm > 0:
         raise InputError(f"`tolerance_nm` must be positive, was {tolerance_nm}")
+
+    def calibration_sigma(wavelength):
+        if given or spectrum.wavelength_uncertainty_nm is None:
+            return 0.0
+        return float(np.interp(wavelength, spectrum.wavelength_nm, spectrum.wavelength_uncertainty_nm))
+
     normalised = continuum_normalise(spectrum, window_nm=window_nm)
     features = find_absorption_features(normalised, min_depth=min_depth, min_snr=min_snr)
     wl = spectrum.wavelength_nm
@@ -327,7 +347,7 @@ def identify_daylight_lines(
     for ref in load_daylight_lines():
         if not (wl[0] <= ref.wavelength_nm <= wl[-1]):
             continue
-        allowed = tolerance_nm + (ref.width_nm / 2 if ref.atmospheric else 0.0)
+        allowed = tolerance_nm + 3 * calibration_sigma(ref.wavelength_nm) + (ref.width_nm / 2 if ref.atmospheric else 0.0)
         distance = np.abs(centres - ref.wavelength_nm)
         best = int(np.argmin(distance))
         if distance[best] <= allowed:
