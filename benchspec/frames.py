@@ -62,7 +62,7 @@ from typing import Any, Iterable, Iterator, Mapping, Sequence
 import cv2
 import numpy as np
 
-from .errors import FileFormatError, FrameError, InputError
+from .errors import DegradedResultWarning, FileFormatError, FrameError, InputError
 
 __all__ = [
     "MAX_FRAME_PIXELS",
@@ -332,10 +332,13 @@ def iter_video(path, *, max_frames: int | None = None, max_pixels: int = MAX_FRA
                 f"{_display(path)} has {width}x{height} frames, above the {max_pixels / 1e6:.0f} MP limit; "
                 "re-encode the video at a lower resolution"
             )
+        declared = int(capture.get(cv2.CAP_PROP_FRAME_COUNT) or 0)  # from the container; <= 0 when unknown
         count = 0
+        ended_early = False
         while max_frames is None or count < max_frames:
             ok, frame = capture.read()
             if not ok or frame is None:
+                ended_early = True
                 break
             count += 1
             yield _to_rgb(frame)
@@ -343,6 +346,13 @@ def iter_video(path, *, max_frames: int | None = None, max_pixels: int = MAX_FRA
             raise FileFormatError(
                 f"{_display(path)}: no frame could be decoded (unreadable or truncated video); "
                 "convert it to MP4 (H.264) or to a folder of PNG frames"
+            )
+        if ended_early and declared > 0 and count < declared - 1:  # some containers count one frame too many
+            warnings.warn(
+                f"{_display(path)} ended after {count} of its {declared} frames (truncated or damaged video); "
+                f"the {count} frames read are used",
+                DegradedResultWarning,
+                stacklevel=2,
             )
     finally:
         capture.release()
