@@ -93,9 +93,11 @@ def line_straightness(rect_image, geometry, *, columns, half_rows, bin_rows=4, w
             prof = image[r0:r0 + bin_rows, col - window:col + window + 1].mean(axis=0)
             prof = prof - np.median(np.r_[prof[:2], prof[-2:]])
             prof = np.clip(prof, 0, None)
-            keep = prof > 0.3 * prof.max()
             xs = np.arange(col - window, col + window + 1)
-            centres.append(np.sum(xs[keep] * prof[keep]) / np.sum(prof[keep]))
+            # a Gaussian through the peak and its neighbours (continuous in the data, unlike a thresholded centroid)
+            k = int(np.clip(np.argmax(prof), 1, prof.size - 2))
+            lo, mid, hi = np.log(np.maximum(prof[k - 1:k + 2], 1e-9))
+            centres.append(xs[k] + 0.5 * (lo - hi) / (lo - 2 * mid + hi))
         centres = np.asarray(centres)
         result.append(float(np.max(np.abs(centres - np.median(centres)))))
     return result
