@@ -748,18 +748,29 @@ def demo_folder() -> Path:
     return Path(__file__).resolve().parent.parent / "demo_images"
 
 
+def _scene_name(path: Path) -> str:
+    """``cfl_2.png`` -> ``cfl``: numbered frames of one scene share a name."""
+    stem = path.stem
+    head, sep, tail = stem.rpartition("_")
+    return head if sep and tail.isdigit() else stem
+
+
 class DemoSource(FolderSource):
-    """The built-in demo: one still frame of the demo bench, repeated like a live camera.
+    """The built-in demo: the frames of one demo scene, repeated like a live camera.
+
+    Numbered frames of a scene (``cfl_1.png``, ``cfl_2.png``...) are played in
+    turn, so noise changes from frame to frame as it would on a camera; a
+    scene with one frame repeats that still.
 
     Parameters
     ----------
     scene : str
-        Part of the file name of the demo frame to show (``"cfl"``, ``"tube"``...);
-        the first frame whose name contains it is used. See :attr:`scenes`.
+        A scene name (``"cfl"``, ``"tube_A"``...) or one frame's name
+        (``"cfl_1"``); see :attr:`scenes`.
     folder : str or Path, optional
         Where the demo frames are (default :func:`demo_folder`).
     frame_rate_hz : float
-        Rate the still is delivered at.
+        Rate the frames are delivered at.
     pace : bool
         Deliver at ``frame_rate_hz`` (True, as a camera would) or as fast as asked.
     """
@@ -770,29 +781,40 @@ class DemoSource(FolderSource):
         root = Path(folder) if folder is not None else demo_folder()
         if not root.is_dir():
             raise SourceError(f"the demo frames are missing ({root} not found); "
-                              "regenerate them with `benchspec simulate` (see demo_images/README.md)")
+                              "regenerate them with `benchspec demo --regenerate` (see demo_images/README.md)")
         all_images = sorted(p for p in root.iterdir() if p.suffix.lower() in IMAGE_SUFFIXES)
         if not all_images:
             raise SourceError(f"the demo folder {root} holds no images; regenerate it (see demo_images/README.md)")
         self._all = all_images
         key = scene.strip().lower()
-        chosen = [p for p in all_images if key and key in p.stem.lower()]
+        chosen = [p for p in all_images if _scene_name(p).lower() == key] or \
+                 [p for p in all_images if p.stem.lower() == key]
         if not chosen:
-            raise InputError(f"no demo frame matches scene {scene!r}; choose one of: "
-                             + ", ".join(p.stem for p in all_images))
-        super().__init__([chosen[0]], loop=True, frame_rate_hz=frame_rate_hz, pace=pace)
-        self._name = f"{chosen[0].stem} ({root.name})"
-        self._scene_path = chosen[0]
-        self._note("demo: a still frame of the virtual bench, repeated; noise does not change between frames")
+            raise InputError(f"no demo scene {scene!r}; choose one of: " + ", ".join(self._scene_names()))
+        super().__init__(chosen, loop=True, frame_rate_hz=frame_rate_hz, pace=pace)
+        self._name = f"{scene} ({root.name}, {len(chosen)} frame{'s' if len(chosen) > 1 else ''})"
+        self._scene_paths = tuple(chosen)
+        if len(chosen) == 1:
+            self._note("demo: a still frame of the virtual bench, repeated; noise does not change between frames")
+        else:
+            self._note(f"demo: {len(chosen)} frames of the virtual bench played in turn")
+
+    def _scene_names(self) -> list[str]:
+        names: list[str] = []
+        for p in self._all:
+            name = _scene_name(p)
+            if name not in names:
+                names.append(name)
+        return names
 
     @property
     def scenes(self) -> tuple[str, ...]:
-        """Names (file stems) of the demo frames available as scenes."""
-        return tuple(p.stem for p in self._all)
+        """Names of the demo scenes in the folder (numbered frames share one name)."""
+        return tuple(self._scene_names())
 
     @property
-    def scene_path(self) -> Path:
-        return self._scene_path
+    def scene_paths(self) -> tuple[Path, ...]:
+        return self._scene_paths
 
 
 # --------------------------------------------------------------------------- arrays (tests, scripts)

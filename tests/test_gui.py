@@ -138,9 +138,14 @@ def test_demo_calibrate_identify_save(make_viewer, tmp_path, xdisplay):
     from benchspec.gui.processing import _apply_solution, _within
     from benchspec.identify import identify
 
-    viewer = make_viewer(DemoSource("cfl_1"))
+    viewer = make_viewer(DemoSource("cfl"))
     _first_frame(viewer)
     assert viewer.lamp.get() == "cfl"  # chosen from the light source
+    viewer.stack_count.set(3)
+    viewer.buttons["stack"].invoke()  # the three demo CFL frames, stacked and held
+    _wait_log(viewer, "band measured on 3 frame(s)")
+    _wait(viewer.root, lambda: isinstance(viewer.held, type(viewer.last_result)) and viewer.held.frames_in_stack == 3,
+          what="held stack")
     viewer.buttons["calibrate"].invoke()
     _wait_log(viewer, "calibrated with cfl")
     frames = list(viewer.action_frames)
@@ -151,7 +156,8 @@ def test_demo_calibrate_identify_save(make_viewer, tmp_path, xdisplay):
     rows = [viewer.fit_table.item(i, "values") for i in viewer.fit_table.get_children()]
     assert len(rows) == len(core.matches)
     assert [float(r[1]) for r in rows] == pytest.approx([m.reference_nm for m in core.matches], abs=1e-3)
-    # the live spectrum switches to a wavelength axis with labelled lines
+    # the held spectrum switches to a wavelength axis with labelled lines; so does the live one
+    assert len(frames) == 3
     _wait(viewer.root, lambda: viewer.last_result is not None and viewer.last_result.axis_is_wavelength,
           what="wavelength axis")
     assert "wavelength" in viewer.spec_axes.get_xlabel()

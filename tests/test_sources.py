@@ -256,15 +256,19 @@ def test_sixteen_bit_and_grey_images_are_kept(tmp_path):
 # --------------------------------------------------------------------------- demo, arrays, open
 
 
-def test_demo_source_repeats_a_still(tmp_path):
-    cv2.imwrite(str(tmp_path / "bench_cfl.png"), np.full((20, 30, 3), 90, np.uint8))
+def test_demo_source_plays_a_scene(tmp_path):
+    cv2.imwrite(str(tmp_path / "bench_1.png"), np.full((20, 30, 3), 90, np.uint8))
+    cv2.imwrite(str(tmp_path / "bench_2.png"), np.full((20, 30, 3), 80, np.uint8))
     cv2.imwrite(str(tmp_path / "tube_a.png"), np.full((20, 30, 3), 10, np.uint8))
-    demo = DemoSource("cfl", folder=tmp_path, pace=False)
-    assert demo.scenes == ("bench_cfl", "tube_a")
-    frames = [demo.read() for _ in range(5)]
-    assert all(f.image[0, 0, 0] == 90 for f in frames)
-    assert "repeated" in " ".join(demo.info.notes)
-    with pytest.raises(InputError, match="choose one of: bench_cfl, tube_a"):
+    demo = DemoSource("bench", folder=tmp_path, pace=False)
+    assert demo.scenes == ("bench", "tube_a")
+    assert [demo.read().image[0, 0, 0] for _ in range(4)] == [90, 80, 90, 80]  # numbered frames in turn
+    assert "2 frames" in " ".join(demo.info.notes)
+    still = DemoSource("tube_a", folder=tmp_path, pace=False)
+    assert all(still.read().image[0, 0, 0] == 10 for _ in range(3))
+    assert "repeated" in " ".join(still.info.notes)
+    assert DemoSource("bench_2", folder=tmp_path, pace=False).read().image[0, 0, 0] == 80  # one frame by name
+    with pytest.raises(InputError, match="choose one of: bench, tube_a"):
         DemoSource("laser", folder=tmp_path)
     with pytest.raises(SourceError, match="demo frames are missing"):
         DemoSource(folder=tmp_path / "gone")

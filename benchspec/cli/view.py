@@ -10,7 +10,8 @@ from ..safety import SOURCE_TYPES, format_cautions
 
 _KEYS_HELP = """keyboard shortcuts in the viewer:
   space   hold the spectrum / go live     s  stack N frames     d  take a dark
-  c       calibrate with the chosen lamp  i  identify           +/-  exposure
+  b       measure the band again          c  calibrate with the chosen lamp
+  i       identify                        +/-  exposure
   Ctrl+S  save spectrum   Ctrl+K  save calibration   Ctrl+F  save frame
   Ctrl+P  save plot       Ctrl+L  load calibration   Ctrl+O  open video
   F1      light source and its cautions              Ctrl+Q  quit

@@ -57,6 +57,7 @@ SHORTCUTS: dict[str, tuple[str, str]] = {
     "<space>": ("hold", "hold the spectrum / go live again"),
     "s": ("stack", "stack N frames and hold the result"),
     "d": ("dark", "take a dark (cover the lens or switch the light off first)"),
+    "b": ("band", "measure the band again on N frames (after moving the camera)"),
     "c": ("calibrate", "calibrate the wavelength axis with the chosen lamp"),
     "i": ("identify", "identify the species"),
     "<plus>": ("exposure_up", "longer exposure (cameras that allow it)"),
@@ -71,7 +72,7 @@ SHORTCUTS: dict[str, tuple[str, str]] = {
     "<Control-q>": ("quit", "quit"),
 }
 
-_LETTER_KEYS = {"s", "d", "c", "i", "<plus>", "<minus>", "<space>"}
+_LETTER_KEYS = {"s", "d", "b", "c", "i", "<plus>", "<minus>", "<space>"}
 
 _LIGHT_TO_LAMP = {"fluorescent": "cfl", "discharge": "hg"}
 
@@ -169,6 +170,7 @@ class Viewer:
         self._after_id = None
         self._status_after = None
         self._display_size = (640, 300)
+        self._display_box = [self._display_size]   # shared with the worker thread
 
         # Full plot redraws run here, off the Tk thread (see canvas.ThreadedCanvas).
         self._plot_executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="benchspec-plot")
@@ -344,6 +346,8 @@ class Viewer:
         self.buttons["dark"].grid(row=0, column=4, padx=(3, 0))
         self.buttons["clear_dark"] = ttk.Button(capture, text="No dark", width=7, command=self.clear_dark)
         self.buttons["clear_dark"].grid(row=0, column=5, padx=(3, 0))
+        self.buttons["band"] = ttk.Button(capture, text="Band", width=5, command=self.find_band)
+        self.buttons["band"].grid(row=0, column=6, padx=(3, 0))
 
         waves = ttk.LabelFrame(bar, text="Wavelengths", padding=(4, 2))
         waves.grid(row=0, column=1, sticky="ns", padx=3)
@@ -561,7 +565,15 @@ class Viewer:
         self.exposure_spin.configure(state="normal" if info.can_set_exposure else "disabled")
         self.buttons["exposure"].configure(state="normal" if info.can_set_exposure else "disabled")
         self.frame_canvas.itemconfigure(self._frame_text, text="")
-        self.worker = LiveWorker(source, self._process_live).start()
+        # The worker gets the processor and a size holder, never the viewer itself: threads must
+        # not keep Tk objects alive (their clean-up would then run off the Tk thread).
+        processor, size = self.processor, self._display_box
+
+        def process(frame):
+            return processor.live(frame.image, display_size=size[0], frame_index=frame.index,
+                                  timestamp_s=frame.timestamp_s)
+
+        self.worker = LiveWorker(source, process).start()
         self._notes_seen = set(info.notes)
         if self.held is not None:
             self.worker.pause_live(True)
@@ -596,14 +608,11 @@ class Viewer:
         if path:
             self.open_spec(path)
 
-    def _stop_worker(self) -> None:
+    def _stop_worker(self, timeout: float = 0.5) -> None:
         if self.worker is not None:
-            self.worker.stop(timeout=0.5)
+            self.worker.stop(timeout=timeout)
             self.worker = None
 
-    def _process_live(self, frame):
-        return self.processor.live(frame.image, display_size=self._display_size, frame_index=frame.index,
-                                   timestamp_s=frame.timestamp_s)
 
     # ================================================================== polling & drawing
     def _tick(self) -> None:
@@ -678,6 +687,7 @@ class Viewer:
 
     def _on_frame_resize(self, event) -> None:
         self._display_size = (max(16, event.width), max(16, event.height))
+        self._display_box[0] = self._display_size
         self._overlay_key = None
         if self.last_result is not None:
             self._draw_frame(self.last_result)
@@ -900,14 +910,25 @@ class Viewer:
         self.spectrum_state.configure(text=label)
         size = self._display_size
 
+        processor = self.processor
+
         def job():
-            stacked = self.processor.stack(frames) if len(frames) > 1 else None
-            return self.processor.live(frames[-1], display_size=size, frame_index=-1, stacked=stacked)
+            note = ""
+            if len(frames) > 1 and processor.calibration is None:
+                note = processor.relocate(frames)  # a stack gives a steadier band than one frame
+            stacked = processor.stack(frames) if len(frames) > 1 else None
+            return processor.live(frames[-1], display_size=size, frame_index=-1, stacked=stacked), note
 
         self.held = self.last_result or True  # placeholder until the held result is computed
         self._run("held", job, message=f"{label}: computing the spectrum of {len(frames)} frame(s)")
 
-    def _done_held(self, result: LiveResult) -> None:
+    def _done_held(self, value) -> None:
+        result, note = value
+        if note:
+            self.report(note)
+            self._overlay_key = None
+            if self.processor.calibration is None and self.calibration is not None:
+                self._forget_calibration_view()
         if self.held is None:
             return
         self.held = result
@@ -972,6 +993,38 @@ class Viewer:
     def _done_dark(self, text: str) -> None:
         self.report(text)
 
+    def find_band(self) -> None:
+        """Measure the band again on the next N frames (after moving the camera or the grating)."""
+        if self.worker is None:
+            self.report("band: no source is open", level="error")
+            return
+        count = self._stack_n()
+        if count is None:
+            return
+        self._set_busy("band", True)
+        processor = self.processor
+
+        def then(frames, reason):
+            if not frames:
+                raise SourceError(f"no frames to find the band on ({reason})")
+            return processor.relocate(frames) + (f"; cut short: {reason}" if reason else "")
+
+        self.report(f"measuring the band on {count} frame(s)…")
+        self.worker.collect(count, "band", then)
+
+    def _done_band(self, text: str) -> None:
+        self.report(text)
+        self._overlay_key = None
+        self._spec_axis_state = None
+        if self.processor.calibration is None and self.calibration is not None:
+            self._forget_calibration_view()
+
+    def _forget_calibration_view(self) -> None:
+        self.calibration = None
+        self.identification = None
+        self.fit_summary.configure(text="Not calibrated: the band was measured again; calibrate again (c).")
+        self.fit_table.delete(*self.fit_table.get_children())
+
     def clear_dark(self) -> None:
         self.processor.clear_dark()
         self.report("dark frame cleared")
@@ -983,7 +1036,7 @@ class Viewer:
             return
         lamp = self.lamp.get()
         self.action_frames = frames
-        self._run("calibrate", lambda: self.processor.calibrate(frames, lamp=lamp),
+        self._run("calibrate", lambda processor=self.processor: processor.calibrate(frames, lamp=lamp),
                   message=f"calibrating on {len(frames)} frame(s) with the {lamp} lamp…")
 
     def _done_calibrate(self, summary: CalibrationSummary) -> None:
@@ -1037,7 +1090,7 @@ class Viewer:
         if not path:
             return
         shape = self._frames_now()[0].shape if self._frames_now() else None
-        self._run("calibrate", lambda: self.processor.load_calibration(path, frame_shape=shape),
+        self._run("calibrate", lambda processor=self.processor: processor.load_calibration(path, frame_shape=shape),
                   message=f"loading calibration {path}…")
 
     def identify(self) -> None:
@@ -1046,7 +1099,7 @@ class Viewer:
             self.report("identify: no frame yet; wait for the source", level="error")
             return
         self.action_frames = frames
-        self._run("identify", lambda: self.processor.identify(frames),
+        self._run("identify", lambda processor=self.processor: processor.identify(frames),
                   message=f"identifying on {len(frames)} frame(s)…")
 
     def _done_identify(self, summary: IdentificationSummary) -> None:
@@ -1116,14 +1169,14 @@ class Viewer:
         if path is None:
             return
         info = self._source_record()
-        self._run("save_spectrum", lambda: self.processor.save_spectrum(frames, path, source=info),
+        self._run("save_spectrum", lambda processor=self.processor: processor.save_spectrum(frames, path, source=info),
                   message=f"saving the spectrum to {path}…")
 
     def save_calibration(self) -> None:
         path = self._ask("Save the calibration", "calibration.json", [("Calibration", "*.json")])
         if path is None:
             return
-        self._run("save_calibration", lambda: self.processor.save_calibration(path),
+        self._run("save_calibration", lambda processor=self.processor: processor.save_calibration(path),
                   message=f"saving the calibration to {path}…")
 
     def save_frame(self) -> None:
@@ -1135,7 +1188,7 @@ class Viewer:
         if path is None:
             return
         image = frames[-1]
-        self._run("save_frame", lambda: self.processor.save_frame(image, path), message=f"saving the frame to {path}…")
+        self._run("save_frame", lambda processor=self.processor: processor.save_frame(image, path), message=f"saving the frame to {path}…")
 
     def save_plot(self) -> None:
         result = self.held if isinstance(self.held, LiveResult) else self.last_result
@@ -1146,7 +1199,7 @@ class Viewer:
         if path is None:
             return
         title = f"benchspec bench viewer: {self.source_label.cget('text')}"  # read on the Tk thread
-        self._run("save_plot", lambda: self.processor.save_plot(result, path, title=title),
+        self._run("save_plot", lambda processor=self.processor: processor.save_plot(result, path, title=title),
                   message=f"saving the plot to {path}…")
 
     def _done_save_spectrum(self, text):
@@ -1164,7 +1217,7 @@ class Viewer:
     # ================================================================== keys, help, closing
     def _bind_keys(self) -> None:
         actions = {
-            "hold": self.toggle_hold, "stack": self.stack, "dark": self.take_dark, "calibrate": self.calibrate,
+            "hold": self.toggle_hold, "stack": self.stack, "dark": self.take_dark, "band": self.find_band, "calibrate": self.calibrate,
             "identify": self.identify, "exposure_up": lambda: self.set_exposure(1.25),
             "exposure_down": lambda: self.set_exposure(0.8), "save_spectrum": self.save_spectrum,
             "save_calibration": self.save_calibration, "save_frame": self.save_frame, "save_plot": self.save_plot,
@@ -1195,6 +1248,7 @@ class Viewer:
         if self._closed:
             return
         self._closed = True
+        self._stop_worker(timeout=3.0)
         for after in (self._after_id, self._status_after):
             if after is not None:
                 try:
@@ -1209,3 +1263,8 @@ class Viewer:
             self.root.destroy()
         except tk.TclError:
             pass
+        # Collect Tk objects now, on the Tk thread; left to chance, a worker thread's
+        # garbage collection could run their clean-up where Tk cannot answer.
+        import gc
+
+        gc.collect()

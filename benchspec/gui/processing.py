@@ -231,6 +231,21 @@ class BenchProcessor:
             self._live_lines_cache = (-999, ())
             return self.overlay
 
+    def relocate(self, images: Sequence[np.ndarray]) -> str:
+        """Measure the band again on the stack of ``images``; a calibration made on the old band is dropped."""
+        stacked = self.stack(images)
+        self.locate(stacked.image, saturated=stacked.saturated)
+        g = self.geometry
+        text = (f"band measured on {stacked.n_frames} frame(s): rotation {g.rotation_deg:+.2f} deg, "
+                f"{g.n_columns} columns, aperture rows {g.aperture_rows[0]}-{g.aperture_rows[1]}, "
+                + ("curvature from %d lines" % g.n_lines_traced if g.curvature_known else "curvature unknown"))
+        with self._lock:
+            if self.calibration is not None:
+                self.calibration = None
+                self.identification = None
+                text += "; the calibration belonged to the old band: calibrate again"
+        return text
+
     def _ensure_geometry(self, image: np.ndarray, stacked=None) -> None:
         if self.geometry is None or self.geometry_shape != image.shape[:2]:
             if stacked is None:
