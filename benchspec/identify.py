@@ -84,6 +84,7 @@ DEFAULT_SPECIES = ("H", "He", "Ne", "Ar", "Kr", "Xe", "Hg", "Na", "CFL-phosphor"
 VERDICTS = ("identified", "mixture", "uncertain", "unknown")
 
 WAVELENGTH_RANGE_NM = (300.0, 1100.0)
+MIN_OVERLAP_NM = 50.0
 _FWHM_PER_SIGMA = 2.0 * np.sqrt(2.0 * np.log(2.0))
 _DEFAULT_CALIBRATION_SIGMA_NM = 0.3
 _MAX_LSF_FWHM_NM = 10.0
@@ -287,6 +288,17 @@ def _checked_inputs(spectrum) -> tuple[np.ndarray, np.ndarray, np.ndarray | None
     wavelength = np.asarray(spectrum.wavelength_nm, dtype=float)
     intensity = np.asarray(spectrum.intensity, dtype=float)
     check_wavelength_axis(wavelength)
+    inside = (wavelength >= WAVELENGTH_RANGE_NM[0]) & (wavelength <= WAVELENGTH_RANGE_NM[1])
+    if not inside.all():
+        spectrum = spectrum.with_(
+            intensity=spectrum.intensity[inside],
+            uncertainty=spectrum.uncertainty[inside],
+            pixel=spectrum.pixel[inside],
+            wavelength_nm=spectrum.wavelength_nm[inside],
+            wavelength_uncertainty_nm=None if spectrum.wavelength_uncertainty_nm is None else spectrum.wavelength_uncertainty_nm[inside],
+            saturated=spectrum.saturated[inside],
+        )
+        wavelength, intensity = wavelength[inside], intensity[inside]
     bad = ~np.isfinite(intensity)
     if bad.any():
         first = int(np.flatnonzero(bad)[0])
@@ -334,7 +346,10 @@ def check_wavelength_axis(wavelength_nm) -> None:
             f"{wavelength[first + 1]:g} nm; sort the samples by wavelength"
         )
     low, high = WAVELENGTH_RANGE_NM
-    if wavelength[0] < low or wavelength[-1] > high:
+    # A spectrum that reaches past 300-1100 nm (a camera frame's far edges, another
+    # instrument's wide range) is cropped to it; one that barely overlaps it is refused.
+    overlap = min(high, wavelength[-1]) - max(low, wavelength[0])
+    if overlap < MIN_OVERLAP_NM:
         hint = ""
         if wavelength[-1] > 3000:
             hint = " (values look like angstrom: divide by 10)"
@@ -342,7 +357,7 @@ def check_wavelength_axis(wavelength_nm) -> None:
             hint = " (values look like micrometres: multiply by 1000)"
         raise IdentificationError(
             f"wavelengths span {wavelength[0]:g}-{wavelength[-1]:g} nm but identification works within "
-            f"{low:g}-{high:g} nm{hint}; crop the spectrum or fix its units"
+            f"{low:g}-{high:g} nm and needs at least {MIN_OVERLAP_NM:g} nm of it{hint}; check the calibration or the units"
         )
 
 
