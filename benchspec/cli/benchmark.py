@@ -24,6 +24,7 @@ BENCHMARKS = {
     "speed": "speed",
     "accuracy": "accuracy",
     "identification": "identification",
+    "practicals": "practicals",
 }
 
 
@@ -35,7 +36,8 @@ def register(subparsers) -> None:
         "speed (default): every stage at 640x480, 1280x720 and 1920x1080 with its ratio to one memory pass "
         "over the frame and to decoding it, a live-path figure, and batch throughput on a 300-frame video. "
         "accuracy: automatic wavelength calibration on many virtual benches. "
-        "identification: species identification on rendered lamp spectra.",
+        "identification: species identification on rendered lamp spectra. "
+        "practicals: Rydberg pulls, response flatness, CCT, daylight lines and concentration coverage.",
         formatter_class=argparse.RawDescriptionHelpFormatter,
         epilog="Timings depend on the machine and its load; the speed figures record the CPU count and the load "
         "average. --quick runs in seconds (one size, few repeats) and is what CI runs.",
