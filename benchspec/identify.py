@@ -349,7 +349,7 @@ def check_wavelength_axis(wavelength_nm) -> None:
     # A spectrum that reaches past 300-1100 nm (a camera frame's far edges, another
     # instrument's wide range) is cropped to it; one that barely overlaps it is refused.
     overlap = min(high, wavelength[-1]) - max(low, wavelength[0])
-    if overlap < MIN_OVERLAP_NM:
+    if overlap < min(MIN_OVERLAP_NM, wavelength[-1] - wavelength[0]):
         hint = ""
         if wavelength[-1] > 3000:
             hint = " (values look like angstrom: divide by 10)"

@@ -190,6 +190,15 @@ def test_broad_led_is_unknown(peak_nm, fwhm_nm):
     assert any("broad" in note for note in result.notes)
 
 
+@pytest.mark.parametrize("name", ["LED-B1", "LED-RGB1"])
+def test_cie_led_illuminants_are_unknown(name):
+    colour = pytest.importorskip("colour")
+    # CIE 15:2018 LED illuminants (phosphor-converted white LED-B1, RGB LED-RGB1), from colour-science
+    sd = colour.SDS_ILLUMINANTS[name]
+    result = identify(as_spectrum(sd.wavelengths, sd.values))
+    assert result.verdict == "unknown" and result.matches == ()
+
+
 def test_planck_continuum_is_unknown():
     from benchspec.physics import planck_spectral_radiance
 
@@ -277,12 +286,23 @@ def test_repeated_wavelengths_are_refused():
 
 @pytest.mark.parametrize(
     "low, high, hint",
-    [(250.0, 600.0, "300-1100"), (4000.0, 7000.0, "angstrom"), (0.4, 0.7, "micrometres"), (900.0, 1300.0, "crop")],
+    [(100.0, 290.0, "300-1100"), (1120.0, 1500.0, "300-1100"), (1070.0, 1400.0, "at least 50 nm"),
+     (4000.0, 7000.0, "angstrom"), (0.4, 0.7, "micrometres")],
 )
 def test_range_outside_300_1100_nm_is_refused(low, high, hint):
     wavelength = np.linspace(low, high, 200)
     with pytest.raises(IdentificationError, match=hint):
         identify(as_spectrum(wavelength, np.ones(200)))
+
+
+def test_a_spectrum_reaching_past_300_1100_nm_is_cropped_not_refused():
+    # A camera frame's far edges calibrate to wavelengths below 300 nm; the part inside 300-1100 nm is used.
+    wavelength = np.linspace(60.0, 870.0, 1600)
+    intensity = np.full(wavelength.size, 1.0)
+    for centre in (656.279, 486.135, 434.047):  # H I Balmer lines, NIST ASD
+        intensity += 100 * np.exp(-0.5 * ((wavelength - centre) / 1.0) ** 2)
+    result = identify(as_spectrum(wavelength, intensity))
+    assert result.matches and result.matches[0].symbol == "H"
 
 
 def test_too_short_spectrum_is_refused():
