@@ -252,10 +252,13 @@ def _fit_group(x, y, sigma, use, guesses):
     lower = [-np.inf, -np.inf]
     upper = [np.inf, np.inf]
     span = float(xs.max() - xs.min())
+    # A line cannot be much higher than what the window shows, even when its core is clipped and
+    # only the wings are fitted: bound the height so a clipped line does not run away.
+    ceiling = 6.0 * max(float(np.ptp(y[use])), 1e-12)
     for amplitude, centre, width in guesses:
-        p0 += [max(amplitude, 1e-12), centre, max(width, 0.5)]
+        p0 += [min(max(amplitude, 1e-12), ceiling), centre, max(width, 0.5)]
         lower += [0.0, centre - max(2.0, width), 0.3]
-        upper += [np.inf, centre + max(2.0, width), max(span, 1.0)]
+        upper += [ceiling, centre + max(2.0, width), max(span, 1.0)]
     p0 = np.minimum(np.maximum(p0, lower), upper)
     try:
         with warnings.catch_warnings():

@@ -454,7 +454,9 @@ def _peaks_from_table(table: LineTable, lamp_index: int = 0) -> _Peaks:
         return _Peaks(*(np.zeros(0) for _ in range(5)), np.zeros(0, bool), np.zeros(0, bool), np.zeros(0, int))
     fwhm = np.array([l.fwhm_px for l in lines])
     typical = float(np.median(fwhm[np.argsort([-l.peak for l in lines])[:7]]))
-    keep = [l for l in lines if l.fwhm_px <= 3.0 * typical]  # broad bands are continuum, not lines
+    # Broad bands are continuum, and features much narrower than the line-spread function are hot
+    # pixels or compression ringing: neither is a lamp line.
+    keep = [l for l in lines if 0.5 * typical <= l.fwhm_px <= 3.0 * typical]
     arr = lambda name: np.array([getattr(l, name) for l in keep], dtype=float)
     return _Peaks(
         pixel=arr("centre_px"),
