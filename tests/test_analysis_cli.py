@@ -188,5 +188,12 @@ def test_core_modules_do_not_import_matplotlib():
 
     code = ("import sys; import benchspec.analysis.absorbance, benchspec.analysis.colour, benchspec.analysis.daylight, "
             "benchspec.analysis.metrics, benchspec.analysis.planner, benchspec.analysis.response, benchspec.analysis.rydberg; "
-            "print('matplotlib' in sys.modules)")
+            "import benchspec.analysis; print('matplotlib' in sys.modules)")
     assert subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.strip() == "False"
+
+
+def test_public_names():
+    import benchspec.analysis as analysis
+
+    assert all(hasattr(analysis, name) for name in analysis.__all__)
+    assert len(set(analysis.__all__)) == len(analysis.__all__)
