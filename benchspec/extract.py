@@ -55,7 +55,8 @@ import numpy as np
 
 from .errors import ExtractionError, InputError
 from .frames import FramePreparer, StackedFrame
-from .geometry import INTERPOLATIONS, Geometry, RectifiedBand, check_frame_size, rectify, remap_tables, valid_samples
+from .geometry import (INTERPOLATIONS, Geometry, RectifiedBand, check_frame_size, jacobian, rectify, remap_tables,
+                       valid_samples)
 from .spectrum import Spectrum
 
 __all__ = [
@@ -546,9 +547,11 @@ def extract(band: RectifiedBand, *, noise_model: NoiseModel, method: str = "opti
     saturated_columns = (band.saturated[a0:a1] & valid).any(axis=0)
     resampling = resampling_variance_factor(g, g.aperture_rows, interpolation=band.interpolation)
     bg = background(band, noise_model=noise_model, resampling_factor=resampling)
-    net = np.where(valid, data - bg.level, 0.0)
-    pixel_var = np.where(valid, noise_model.variance(np.where(valid, data, 0.0)).astype(np.float64), 0.0)
-    ones = valid.astype(np.float64)
+    area = np.ones_like(data) if band.area is None else band.area[a0:a1].astype(np.float64)
+    # background subtracted in surface brightness, then converted to flux per rectified pixel
+    net = np.where(valid, (data - bg.level) * area, 0.0)
+    pixel_var = np.where(valid, noise_model.variance(np.where(valid, data, 0.0)).astype(np.float64) * area**2, 0.0)
+    ones = valid * area
     box = net.sum(axis=0)
     box_var = resampling * pixel_var.sum(axis=0) + bg.variance_of_weighted_sum(ones)
     details: dict[str, Any] = {"method": method, "interpolation": band.interpolation,
@@ -568,7 +571,7 @@ def extract(band: RectifiedBand, *, noise_model: NoiseModel, method: str = "opti
         passes = 0 if clip_sigma is None else 3
         for iteration in range(passes + 1):
             model = flux[None, :] * profile
-            var_model = np.maximum(noise_model.variance(model + bg.level).astype(np.float64), 1e-12)
+            var_model = np.maximum(noise_model.variance(model / area + bg.level).astype(np.float64) * area**2, 1e-12)
             weights = np.where(mask, profile / var_model, 0.0)
             denom = (weights * profile).sum(axis=0)
             with np.errstate(divide="ignore", invalid="ignore"):
@@ -586,7 +589,7 @@ def extract(band: RectifiedBand, *, noise_model: NoiseModel, method: str = "opti
         with np.errstate(divide="ignore", invalid="ignore"):
             sum_mp = np.where(mask, profile, 0.0).sum(axis=0)
             var = np.where(denom > 0, resampling * sum_mp / denom, box_var)
-            normalised = np.where(denom > 0, weights / denom, ones)
+            normalised = np.where(denom > 0, weights * area / denom, ones)
         var = var + bg.variance_of_weighted_sum(normalised)
         details["rejected_pixels"] = rejected
         details["profile_window_px"] = int(profile_window_px)
@@ -736,6 +739,14 @@ class LiveExtractor:
         self._profile = (profile / profile.sum())[:, None]
         self._pixel = np.arange(n_cols, dtype=np.float64)
         self._roi_preparer = None
+        area = jacobian(geometry)  # None when 1 everywhere
+        self._area = None if area is None else np.ascontiguousarray(area[a0:a1])
+        if self._area is not None:
+            self._sum_first = (self._area * self._coef_first).sum(axis=0)
+            self._sum_second = (self._area * self._coef_second).sum(axis=0)
+            self._sum_area_sq = (self._area.astype(np.float64) ** 2).sum(axis=0).astype(np.float32)
+        else:
+            self._sum_area_sq = np.float32(self._n_ap)
 
     @property
     def region(self) -> tuple[int, int, int, int]:
@@ -748,6 +759,9 @@ class LiveExtractor:
         roi = image[self.y0:self.y1, self.x0:self.x1]
         if roi.dtype != np.float32:
             roi = roi.astype(np.float32)
+        return self._remap(roi)
+
+    def _remap(self, roi: np.ndarray) -> np.ndarray:
         return cv2.remap(roi, self._maps[0], self._maps[1], self._flag, borderMode=cv2.BORDER_CONSTANT, borderValue=0)
 
     def _variance(self, signal):
@@ -763,23 +777,34 @@ class LiveExtractor:
         m2 = sums[2] / self._counts[1] if sums.shape[0] == 3 else np.zeros_like(m1)
         v1 = self._variance(m1) * self._side_scale[0]
         v2 = self._variance(m2) * self._side_scale[1]
+        nm = self.noise_model
         if self.method == "box":
-            flux = sums[0] - (self._sum_first * m1 + self._sum_second * m2)
-            var = self._variance(sums[0]) if math.isinf(self.noise_model.gain_e_per_dn) else (
-                self.noise_model.stack_factor * (self._n_ap * self.noise_model.read_noise_dn**2
-                                                 + np.maximum(sums[0], 0) / self.noise_model.gain_e_per_dn))
+            # flux = sum_ap J (D - B); J (frame area per rectified pixel) is 1 unless the curvature varies
+            total = sums[0] if self._area is None else np.einsum("ij,ij->j", self._area, rect[self._a0:self._a1])
+            flux = total - (self._sum_first * m1 + self._sum_second * m2)
+            photon = 0.0 if math.isinf(nm.gain_e_per_dn) else np.maximum(total, 0) / nm.gain_e_per_dn
+            var = nm.stack_factor * (self._sum_area_sq * nm.read_noise_dn**2 + photon)
             var = self._k_aperture * var + self._sum_first**2 * v1 + self._sum_second**2 * v2
             return flux, var
         bg = self._coef_first * m1[None, :] + self._coef_second * m2[None, :]
         net = rect[self._a0:self._a1] - bg
+        area = self._area
+        if area is not None:
+            net = net * area
         box = net.sum(axis=0)
         profile = self._profile
-        v = np.maximum(self._variance(np.maximum(box[None, :] * profile, 0) + bg), 1e-12)
+        model = np.maximum(box[None, :] * profile, 0)
+        if area is None:
+            v = np.maximum(self._variance(model + bg), 1e-12)
+        else:
+            v = np.maximum(self._variance(model / area + bg) * area * area, 1e-12)
         w = profile / v
         denom = (w * profile).sum(axis=0)
         flux = (w * net).sum(axis=0) / denom
         var = self._k_aperture / denom  # the profile sums to one
         wn = w / denom[None, :]
+        if area is not None:
+            wn = wn * area
         a = (wn * self._coef_first).sum(axis=0)
         b = (wn * self._coef_second).sum(axis=0)
         return flux, var + a * a * v1 + b * b * v2
@@ -820,9 +845,7 @@ class LiveExtractor:
         check_frame_size(frame.shape, self.geometry)
         roi = frame[self.y0:self.y1, self.x0:self.x1]
         image_roi, sat_roi = self._region_preparer().prepare(roi)
-        rect = cv2.remap(image_roi, self._maps[0], self._maps[1], self._flag,
-                         borderMode=cv2.BORDER_CONSTANT, borderValue=0)
-        flux, var = self._from_rectified(rect)
+        flux, var = self._from_rectified(self._remap(image_roi))
         sat = cv2.remap(sat_roi.view(np.uint8), self._maps[0], self._maps[1], cv2.INTER_NEAREST,
                         borderMode=cv2.BORDER_CONSTANT, borderValue=0)[self._a0:self._a1].any(axis=0)
         return flux, var, sat

@@ -64,6 +64,7 @@ __all__ = [
     "BandShift",
     "measure_geometry",
     "remap_tables",
+    "jacobian",
     "valid_samples",
     "INTERPOLATIONS",
     "rectify",
@@ -276,6 +277,10 @@ class RectifiedBand:
     geometry : Geometry
     interpolation : str
         "cubic" or "linear": the kernel used (extraction needs it for the variance).
+    area : ndarray of float32 or None
+        Frame area per rectified pixel (:func:`jacobian`); multiply
+        background-subtracted values by it before summing to conserve flux.
+        None when it is 1 everywhere.
     """
 
     image: np.ndarray
@@ -284,6 +289,7 @@ class RectifiedBand:
     valid: np.ndarray
     geometry: Geometry
     interpolation: str = "cubic"
+    area: np.ndarray | None = None
 
 
 @dataclass(frozen=True)
@@ -1151,6 +1157,25 @@ def check_frame_size(shape, geometry: Geometry) -> None:
         )
 
 
+def jacobian(geometry: Geometry) -> np.ndarray | None:
+    """Frame area per rectified pixel, ``ds'/ds = 1 + b'(s) t + c'(s) t**2``, shape ``rectified_shape`` (float32).
+
+    Where the curvature changes along the band, the model samples the frame
+    at a spacing slightly different from 1 px; :func:`rectify` multiplies by
+    this factor so that sums over the rectified band conserve flux. None when
+    it is 1 everywhere (no tilt or curvature varying with s).
+    """
+    from numpy.polynomial import polynomial as P
+
+    db = P.polyder(np.asarray(geometry.tilt_coefficients, float)) if len(geometry.tilt_coefficients) > 1 else np.zeros(1)
+    dc = P.polyder(np.asarray(geometry.curvature_coefficients, float)) if len(geometry.curvature_coefficients) > 1 else np.zeros(1)
+    if not np.any(db) and not np.any(dc):
+        return None
+    s = geometry.first_column_s_px + np.arange(geometry.n_columns, dtype=np.float64)[None, :]
+    t = np.arange(geometry.n_rows, dtype=np.float64)[:, None] - geometry.centre_row
+    return (1.0 + P.polyval(s, db) * t + P.polyval(s, dc) * t * t).astype(np.float32)
+
+
 def remap_tables(geometry: Geometry) -> tuple[np.ndarray, np.ndarray]:
     """float32 ``cv2.remap`` maps (map_x, map_y), each of shape ``geometry.rectified_shape``.
 
@@ -1195,6 +1220,9 @@ def rectify(image, geometry: Geometry, *, variance=None, saturated=None, tables=
     Returns
     -------
     RectifiedBand
+        Values are frame values (surface brightness per frame pixel); the
+        band's ``area`` (see :func:`jacobian`) converts background-subtracted
+        values to flux per rectified pixel.
 
     Raises
     ------
@@ -1211,6 +1239,7 @@ def rectify(image, geometry: Geometry, *, variance=None, saturated=None, tables=
     map_x, map_y = tables if tables is not None else remap_tables(geometry)
     frame = frame.astype(np.float32, copy=False)
     out = cv2.remap(frame, map_x, map_y, flag, borderMode=cv2.BORDER_CONSTANT, borderValue=0)
+    area = jacobian(geometry)
     valid = valid_samples(map_x, map_y, frame.shape, interpolation)
     var_out = None
     if variance is not None:
@@ -1230,7 +1259,7 @@ def rectify(image, geometry: Geometry, *, variance=None, saturated=None, tables=
     else:
         sat_out = np.zeros(out.shape, dtype=bool)
     return RectifiedBand(image=out, variance=var_out, saturated=sat_out, valid=valid, geometry=geometry,
-                         interpolation=interpolation)
+                         interpolation=interpolation, area=area)
 
 
 def measure_band_shift(image, geometry: Geometry, *, reference=None, across_tolerance_px: float = 1.5,
