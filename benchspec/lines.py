@@ -13,6 +13,7 @@ The work is done on the sample index of the spectrum and mapped to its
 
 from __future__ import annotations
 
+import math
 import warnings
 from dataclasses import dataclass
 
@@ -360,11 +361,21 @@ def find_lines(
         continuum = None
         y = raw
 
-    smooth = ndimage.gaussian_filter1d(y, 1.0, mode="nearest") if typical_fwhm >= 3 else y
+    smoothing = 1.0 if typical_fwhm >= 3 else 0.0
+    smooth = ndimage.gaussian_filter1d(y, smoothing, mode="nearest") if smoothing else y
+    # Noise of one smoothed sample: sigma * sqrt(sum of squared kernel weights) = sigma / sqrt(2 sqrt(pi) s).
+    noise_factor = 1.0 / math.sqrt(2.0 * math.sqrt(math.pi) * smoothing) if smoothing else 1.0
+    # Height is judged against a local baseline (a low running percentile), not against the
+    # neighbouring minima: prominence alone lets noise peaks double their height.
+    window = int(max(15, 6 * typical_fwhm)) | 1
+    baseline = ndimage.uniform_filter1d(ndimage.percentile_filter(smooth, 20, size=window, mode="nearest"), window,
+                                        mode="nearest")
     peaks, props = signal.find_peaks(smooth, prominence=0, distance=2)
     if peaks.size:
         prominence = props["prominences"]
-        significant = prominence >= min_snr * sigma[peaks]
+        height = smooth[peaks] - baseline[peaks]
+        threshold = min_snr * sigma[peaks] * noise_factor
+        significant = (np.minimum(height, prominence) >= threshold)
         peaks, prominence = peaks[significant], prominence[significant]
     if peaks.size == 0:
         return LineTable((), kind, float(np.median(sigma)), float(min_snr), n, (float(spectrum.pixel[0]), float(spectrum.pixel[-1])))
