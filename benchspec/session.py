@@ -343,7 +343,11 @@ class Session:
         captures, problems = [], []
         if not capture_root.is_dir():
             return captures, [f"{capture_root} is missing: the session has no captures"]
-        for folder in sorted(capture_root.iterdir()):
+        def order(path: Path):
+            stamp, _, counter = path.name.partition("-")
+            return (stamp, int(counter) if counter.isdigit() else -1, path.name)
+
+        for folder in sorted(capture_root.iterdir(), key=order):
             if not folder.is_dir():
                 if not folder.name.startswith("."):
                     problems.append(f"{folder}: not a capture folder (ignored)")
@@ -470,6 +474,11 @@ class Session:
             planned.append((f"attachment-{index:02d}-{safe}", "attachment", source))
         if label is None:
             label = "capture"
+        if source_type is None and spectrum is not None:
+            recorded = spectrum.provenance.get("source_type")
+            from .safety import SOURCE_TYPES
+
+            source_type = recorded if recorded in SOURCE_TYPES else None
         moment = _utc_now()
         folder = self._new_capture_folder(moment)
         files: dict[str, dict] = {}
