@@ -32,8 +32,10 @@ Conventions
   ``full_scale`` in linear units too: units stay "DN at full scale".
 * **Gamma.** ``"2.2"`` (a pure power law), ``"srgb"`` (the IEC 61966-2-1
   piecewise curve) or ``"1"`` (already linear). The default ``"auto"``
-  resolves to ``"2.2"`` for 8-bit input — webcams encode with a transfer
-  curve close to a 2.2 power law (common practice, no source) — and to
+  resolves to ``"srgb"`` for 8-bit input — webcams encode with the sRGB
+  transfer curve, which a pure 2.2 power law only approximates and departs
+  from most in the shadows, where weak lines and dark samples live (common
+  practice, no source) — and to
   ``"1"`` for 16-bit input, which in practice comes from RAW or scientific
   cameras that write linear data. The resolved value is recorded in
   ``StackedFrame.settings["gamma"]``.
@@ -454,7 +456,7 @@ def _resolve_gamma(gamma: str, dtype) -> str:
     if gamma not in GAMMA_CHOICES:
         raise InputError(f"`gamma` must be one of {', '.join(GAMMA_CHOICES)}, was {gamma!r}")
     if gamma == "auto":
-        return "2.2" if np.dtype(dtype) == np.uint8 else "1"
+        return "srgb" if np.dtype(dtype) == np.uint8 else "1"
     return gamma
 
 
@@ -486,7 +488,7 @@ def linearise(frame, *, gamma: str = "auto", saturation_level: float | None = No
     ----------
     frame : ndarray, uint8 or uint16 (or float, taken as encoded in [0, saturation_level])
     gamma : {"auto", "2.2", "srgb", "1"}, keyword-only
-        ``"auto"`` means ``"2.2"`` for uint8 and ``"1"`` otherwise.
+        ``"auto"`` means ``"srgb"`` for uint8 and ``"1"`` otherwise.
     saturation_level : float or None, keyword-only
         The encoded full-scale value; default the dtype's maximum (255, 65535).
 

@@ -876,7 +876,7 @@ class _Renderer:
             )
         hot_rng = np.random.default_rng(cam.width_px * 7919 + cam.height_px)  # fixed per sensor, not per frame
         count = bench.noise.hot_pixels
-        self.hot = (hot_rng.integers(0, cam.height_px, count), hot_rng.integers(0, cam.width_px, count), hot_rng.uniform(0.2, 1.0, count))
+        self.hot = (hot_rng.integers(0, cam.height_px, count), hot_rng.integers(0, cam.width_px, count), hot_rng.uniform(0.05, 0.4, count))
 
     def _second_order_bench(self) -> Bench | None:
         grating = self.bench.grating

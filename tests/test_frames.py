@@ -163,10 +163,10 @@ def test_srgb_and_power_law_decoding():
     np.testing.assert_array_equal(frames.linearise(codes, gamma="1"), codes.astype(np.float32))
 
 
-def test_auto_gamma_is_2_2_for_8_bit_and_linear_for_16_bit(rng):
+def test_auto_gamma_is_srgb_for_8_bit_and_linear_for_16_bit(rng):
     eight = frames.stack_frames([_band_frame(rng)])
     sixteen = frames.stack_frames([_band_frame(rng, dtype=np.uint16)])
-    assert eight.settings["gamma"] == "2.2" and eight.settings["gamma_requested"] == "auto"
+    assert eight.settings["gamma"] == "srgb" and eight.settings["gamma_requested"] == "auto"
     assert sixteen.settings["gamma"] == "1"
     assert sixteen.full_scale == 65535.0
 

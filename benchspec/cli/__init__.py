@@ -76,6 +76,10 @@ def main(argv: list[str] | None = None) -> int:
 
 
 def _show_warning(message, category, filename, lineno, file=None, line=None):
+    # Our own warnings are for the user; libraries' internal notices (resampling
+    # messages and the like) are not, and would bury the ones that matter.
+    if not issubclass(category, DegradedResultWarning) and "benchspec" not in str(filename):
+        return
     print(f"benchspec: warning: {message}", file=sys.stderr)
 
 
