@@ -114,29 +114,18 @@ def _screenshot(viewer, path: Path, xdisplay: str) -> Path:
 
 def _core_calibration(frames, lamp):
     """The core's calibration of the same frames, called directly (not through the viewer)."""
-    from benchspec.frames import stack_frames
-    from benchspec.geometry import measure_geometry, rectify
-    from benchspec.gui.processing import _placeholder_extract  # until the pipeline's extractor is wired
-    from benchspec.lines import estimate_noise
-    from benchspec.spectrum import Spectrum
-    from benchspec.wavecal import calibrate_spectrum
+    from benchspec.pipeline import calibrate_frames
 
-    stacked = stack_frames(frames, check=False)
-    geometry = measure_geometry(stacked.image, saturated=stacked.saturated)
-    band = rectify(stacked.image, geometry, saturated=stacked.saturated)
-    pixel, intensity, saturated, _ = _placeholder_extract(band.image, band.saturated, geometry,
-                                                          full_scale=stacked.full_scale)
-    spectrum = Spectrum(intensity=intensity, uncertainty=np.full(intensity.size, estimate_noise(intensity)),
-                        pixel=pixel, saturated=saturated)
-    return calibrate_spectrum(spectrum, lamp=lamp), spectrum
+    return calibrate_frames(frames, lamp=lamp)
 
 
 # --------------------------------------------------------------------------- the main path
 
 
 def test_demo_calibrate_identify_save(make_viewer, tmp_path, xdisplay):
-    from benchspec.gui.processing import _apply_solution, _within
+    from benchspec.gui.processing import _within
     from benchspec.identify import identify
+    from benchspec.pipeline import extract_frames
 
     viewer = make_viewer(DemoSource("cfl"))
     _first_frame(viewer)
@@ -149,7 +138,8 @@ def test_demo_calibrate_identify_save(make_viewer, tmp_path, xdisplay):
     viewer.buttons["calibrate"].invoke()
     _wait_log(viewer, "calibrated with cfl")
     frames = list(viewer.action_frames)
-    core, pixel_spectrum = _core_calibration(frames, "cfl")
+    calibration = _core_calibration(frames, "cfl")
+    core = calibration.wavelength
     # what the window shows equals the core's answer on the same frames
     assert f"RMS {core.rms_nm:.3f} nm = {core.rms_px:.2f} px" in viewer.fit_summary.cget("text")
     assert viewer.calibration.rms_px == pytest.approx(core.rms_px, rel=1e-9)
@@ -166,7 +156,8 @@ def test_demo_calibrate_identify_save(make_viewer, tmp_path, xdisplay):
 
     viewer.buttons["identify"].invoke()
     _wait_log(viewer, "identified:")
-    expected = identify(_within(_apply_solution(pixel_spectrum, core), 300.0, 1100.0))
+    # identify's domain is 300-1100 nm; the viewer passes the calibrated spectrum cut to it
+    expected = identify(_within(extract_frames(frames, calibration), 300.0, 1100.0))
     shown = [viewer.species_table.item(i, "values") for i in viewer.species_table.get_children()]
     assert shown[0][1] == expected.best.symbol
     assert f"Verdict: {expected.verdict}" in viewer.species_summary.cget("text")

@@ -172,6 +172,12 @@ def _full_scale(image: np.ndarray) -> float:
 class BenchProcessor:
     """Geometry, dark, calibration and identification for one bench session.
 
+    Every stage is a core call: :mod:`benchspec.frames` (stacking, dark,
+    linearising), :mod:`benchspec.geometry` (band), :class:`benchspec.extract.LiveExtractor`
+    (the live path) and :func:`benchspec.extract.extract_stack`,
+    :func:`benchspec.pipeline.calibrate_frames`, :func:`benchspec.pipeline.extract_frames`,
+    :func:`benchspec.identify.identify`, :mod:`benchspec.calfile` and :mod:`benchspec.io`.
+
     Thread use: the viewer's worker thread calls every method; the window
     reads only the frozen results. A lock guards the state so that a save
     requested from another thread sees a consistent calibration.
@@ -183,84 +189,104 @@ class BenchProcessor:
     """
 
     def __init__(self, *, gamma: str = "auto"):
-        from ..frames import FramePreparer
-
         self._lock = threading.RLock()
         self.gamma = gamma
-        self._preparer = FramePreparer(gamma=gamma)
-        self.geometry = None                 # benchspec.geometry.Geometry
-        self._tables = None
-        self._row_span = (0, 0)
+        self.geometry = None                 # benchspec.geometry.Geometry of the live band
         self.geometry_shape: tuple[int, ...] | None = None
+        self.extractor = None                # benchspec.extract.LiveExtractor for that geometry
         self.overlay: BandOverlay | None = None
-        self.dark = None                     # StackedFrame of the dark
+        self.dark = None                     # benchspec.frames.StackedFrame of the dark
         self.calibration: CalibrationSummary | None = None
+        self.calibration_file = None         # benchspec.calfile.Calibration behind it
         self.identification: IdentificationSummary | None = None
         self.last_spectrum: Spectrum | None = None
+        self._columns_kept: tuple[int, int] | None = None
         self._live_lines_cache: tuple[int, tuple[LiveLine, ...]] = (-999, ())
         self.lines_every_n_frames = 6
 
     # ------------------------------------------------------------------ frames
+    def _dark_for(self, shape) -> Any:
+        dark = self.dark
+        if dark is not None and tuple(dark.image.shape) != tuple(shape[:2]):
+            return None  # a dark of another resolution is not applied (the live view says so)
+        return dark
+
     def stack(self, images: Sequence[np.ndarray]):
         """The frames stacked into one linear image (``benchspec.frames.stack_frames``), dark subtracted."""
         from ..frames import stack_frames
 
+        images = _distinct(images)
         if not images:
             raise FrameError("no frames to stack; wait for the source to deliver frames")
-        dark = self.dark
-        if dark is not None and dark.image.shape != images[0].shape[:2]:
-            dark = None  # a dark of another resolution is not applied (the live view says so)
-        return stack_frames(list(images), gamma=self.gamma, dark=dark, check=False)
+        return stack_frames(list(images), gamma=self.gamma, dark=self._dark_for(images[0].shape), check=False)
 
     # ------------------------------------------------------------------ geometry
-    def locate(self, linear: np.ndarray, *, saturated=None) -> BandOverlay:
-        """Measure the band's geometry in a linear image and use it for live frames from now on."""
-        from ..geometry import measure_geometry, remap_tables
+    def _adopt_geometry(self, geometry, stacked) -> None:
+        """Use ``geometry`` for live frames: build the live extractor (noise model from ``stacked``)."""
+        from ..extract import LiveExtractor, estimate_noise_model
+        from ..frames import FramePreparer
 
-        geometry = measure_geometry(linear, saturated=saturated)
-        map_x, map_y = remap_tables(geometry)
-        # Live frames are linearised only over the rows the band touches.
-        top = max(0, int(np.floor(float(map_y.min()))) - 1)
-        bottom = min(geometry.frame_height_px, int(np.ceil(float(map_y.max()))) + 2)
+        if isinstance(stacked, _NoiseCarrier):
+            noise = stacked.noise
+        else:
+            noise = estimate_noise_model(stacked, geometry=geometry)
+        if noise.stack_factor != 1.0:  # the live path sees single frames
+            from dataclasses import replace as _replace
+
+            noise = _replace(noise, stack_factor=1.0, n_frames=1)
+        dark = self._dark_for(geometry.frame_shape)
+        preparer = FramePreparer(gamma=self.gamma, dark=None if dark is None else dark.image)
+        extractor = LiveExtractor(geometry, noise_model=noise, method="box", preparer=preparer)
         with self._lock:
             self.geometry = geometry
             self.geometry_shape = geometry.frame_shape
-            self._tables = (map_x, map_y - np.float32(top))
-            self._row_span = (top, bottom)
+            self.extractor = extractor
+            self._noise = noise
             self.overlay = _overlay_of(geometry)
             self._live_lines_cache = (-999, ())
-            return self.overlay
+
+    def locate(self, stacked) -> BandOverlay:
+        """Measure the band on a stack (``benchspec.geometry.measure_geometry``) and use it from now on."""
+        from ..geometry import measure_geometry
+
+        geometry = measure_geometry(stacked.image, saturated=stacked.saturated)
+        self._adopt_geometry(geometry, stacked)
+        return self.overlay
 
     def relocate(self, images: Sequence[np.ndarray]) -> str:
         """Measure the band again on the stack of ``images``; a calibration made on the old band is dropped."""
         stacked = self.stack(images)
-        self.locate(stacked.image, saturated=stacked.saturated)
+        self.locate(stacked)
         g = self.geometry
         text = (f"band measured on {stacked.n_frames} frame(s): rotation {g.rotation_deg:+.2f} deg, "
                 f"{g.n_columns} columns, aperture rows {g.aperture_rows[0]}-{g.aperture_rows[1]}, "
                 + ("curvature from %d lines" % g.n_lines_traced if g.curvature_known else "curvature unknown"))
         with self._lock:
             if self.calibration is not None:
-                self.calibration = None
-                self.identification = None
+                self.forget_calibration()
                 text += "; the calibration belonged to the old band: calibrate again"
         return text
 
     def _ensure_geometry(self, image: np.ndarray, stacked=None) -> None:
         if self.geometry is None or self.geometry_shape != image.shape[:2]:
-            if stacked is None:
-                linear, saturated = self._preparer.prepare(image)
-            else:
-                linear, saturated = stacked.image, stacked.saturated
-            self.locate(linear, saturated=saturated)
+            if self.calibration_file is not None and self.geometry_shape is not None:
+                raise FrameError(
+                    f"the frame is {image.shape[1]}x{image.shape[0]} px but the calibration was made on "
+                    f"{self.geometry_shape[1]}x{self.geometry_shape[0]} px frames; use the camera resolution of "
+                    "the calibration, or calibrate again")
+            self.locate(stacked if stacked is not None else self.stack([image]))
+
+    def _refresh_extractor(self) -> None:
+        if self.geometry is not None:
+            self._adopt_geometry(self.geometry, _NoiseCarrier(self._noise))
 
     # ------------------------------------------------------------------ live
     def live(self, image: np.ndarray, *, display_size: tuple[int, int], frame_index: int = 0,
              timestamp_s: float = 0.0, stacked=None) -> LiveResult:
-        """The live spectrum of one raw frame (fast path; geometry found once).
+        """The live spectrum of one raw frame (``LiveExtractor``; geometry found once).
 
-        ``stacked`` (a StackedFrame) replaces the raw frame's linear image for a
-        held stack; ``image`` is then only what is displayed.
+        ``stacked`` (a StackedFrame) replaces the raw frame for a held stack;
+        ``image`` is then only what is displayed.
         """
         display, scale = prepare_display(image, display_size)
         try:
@@ -270,45 +296,37 @@ class BenchProcessor:
             return LiveResult(frame_index, timestamp_s, display, scale, image.shape, empty, False, empty,
                               0, float(np.max(image)) / _full_scale(image), (), None, note=str(exc))
         with self._lock:
-            pixel, intensity, saturated, peak = self._extract_live(image, stacked)
-            axis, is_wl = self._axis(pixel)
+            extractor = self.extractor
+            if stacked is not None:
+                intensity, _variance, saturated = extractor.process_arrays(stacked.image, stacked.saturated)
+            else:
+                intensity, _variance, saturated = extractor.process_raw_arrays(image)
+            x0, y0, x1, y1 = extractor.region
+            peak = float(np.max(image[y0:y1, x0:x1])) / _full_scale(image)
+            pixel = np.arange(intensity.size, dtype=np.float64)
+            intensity = np.asarray(intensity, dtype=np.float64)
+            axis, is_wl = pixel, False
+            if self.calibration is not None and self._columns_kept is not None:
+                start, stop = self._columns_kept
+                pixel, intensity, saturated = pixel[start:stop], intensity[start:stop], saturated[start:stop]
+                axis, is_wl = self.calibration.core.wavelength_nm(pixel), True
             lines = self._live_lines(frame_index, axis, is_wl, intensity, saturated)
             overlay = self.overlay
             note = ""
-            if self.dark is not None and self.dark.image.shape != image.shape[:2]:
+            if self.dark is not None and self._dark_for(image.shape) is None:
                 note = "the dark was taken at another resolution and is not applied; take a new dark"
         return LiveResult(frame_index, timestamp_s, display, scale, image.shape, axis, is_wl, intensity,
-                          int(saturated.sum()), peak, lines, overlay,
+                          int(np.count_nonzero(saturated)), peak, lines, overlay,
                           held=stacked is not None, frames_in_stack=stacked.n_frames if stacked is not None else 1,
                           note=note)
 
-    def _extract_live(self, image, stacked):
-        import cv2
-
-        top, bottom = self._row_span
-        if stacked is not None:
-            linear = stacked.image[top:bottom]
-            saturated_px = stacked.saturated[top:bottom]
-        else:
-            linear, saturated_px = self._preparer.prepare(image[top:bottom])
-            if self.dark is not None and self.dark.image.shape == image.shape[:2]:
-                linear = cv2.subtract(linear, self.dark.image[top:bottom])
-        map_x, map_y = self._tables
-        band = cv2.remap(np.ascontiguousarray(linear, dtype=np.float32), map_x, map_y, cv2.INTER_LINEAR,
-                         borderMode=cv2.BORDER_CONSTANT, borderValue=0)
-        sat_band = cv2.remap(saturated_px.astype(np.uint8), map_x, map_y, cv2.INTER_NEAREST,
-                             borderMode=cv2.BORDER_CONSTANT, borderValue=0) > 0
-        full = self._preparer.full_scale(image.dtype)
-        return _placeholder_extract(band, sat_band, self.geometry, full_scale=full)
-
-    def _axis(self, pixel: np.ndarray) -> tuple[np.ndarray, bool]:
-        cal = self.calibration
-        if cal is None:
-            return pixel, False
-        return cal.core.wavelength_nm(pixel), True
-
     def _live_lines(self, frame_index, axis, is_wl, intensity, saturated) -> tuple[LiveLine, ...]:
-        """Line marks, refreshed every few frames (line fitting is the slow part)."""
+        """Line marks, refreshed every few frames.
+
+        Marks on the live view come from a quick peak search (display only:
+        the core's line fitter takes ~80 ms, too long per frame); everything
+        measured (calibration, identification, saved spectra) uses the core.
+        """
         last, cached = self._live_lines_cache
         if frame_index >= 0 and 0 <= frame_index - last < self.lines_every_n_frames and cached:
             return cached
@@ -339,61 +357,94 @@ class BenchProcessor:
         """Keep the stack of ``images`` as the dark; returns a line for the log."""
         from ..frames import stack_frames
 
+        images = _distinct(images)
         if not images:
             raise FrameError("no frames for the dark; wait for the source to deliver frames")
         dark = stack_frames(list(images), gamma=self.gamma, check=False)
         with self._lock:
             self.dark = dark
-            self._live_lines_cache = (-999, ())
+            self._refresh_extractor()
         return (f"dark from {dark.n_frames} frame(s), mean level {float(np.mean(dark.image)):.2f} "
                 "(linear counts); it is subtracted from every frame")
 
     def clear_dark(self) -> None:
         with self._lock:
             self.dark = None
+            self._refresh_extractor()
 
     # ------------------------------------------------------------------ spectrum, calibration, identification
-    def spectrum_of(self, images: Sequence[np.ndarray], *, provenance: dict | None = None) -> Spectrum:
-        """The spectrum of a stack of frames, on the wavelength axis once calibrated."""
-        from ..geometry import rectify
-        from ..lines import estimate_noise
+    def spectrum_of(self, images: Sequence[np.ndarray]) -> Spectrum:
+        """The spectrum of a stack of frames: ``pipeline.extract_frames`` once calibrated,
+        ``extract.extract_stack`` on the pixel axis before."""
+        import warnings
 
-        stacked = self.stack(images)
-        self._ensure_geometry(images[0], stacked)
+        from ..extract import extract_stack
+        from ..pipeline import extract_frames
+
+        images = _distinct(images)
+        if not images:
+            raise FrameError("no frames yet; wait for the source to deliver frames")
         with self._lock:
-            band = rectify(stacked.image, self.geometry, saturated=stacked.saturated)
-            pixel, intensity, saturated, _ = _placeholder_extract(band.image, band.saturated, self.geometry,
-                                                                  full_scale=stacked.full_scale)
-            noise = np.full(intensity.size, max(1e-6, estimate_noise(intensity)))
-            spectrum = Spectrum(intensity=intensity, uncertainty=noise, pixel=pixel, saturated=saturated,
-                                provenance=dict(provenance or {}, frames=len(images)))
-            if self.calibration is not None:
-                spectrum = _apply_solution(spectrum, self.calibration.core)
-            self.last_spectrum = spectrum
-            return spectrum
+            calibration = self.calibration_file
+        if calibration is not None:
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always")
+                spectrum = extract_frames(list(images), calibration, dark=self._dark_for(images[0].shape))
+            notes = [str(w.message) for w in caught]
+            if notes:
+                spectrum = spectrum.with_(provenance=dict(spectrum.provenance, viewer_warnings=notes))
+        else:
+            stacked = self.stack(images)
+            self._ensure_geometry(images[0], stacked)
+            spectrum = extract_stack(stacked, self.geometry)
+        self.last_spectrum = spectrum
+        return spectrum
 
     def calibrate(self, images: Sequence[np.ndarray], *, lamp: str) -> CalibrationSummary:
-        """Wavelength calibration of the stack with ``lamp``'s line list."""
-        from ..wavecal import calibrate_spectrum
+        """Wavelength calibration of the stack with ``lamp``'s line list (``pipeline.calibrate_frames``)."""
+        import warnings
 
-        with self._lock:
-            previous, self.calibration = self.calibration, None
-        try:
-            spectrum = self.spectrum_of(images)
-            result = calibrate_spectrum(spectrum, lamp=lamp)
-        except BaseException:
-            with self._lock:
-                self.calibration = previous
-            raise
-        summary = _calibration_summary(result, lamp=lamp, frames_used=len(images), spectrum=spectrum)
+        from ..pipeline import calibrate_frames
+
+        images = _distinct(images)
+        if not images:
+            raise FrameError("no frames to calibrate on; wait for the source to deliver frames")
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            calibration = calibrate_frames(list(images), lamp=lamp, dark=self._dark_for(images[0].shape),
+                                           gamma=self.gamma)
+        message = " ".join(str(w.message) for w in caught)
+        return self._adopt_calibration(calibration, lamp=lamp, frames_used=len(images), images=images,
+                                       message=message)
+
+    def _adopt_calibration(self, calibration, *, lamp: str, frames_used: int, images=None, message: str = ""):
+        from ..pipeline import apply_calibration
+
+        stacked = self.stack(images) if images else None
+        if stacked is not None:
+            self._adopt_geometry(calibration.geometry, stacked)
+        else:
+            self._adopt_geometry(calibration.geometry, _NoiseCarrier(self._default_noise()))
+        reference = Spectrum(intensity=np.asarray(calibration.reference_spectrum or np.zeros(calibration.geometry.n_columns)),
+                             uncertainty=np.ones(calibration.geometry.n_columns),
+                             pixel=np.arange(calibration.geometry.n_columns, dtype=float))
+        kept = apply_calibration(reference, calibration).provenance["wavelength_calibration"]["columns_kept"]
+        summary = _calibration_summary(calibration.wavelength, lamp=lamp, frames_used=frames_used, message=message)
         with self._lock:
             self.calibration = summary
+            self.calibration_file = calibration
+            self._columns_kept = (int(kept[0]), int(kept[1]))
             self.identification = None
             self._live_lines_cache = (-999, ())
         return summary
 
+    def _default_noise(self):
+        from ..extract import NoiseModel
+
+        return getattr(self, "_noise", None) or NoiseModel(gain_e_per_dn=float("inf"), read_noise_dn=1.0)
+
     def identify(self, images: Sequence[np.ndarray]) -> IdentificationSummary:
-        """Species in the (calibrated) spectrum of the stack."""
+        """Species in the calibrated spectrum of the stack (``identify.identify`` within 300-1100 nm)."""
         from ..identify import identify
 
         if self.calibration is None:
@@ -410,15 +461,30 @@ class BenchProcessor:
     def forget_calibration(self) -> None:
         with self._lock:
             self.calibration = None
+            self.calibration_file = None
+            self._columns_kept = None
             self.identification = None
+            self._live_lines_cache = (-999, ())
 
     def load_calibration(self, path, *, frame_shape=None) -> CalibrationSummary:
-        """Read a calibration file saved earlier; refuse one made for another frame size."""
-        raise FileFormatError("loading calibration files needs benchspec.calfile, which is not installed yet")
+        """Read a calibration file (``calfile.read_calibration``); refuse one made for another frame size."""
+        from ..pipeline import read_calibration
+
+        calibration = read_calibration(Path(path))
+        height, width = calibration.geometry.frame_shape
+        if frame_shape is not None and tuple(frame_shape[:2]) != (height, width):
+            raise FrameError(f"{Path(path).name} was made for {width}x{height} px frames but this source delivers "
+                             f"{frame_shape[1]}x{frame_shape[0]} px; switch the camera to {width}x{height} "
+                             "or calibrate again")
+        lamps = calibration.settings.get("lamps") or list(calibration.wavelength.lamps) or ["?"]
+        return self._adopt_calibration(calibration, lamp=",".join(lamps), frames_used=0,
+                                       message=f"loaded from {Path(path).name}")
 
     # ------------------------------------------------------------------ saving
     def save_frame(self, image: np.ndarray, path: Path) -> str:
         import cv2
+
+        from ..io import atomic_write_bytes
 
         path = Path(path)
         if path.suffix.lower() not in (".png", ".tif", ".tiff"):
@@ -427,80 +493,82 @@ class BenchProcessor:
         ok, data = cv2.imencode(path.suffix.lower(), bgr)
         if not ok:
             raise ExportError(f"OpenCV could not encode the frame as {path.suffix}")
-        from ..io import atomic_write_bytes
-
         atomic_write_bytes(path, data.tobytes(), force=True)
         return f"frame saved to {path}"
 
     def save_spectrum(self, images: Sequence[np.ndarray], path, *, source: dict | None = None) -> str:
-        """Write the spectrum of ``images`` in the format of ``path``'s extension (benchspec.io)."""
-        from ..io import build_provenance, write_spectrum
+        """Write the spectrum of ``images`` in the format of ``path``'s extension (``io.write_spectrum``)."""
+        from ..io import write_spectrum
 
         spectrum = self.spectrum_of(images)
-        calibration = None
-        if self.calibration is not None:
-            core = self.calibration.core
-            calibration = {"rms_nm": core.rms_nm, "rms_px": core.rms_px, "lamp": self.calibration.lamp,
-                           "line_list_source": "; ".join(core.line_list_sources), "verdict": core.verdict}
-        frames = [{"path": f"live frame {k}", "sha256": _array_sha256(im), "role": "signal"}
-                  for k, im in enumerate(images)]
-        provenance = build_provenance(frames=frames, calibration=calibration,
-                                      settings={"gamma": self.gamma, "dark_frames": self.dark.n_frames if self.dark else 0,
-                                                "extraction": "viewer"},
-                                      source_type=(source or {}).get("light_source"),
-                                      extra={"source": source or {}})
+        provenance = dict(spectrum.provenance)
+        provenance.setdefault("frames_in_viewer", [{"sha256_of_pixels": _array_sha256(im)} for im in images])
+        provenance["viewer_source"] = dict(source or {})
         spectrum = spectrum.with_(provenance=provenance)
-        labels = [(l.wavelength_nm, l.label) for l in self._live_lines_cache[1] if l.wavelength_nm is not None]
+        labels = [(l.reference_nm or l.wavelength_nm, l.label) for l in self._live_lines_cache[1]
+                  if l.wavelength_nm is not None]
         written = write_spectrum(spectrum, Path(path), force=True, lines=labels or None)
         return f"spectrum saved to {written}"
 
     def save_calibration(self, path) -> str:
-        if self.calibration is None:
-            raise ExportError("no calibration to save: calibrate first (c)")
-        from ..io import write_json_file
+        """Write the calibration file (``calfile.write_calibration``)."""
+        from ..pipeline import write_calibration
 
-        written = write_json_file(Path(path), {"calibration": self.calibration.core.to_dict(),
-                                               "lamp": self.calibration.lamp}, force=True)
+        if self.calibration_file is None:
+            raise ExportError("no calibration to save: calibrate first (c)")
+        written = write_calibration(self.calibration_file, Path(path), force=True)
         return f"calibration saved to {written}"
 
     def save_plot(self, result: LiveResult, path, *, title: str = "") -> str:
-        """A plot of the spectrum on screen, written in the format of the extension (benchspec.io)."""
+        """A plot of the spectrum on screen, written in the format of the extension (``io.write_spectrum``)."""
         from ..io import write_spectrum
 
         path = Path(path)
         if path.suffix.lower() not in (".png", ".svg", ".pdf"):
             raise ExportError(f"save plots as .png, .svg or .pdf, not {path.suffix or 'no extension'!r}")
+        if result.axis.size < 2:
+            raise ExportError("no spectrum on screen to plot yet")
         order = np.argsort(result.axis)
         noise = np.zeros(result.axis.size)
-        kwargs = {"wavelength_nm": result.axis[order]} if result.axis_is_wavelength else {}
-        spectrum = Spectrum(intensity=result.intensity[order], uncertainty=noise,
-                            pixel=np.arange(result.axis.size, dtype=float)[order] if result.axis_is_wavelength
-                            else result.axis[order], **kwargs)
-        labels = [(l.wavelength_nm, l.label) for l in result.lines if l.wavelength_nm is not None]
+        if result.axis_is_wavelength:
+            spectrum = Spectrum(intensity=result.intensity[order], uncertainty=noise,
+                                pixel=np.arange(result.axis.size, dtype=float)[order],
+                                wavelength_nm=result.axis[order])
+        else:
+            spectrum = Spectrum(intensity=result.intensity[order], uncertainty=noise, pixel=result.axis[order])
+        labels = [(l.reference_nm or l.wavelength_nm, l.label) for l in result.lines if l.wavelength_nm is not None]
         written = write_spectrum(spectrum, path, force=True, title=title or None, lines=labels or None)
         return f"plot saved to {written}"
+
+
+def _distinct(images: Sequence[np.ndarray]) -> list[np.ndarray]:
+    """The frames with repeats of the very same array dropped.
+
+    A still (a demo frame, one image file) is delivered again and again as
+    the same array; stacking copies of it adds no information and leaves a
+    zero frame-to-frame scatter that the noise estimate cannot use.
+    """
+    seen: set[int] = set()
+    kept = []
+    for image in images:
+        if id(image) not in seen:
+            seen.add(id(image))
+            kept.append(image)
+    return kept
+
+
+class _NoiseCarrier:
+    """Stands in for a stack when only a known noise model is to be reused."""
+
+    def __init__(self, noise):
+        self.noise = noise
+        self.n_frames = 1
 
 
 def _array_sha256(image: np.ndarray) -> str:
     import hashlib
 
     return hashlib.sha256(np.ascontiguousarray(image).tobytes()).hexdigest()
-
-
-def _apply_solution(spectrum: Spectrum, calibration) -> Spectrum:
-    """The spectrum on the calibration's wavelength axis (increasing).
-
-    Far outside the matched lines a cubic solution can turn back on itself;
-    only the monotonic stretch of columns around the matched lines is kept.
-    """
-    wavelength = calibration.wavelength_nm(spectrum.pixel)
-    keep = _monotonic_span(wavelength, spectrum.pixel, calibration)
-    flip = wavelength.size > 1 and wavelength[keep][0] > wavelength[keep][-1]
-    order = keep if not flip else keep[::-1]
-    uncertainty = calibration.uncertainty_nm(spectrum.pixel)
-    return spectrum.with_(intensity=spectrum.intensity[order], uncertainty=spectrum.uncertainty[order],
-                          pixel=spectrum.pixel[order], saturated=spectrum.saturated[order],
-                          wavelength_nm=wavelength[order], wavelength_uncertainty_nm=uncertainty[order])
 
 
 def _within(spectrum: Spectrum, low_nm: float, high_nm: float) -> Spectrum:
@@ -517,22 +585,7 @@ def _within(spectrum: Spectrum, low_nm: float, high_nm: float) -> Spectrum:
     return spectrum.with_(**fields)
 
 
-def _monotonic_span(wavelength: np.ndarray, pixel: np.ndarray, calibration) -> np.ndarray:
-    """Indices of the longest strictly monotonic run of ``wavelength`` through the matched lines."""
-    step = np.diff(wavelength)
-    sign = np.sign(np.median(step)) if step.size else 1.0
-    good = np.concatenate([[True], step * sign > 0])
-    centre = int(np.argmin(np.abs(pixel - np.median([m.pixel for m in calibration.matches] or [pixel.mean()]))))
-    low = centre
-    while low > 0 and good[low]:
-        low -= 1
-    high = centre + 1
-    while high < wavelength.size and good[high]:
-        high += 1
-    return np.arange(low, high)
-
-
-def _calibration_summary(result, *, lamp: str, frames_used: int, spectrum: Spectrum | None = None) -> CalibrationSummary:
+def _calibration_summary(result, *, lamp: str, frames_used: int, message: str = "") -> CalibrationSummary:
     rows = tuple({"pixel": m.pixel, "wavelength_nm": m.reference_nm, "species": m.species,
                   "residual_nm": m.residual_nm, "used": m.used_in_fit} for m in result.matches)
     low, high = result.solution.pixel_range
@@ -540,8 +593,8 @@ def _calibration_summary(result, *, lamp: str, frames_used: int, spectrum: Spect
     return CalibrationSummary(
         lamp=lamp, rms_px=float(result.rms_px), rms_nm=float(result.rms_nm), order=result.solution.order,
         verdict=result.verdict, rows=rows, fit_pixel=grid, fit_wavelength_nm=result.wavelength_nm(grid),
-        uncertainty_nm=result.uncertainty_nm(grid), frames_used=frames_used, message=result.verdict_reason,
-        core=result)
+        uncertainty_nm=result.uncertainty_nm(grid), frames_used=frames_used,
+        message=" ".join(filter(None, [result.verdict_reason, message])), core=result)
 
 
 def _identification_summary(result) -> IdentificationSummary:
@@ -551,13 +604,7 @@ def _identification_summary(result) -> IdentificationSummary:
                                  message=" ".join(result.notes), core=result)
 
 
-# --------------------------------------------------------------------------- placeholders
-# A trivial stand-in for the core geometry and extraction (row sums over the
-# brightest rows), used until benchspec.geometry / benchspec.extract exist.
-
-
-def _grey(image: np.ndarray) -> np.ndarray:
-    return image.mean(axis=2, dtype=np.float32) if image.ndim == 3 else image.astype(np.float32)
+# --------------------------------------------------------------------------- drawing helpers
 
 
 def _overlay_of(geometry) -> BandOverlay:
@@ -575,22 +622,6 @@ def _overlay_of(geometry) -> BandOverlay:
     curvature = "curvature measured" if geometry.curvature_known else "curvature unknown"
     return BandOverlay(band=(outline,), aperture=(row_line(a0), row_line(a1 - 1)), background=background,
                        description=f"band at {geometry.rotation_deg:+.2f} deg, {curvature}")
-
-
-def _placeholder_extract(band, saturated_band, geometry, *, full_scale):
-    """Box sum over the aperture rows of a rectified band, minus the mean background row.
-
-    A stand-in for benchspec.extract until its live extractor is wired in.
-    """
-    low, high = geometry.aperture_rows
-    cut = band[low:high]
-    signal = cut.sum(axis=0, dtype=np.float64)
-    saturated = saturated_band[low:high].any(axis=0)
-    rows = [band[a:b] for a, b in geometry.background_rows if b > a]
-    if rows:
-        signal = signal - np.concatenate(rows, axis=0).mean(axis=0, dtype=np.float64) * (high - low)
-    peak = float(cut.max()) / full_scale if cut.size else 0.0
-    return np.arange(signal.size, dtype=np.float64), signal, saturated, peak
 
 
 def _quick_peaks(axis, intensity, saturated, *, max_marks: int = 14) -> tuple[LiveLine, ...]:
