@@ -49,3 +49,32 @@ def test_virtual_halogen_corrected_with_its_response_is_flat(bench_and_calibrati
     ratio = corrected.intensity / planck_spectral_radiance(corrected.wavelength_nm, 2900.0)
     ratio /= np.median(ratio)
     assert np.all(np.abs(ratio - 1) < 0.02)
+
+
+def test_absorbance_command_on_demo_frames(tmp_path, capsys):
+    # The invented school bench's demo frames: a dye cuvette rendered as absorbance 0.8 at 525 nm
+    # (demo_images/recipe.toml, source sample:0.8:525:90) against its water blank, through
+    # `benchspec absorbance` with frames, a dark frame and a calibration file.
+    from pathlib import Path
+
+    from benchspec.calfile import write_calibration
+    from benchspec.cli import main
+    from benchspec.io import read_table
+
+    demo = Path(__file__).resolve().parents[1] / "demo_images"
+    if not (demo / "dye.jpg").exists():
+        pytest.skip("demo frames not in this checkout")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        calibration = pipeline.calibrate_frames([str(demo / "cfl_1.png"), str(demo / "cfl_2.png")], lamp="cfl",
+                                                dark=[str(demo / "dark.png")])
+    cal_path = tmp_path / "cal.json"
+    write_calibration(calibration, cal_path)
+    out = tmp_path / "A.csv"
+    code = main(["absorbance", str(demo / "dye.jpg"), "--blank", str(demo / "blank.jpg"), "--dark", str(demo / "dark.png"),
+                 "--calibration", str(cal_path), "--out", str(out)])
+    capsys.readouterr()
+    assert code == 0
+    table = read_table(out)
+    near = np.abs(table["wavelength_nm"] - 525.0) < 5
+    assert np.median(table["absorbance"][near]) == pytest.approx(0.8, abs=0.05)

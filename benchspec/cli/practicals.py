@@ -40,8 +40,16 @@ def _read_spectrum_file(path: str):
     return read_spectrum(path)
 
 
-def _load_inputs(paths, *, calibration: str | None, what: str):
-    """One calibrated spectrum from spectrum files (one path) or frames (with --calibration)."""
+def _is_frames(paths) -> bool:
+    paths = [paths] if isinstance(paths, str) else list(paths or [])
+    return any(Path(p).suffix.lower() in _FRAME_EXTENSIONS for p in paths)
+
+
+def _load_inputs(paths, *, calibration: str | None, what: str, dark_frames=None):
+    """One calibrated spectrum from spectrum files (one path) or frames (with --calibration).
+
+    ``dark_frames`` (frame paths) are subtracted from the frames before extraction.
+    """
     paths = [paths] if isinstance(paths, str) else list(paths)
     frames = [p for p in paths if Path(p).suffix.lower() in _FRAME_EXTENSIONS]
     if frames:
@@ -56,7 +64,7 @@ def _load_inputs(paths, *, calibration: str | None, what: str):
             ) from None
         if len(frames) != len(paths):
             raise InputError(f"{what}: give either frames or one spectrum file, not both")
-        return extract_frames(frames, calibration)
+        return extract_frames(frames, calibration, dark=list(dark_frames) if dark_frames else None)
     if len(paths) != 1:
         raise InputError(f"{what}: give one spectrum file (got {len(paths)}); stack frames with --calibration instead")
     spectrum = _read_spectrum_file(paths[0])
@@ -164,8 +172,9 @@ def register(subparsers) -> None:
                    help="an unknown's spectrum (repeat)")
     p.add_argument("--unknown-absorbance", action="append", default=[], type=float, metavar="A",
                    help="an unknown's absorbance, measured elsewhere (repeat)")
-    p.add_argument("--blank", metavar="BLANK", help="blank spectrum (needed with spectra)")
-    p.add_argument("--dark", metavar="DARK", help="dark spectrum (omit if already subtracted)")
+    p.add_argument("--blank", metavar="BLANK", help="blank spectrum or frame (needed with spectra)")
+    p.add_argument("--dark", metavar="DARK", help="dark spectrum or frame (omit if already subtracted)")
+    p.add_argument("--calibration", metavar="CAL.json", help="wavelength calibration, when standards are frames")
     where = p.add_mutually_exclusive_group()
     where.add_argument("--wavelength", type=float, metavar="NM", help="read absorbance at this wavelength")
     where.add_argument("--band", type=float, nargs=2, metavar=("LOW", "HIGH"), help="average absorbance over this band (nm)")
@@ -294,9 +303,11 @@ def _run_absorbance(args) -> int:
 
     if args.out and not args.force and Path(args.out).exists():
         raise InputError(f"{args.out} already exists; pass --force to overwrite it, or choose another name")
-    sample = _load_inputs(args.sample, calibration=args.calibration, what="sample")
-    blank = _load_inputs(args.blank, calibration=args.calibration, what="blank")
-    dark = _load_inputs(args.dark, calibration=args.calibration, what="dark") if args.dark else None
+    # Dark frames are subtracted from frames before extraction; a dark spectrum is subtracted here.
+    dark_frames = args.dark if args.dark and _is_frames(args.dark) else None
+    sample = _load_inputs(args.sample, calibration=args.calibration, what="sample", dark_frames=dark_frames)
+    blank = _load_inputs(args.blank, calibration=args.calibration, what="blank", dark_frames=dark_frames)
+    dark = _load_inputs(args.dark, calibration=None, what="dark") if args.dark and not dark_frames else None
     result = absorbance_spectrum(sample, blank=blank, dark=dark, stray_light_fraction=args.stray_light)
     rows = np.isfinite(result.absorbance) & np.isfinite(result.absorbance_uncertainty)
     if args.out:
@@ -388,12 +399,13 @@ def _run_concentration(args) -> int:
             sigmas += [None] * len(table["concentration"])
         labels += [f"table row {i + 1}" for i in range(len(table["concentration"]))]
     needs_spectra = bool(args.standard or args.unknown)
-    blank = dark = None
+    blank = dark = dark_frames = None
     if needs_spectra:
         if not args.blank:
             raise InputError("spectra of standards or unknowns need --blank BLANK (the solvent in the same cuvette)")
-        blank = _load_inputs(args.blank, calibration=None, what="blank")
-        dark = _load_inputs(args.dark, calibration=None, what="dark") if args.dark else None
+        dark_frames = [args.dark] if args.dark and _is_frames(args.dark) else None
+        blank = _load_inputs(args.blank, calibration=args.calibration, what="blank", dark_frames=dark_frames)
+        dark = _load_inputs(args.dark, calibration=None, what="dark") if args.dark and not dark_frames else None
     for item in args.standard:
         path, sep, conc_text = item.rpartition("=")
         if not sep or not path:
@@ -402,7 +414,8 @@ def _run_concentration(args) -> int:
             conc = float(conc_text)
         except ValueError:
             raise InputError(f"--standard {item!r}: concentration {conc_text!r} is not a number") from None
-        result = absorbance_spectrum(_load_inputs(path, calibration=None, what=f"standard {path}"), blank=blank, dark=dark)
+        standard = _load_inputs(path, calibration=args.calibration, what=f"standard {path}", dark_frames=dark_frames)
+        result = absorbance_spectrum(standard, blank=blank, dark=dark)
         reading = _band_absorbance(result, args)
         concentrations.append(conc)
         absorbances.append(reading.absorbance)
@@ -426,7 +439,8 @@ def _run_concentration(args) -> int:
         label, sep, path = item.partition("=")
         if not sep:
             label, path = Path(item).stem, item
-        result = absorbance_spectrum(_load_inputs(path, calibration=None, what=f"unknown {path}"), blank=blank, dark=dark)
+        unknown = _load_inputs(path, calibration=args.calibration, what=f"unknown {path}", dark_frames=dark_frames)
+        result = absorbance_spectrum(unknown, blank=blank, dark=dark)
         reading = _band_absorbance(result, args)
         unknowns.append(
             predict_concentration(fit, reading.absorbance, absorbance_uncertainty=reading.absorbance_uncertainty,
