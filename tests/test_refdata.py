@@ -1,8 +1,8 @@
 """The line library, lamps and lasers in calibration/, checked against published values.
 
 Sources named beside each check. "NIST ASD export" means the NIST Atomic Spectra
-Database Lines output (air, observed wavelengths) as exported to the public
-repository queezz/echelle_spectra (src/echelle_spectra/resources/nist_asd_cache/).
+Database Lines output (air, observed wavelengths), read from a cached public
+export of that form.
 """
 
 from __future__ import annotations
