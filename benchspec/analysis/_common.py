@@ -45,46 +45,6 @@ def sample_step_nm(wavelength_nm: np.ndarray) -> float:
     return float(np.median(np.diff(wavelength_nm)))
 
 
-def gaussian_smooth(values: np.ndarray, sigma_samples: float) -> tuple[np.ndarray, np.ndarray]:
-    """Gaussian smoothing that ignores NaN samples; returns (smoothed, kernel weights per output).
-
-    The second array is the sum of squared normalised weights at each sample,
-    so that the variance of a smoothed value of independent samples with
-    variance v is ``v * weights`` (when v is constant in the window).
-    """
-    values = np.asarray(values, dtype=np.float64)
-    if sigma_samples <= 0:
-        return values.copy(), np.ones_like(values)
-    half = int(np.ceil(4 * sigma_samples))
-    offsets = np.arange(-half, half + 1)
-    kernel = np.exp(-0.5 * (offsets / sigma_samples) ** 2)
-    good = np.isfinite(values)
-    filled = np.where(good, values, 0.0)
-    norm = np.convolve(good.astype(float), kernel, mode="same")
-    smooth = np.convolve(filled, kernel, mode="same")
-    norm2 = np.convolve(good.astype(float), kernel**2, mode="same")
-    with np.errstate(invalid="ignore", divide="ignore"):
-        result = smooth / norm
-        weights = norm2 / norm**2
-    result[norm <= 0] = np.nan
-    return result, weights
-
-
-def smooth_variance(variance: np.ndarray, sigma_samples: float) -> np.ndarray:
-    """Variance of a Gaussian-smoothed series of independent samples with per-sample ``variance``."""
-    variance = np.asarray(variance, dtype=np.float64)
-    if sigma_samples <= 0:
-        return variance.copy()
-    half = int(np.ceil(4 * sigma_samples))
-    offsets = np.arange(-half, half + 1)
-    kernel = np.exp(-0.5 * (offsets / sigma_samples) ** 2)
-    good = np.isfinite(variance)
-    norm = np.convolve(good.astype(float), kernel, mode="same")
-    weighted = np.convolve(np.where(good, variance, 0.0), kernel**2, mode="same")
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return weighted / norm**2
-
-
 def _gauss_linear(x, amplitude, centre, sigma, offset, slope):
     return amplitude * np.exp(-0.5 * ((x - centre) / sigma) ** 2) + offset + slope * (x - centre)
 
@@ -209,7 +169,3 @@ def contiguous_runs(mask: np.ndarray) -> list[tuple[int, int]]:
     padded = np.concatenate([[False], mask, [False]])
     changes = np.flatnonzero(np.diff(padded.astype(np.int8)))
     return [(int(a), int(b)) for a, b in zip(changes[::2], changes[1::2])]
-
-
-def analysis_error(message: str) -> AnalysisError:
-    return AnalysisError(message)

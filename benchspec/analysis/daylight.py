@@ -24,7 +24,7 @@ from scipy.signal import find_peaks
 from ..errors import AnalysisError, FileFormatError, InputError
 from ..refdata import LineList, ReferenceLine, read_data_text
 from ..spectrum import Spectrum
-from ._common import gaussian_smooth, parabolic_vertex, positive_uncertainty, require_calibrated, sample_step_nm
+from ._common import parabolic_vertex, positive_uncertainty, require_calibrated, sample_step_nm
 
 __all__ = [
     "DaylightReferenceLine",

@@ -10,7 +10,6 @@ its figure with ``--plot FILE.png|svg|pdf``.
 
 from __future__ import annotations
 
-import argparse
 import dataclasses
 import json
 import math
@@ -19,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import AnalysisError, FileFormatError, InputError
+from ..errors import AnalysisError, InputError
 from ..safety import cautions_for
 
 _FRAME_EXTENSIONS = (".png", ".jpg", ".jpeg", ".tif", ".tiff", ".bmp", ".webp", ".avi", ".mp4", ".mov", ".mkv")
