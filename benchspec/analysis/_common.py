@@ -11,7 +11,7 @@ import warnings
 import numpy as np
 from scipy import optimize
 
-from ..errors import AnalysisError, DegradedResultWarning, InputError
+from ..errors import DegradedResultWarning, InputError
 from ..spectrum import Spectrum
 
 FWHM_PER_SIGMA = 2.0 * np.sqrt(2.0 * np.log(2.0))
