@@ -226,7 +226,7 @@ def estimate_noise_model(stacked: StackedFrame, *, geometry: Geometry | None = N
         level = stacked.image.astype(np.float64)
         var = stacked.frame_variance.astype(np.float64)
         use = ~stacked.saturated & np.isfinite(var)
-        step = max(1, int(math.sqrt(use.size / 400_000)))
+        step = max(1, int(round(math.sqrt(use.size / 150_000))))
         level = level[::step, ::step][use[::step, ::step]]
         var = var[::step, ::step][use[::step, ::step]]
         if level.size < 1000:
@@ -248,7 +248,11 @@ def estimate_noise_model(stacked: StackedFrame, *, geometry: Geometry | None = N
     tables = remap_tables(geometry)
     band = rectify(stacked.image, geometry, saturated=stacked.saturated, tables=tables)
     rng = np.random.default_rng(0)  # fixed seed: the estimate is deterministic
-    white = rng.standard_normal(geometry.frame_shape).astype(np.float32)
+    map_x, map_y = tables
+    x0, x1 = max(0, int(map_x.min()) - 2), min(geometry.frame_width_px, int(map_x.max()) + 3)
+    y0, y1 = max(0, int(map_y.min()) - 2), min(geometry.frame_height_px, int(map_y.max()) + 3)
+    white = np.zeros(geometry.frame_shape, np.float32)
+    white[y0:y1, x0:x1] = rng.standard_normal((y1 - y0, x1 - x0)).astype(np.float32)
     white_band = rectify(white, geometry, tables=tables)
     a0, a1 = geometry.aperture_rows
     rows = _interior_rows(geometry)

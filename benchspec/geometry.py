@@ -487,7 +487,7 @@ def measure_geometry(
     background_gap_px: int = 3,
     background_width_px: int | None = None,
     min_line_snr: float = 15.0,
-    iterations: int = 2,
+    iterations: int = 1,
 ) -> Geometry:
     """Find the band in a frame and measure its rotation, curvature and aperture.
 
@@ -590,7 +590,7 @@ def measure_geometry(
             band = _band_image(frame, theta_deg=theta, cx=cx, cy=cy, s0=s0, n_s=n_s, t0=t0, n_t=n_t,
                                tilt=tilt, curvature=curv)
             sat_band = None
-            if sat_float is not None:
+            if sat_float is not None and saturated.any():
                 sat_band = np.nan_to_num(_band_image(sat_float, theta_deg=theta, cx=cx, cy=cy, s0=s0, n_s=n_s, t0=t0,
                                                      n_t=n_t, tilt=tilt, curvature=curv)) > 0
             residual = _measure_curvature(band, sat_band, centre_index=-t0, half_height=half_height, s0=s0,
@@ -724,10 +724,10 @@ def _coarse_band(frame: np.ndarray, *, max_rotation_deg: float) -> dict:
         profile, _ = _shear_projection(work, math.tan(math.radians(angle)), pad)
         return float(np.dot(profile, profile))
 
-    angles = np.arange(-max_rotation_deg, max_rotation_deg + 0.01, 1.0)
+    angles = np.arange(-max_rotation_deg, max_rotation_deg + 0.01, 2.0)
     scores = np.array([score(a) for a in angles])
     best = int(np.argmax(scores))
-    fine = np.arange(angles[best] - 1.0, angles[best] + 1.01, 0.2)
+    fine = np.arange(angles[best] - 1.5, angles[best] + 1.51, 0.5)
     fine_scores = np.array([score(a) for a in fine])
     j = int(np.argmax(fine_scores))
     angle = float(fine[j])
@@ -735,7 +735,7 @@ def _coarse_band(frame: np.ndarray, *, max_rotation_deg: float) -> dict:
         a, b, c = fine_scores[j - 1: j + 2]
         denom = a - 2 * b + c
         if denom < 0:
-            angle += 0.2 * 0.5 * (a - c) / denom
+            angle += 0.5 * 0.5 * (a - c) / denom
     slope = math.tan(math.radians(angle))
     profile, sheared = _shear_projection(work, slope, pad)
     # Row profile (mean over columns) -> band rows; column profile -> brightest region.
@@ -806,48 +806,60 @@ def _measure_trace(band: np.ndarray, *, s0: float, t0: float, half_height: float
             edges[k] = lo + int(np.argmin(column_signal[lo:hi]))
     outer = max(3, int(0.2 * (n_t / 2 - half_height)))
     window = (max(0, int(centre_index - 1.6 * half_height - 4)), min(n_t, int(centre_index + 1.6 * half_height + 5)))
-    mids, widths, weights, centres_s, signals = [], [], [], [], []
-    chunk_signal = np.zeros(n_chunks)
-    cut = {"top": 0, "bottom": 0}
-    measured_chunks = 0
-    for n, (a, b) in enumerate(zip(edges[:-1], edges[1:])):
-        chunk = band[:, a:b]
-        rows_finite = np.isfinite(chunk).mean(axis=1) >= 0.5
-        if rows_finite[window[0]:window[1]].sum() < 8:
-            continue
-        profile = np.where(rows_finite, np.nanmean(chunk, axis=1), np.nan)
-        finite = np.flatnonzero(np.isfinite(profile))
-        ends = np.concatenate([profile[:outer], profile[-outer:]])
-        ends = ends[np.isfinite(ends)]
-        if ends.size < 2:
-            ends = profile[finite[[0, -1]]]
-        baseline = float(np.median(ends))
-        noise = max(_robust_sigma(ends), 1e-6 * max(1.0, abs(baseline)))
-        smooth = np.convolve(np.nan_to_num(profile, nan=baseline), np.ones(3) / 3, mode="same")
-        centre_zone = smooth[max(0, int(centre_index - half_height)): int(centre_index + half_height) + 1]
-        signal = float(np.max(centre_zone) - baseline)
-        chunk_signal[n] = signal
-        if signal < 8 * noise:
-            continue
-        measured_chunks += 1
-        lo = max(window[0], int(finite[0]) + 1)
-        hi = min(window[1], int(finite[-1]))
-        level = baseline + 0.5 * signal
-        if smooth[lo] >= level and lo > window[0]:
-            cut["top"] += 1
-            continue
-        if smooth[hi - 1] >= level and hi < window[1]:
-            cut["bottom"] += 1
-            continue
-        top, bottom = _outer_edges(smooth, level, lo, hi)
-        if top is None:
-            continue
-        mids.append(0.5 * (top + bottom) + t0)
-        widths.append(bottom - top)
-        snr = min(signal / noise, 50.0)  # capped: a few bright lines must not outvote the rest of the band
-        weights.append(snr * snr)
-        centres_s.append(s0 + 0.5 * (a + b - 1))
-        signals.append(signal)
+    # All chunk profiles at once: sums and counts of finite values per chunk (reduceat over columns).
+    finite_map = np.isfinite(band)
+    sums = np.add.reduceat(np.where(finite_map, band, 0.0), edges[:-1], axis=1).T  # (n_chunks, n_t)
+    counts = np.add.reduceat(finite_map, edges[:-1], axis=1).T
+    widths_px = np.diff(edges)[:, None]
+    rows_finite = counts >= 0.5 * widths_px
+    with np.errstate(invalid="ignore", divide="ignore"):
+        profiles = np.where(rows_finite, sums / np.maximum(counts, 1), np.nan)
+    ends = np.concatenate([profiles[:, :outer], profiles[:, -outer:]], axis=1)
+    baseline = np.nanmedian(ends, axis=1)
+    noise = 1.4826 * np.nanmedian(np.abs(ends - baseline[:, None]), axis=1)
+    noise = np.maximum(np.nan_to_num(noise), 1e-6 * np.maximum(1.0, np.abs(np.nan_to_num(baseline))))
+    filled = np.where(np.isfinite(profiles), profiles, baseline[:, None])
+    smooth = filled.copy()
+    smooth[:, 1:-1] = (filled[:, :-2] + filled[:, 1:-1] + filled[:, 2:]) / 3.0
+    zone = slice(max(0, int(centre_index - half_height)), int(centre_index + half_height) + 1)
+    signal = smooth[:, zone].max(axis=1) - baseline
+    chunk_signal = np.nan_to_num(signal)
+    enough_rows = rows_finite[:, window[0]:window[1]].sum(axis=1) >= 8
+    measured = enough_rows & np.isfinite(baseline) & (chunk_signal >= 8 * noise)
+    level = baseline + 0.5 * signal
+    # first and last finite rows of each chunk, limited to the window
+    has_rows = rows_finite.any(axis=1)
+    first_finite = np.argmax(rows_finite, axis=1)
+    last_finite = n_t - 1 - np.argmax(rows_finite[:, ::-1], axis=1)
+    lo = np.maximum(window[0], first_finite + 1)
+    hi = np.minimum(window[1], last_finite)
+    idx = np.arange(n_chunks)
+    lo_c = np.clip(lo, 0, n_t - 1)
+    hi_c = np.clip(hi - 1, 0, n_t - 1)
+    cut_top = measured & has_rows & (lo > window[0]) & (smooth[idx, lo_c] >= level)
+    cut_bottom = measured & has_rows & (hi < window[1]) & (smooth[idx, hi_c] >= level) & ~cut_top
+    cut = {"top": int(cut_top.sum()), "bottom": int(cut_bottom.sum())}
+    measured_chunks = int(measured.sum())
+    rows = np.arange(n_t)[None, :]
+    in_window = (rows >= lo[:, None]) & (rows < hi[:, None])
+    above = (smooth >= level[:, None]) & in_window
+    any_above = above.any(axis=1)
+    i_top = np.argmax(above, axis=1)
+    i_bottom = n_t - 1 - np.argmax(above[:, ::-1], axis=1)
+    inner = any_above & (i_top > lo) & (i_bottom < hi - 1)
+    ok = measured & ~cut_top & ~cut_bottom & inner
+    i_top_c = np.clip(i_top, 1, n_t - 1)
+    i_bot_c = np.clip(i_bottom, 0, n_t - 2)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        top = (i_top_c - 1) + (level - smooth[idx, i_top_c - 1]) / (smooth[idx, i_top_c] - smooth[idx, i_top_c - 1])
+        bottom = i_bot_c + (smooth[idx, i_bot_c] - level) / (smooth[idx, i_bot_c] - smooth[idx, i_bot_c + 1])
+    ok &= np.isfinite(top) & np.isfinite(bottom)
+    mids = list(0.5 * (top[ok] + bottom[ok]) + t0)
+    widths = list((bottom - top)[ok])
+    snr = np.minimum(chunk_signal / noise, 50.0)  # capped: a few bright lines must not outvote the rest of the band
+    weights = list((snr**2)[ok])
+    centres_s = list((s0 + 0.5 * (edges[:-1] + edges[1:] - 1))[ok])
+    signals = list(chunk_signal[ok])
     for side in ("top", "bottom"):
         if measured_chunks and cut[side] >= max(2, 0.3 * measured_chunks):
             raise GeometryError(
