@@ -79,3 +79,24 @@ def test_bad_plans():
     # A range too wide for the field of view is reported, not hidden.
     narrow = plan_setup(lines_per_mm=1000, image_width_px=640, horizontal_fov_deg=20)
     assert not narrow.range_on_sensor and not narrow.centred_range_fits
+
+
+def test_planner_matches_the_virtual_bench_mapping():
+    # Consistency, not an outside source: the virtual bench (benchspec.simulate, written separately)
+    # records its pixel-to-wavelength mapping in each frame's truth sidecar; the planner with the same
+    # grating, camera and tilt must put every wavelength on the same column.
+    import json
+    from pathlib import Path
+
+    truth_path = Path(__file__).resolve().parents[1] / "demo_images" / "cfl_1.truth.json"
+    if not truth_path.exists():
+        pytest.skip("demo frames not in this checkout")
+    truth = json.loads(truth_path.read_text())
+    bench = truth["bench"]
+    plan = plan_setup(lines_per_mm=bench["grating"]["lines_per_mm"], image_width_px=bench["camera"]["width_px"],
+                      horizontal_fov_deg=bench["camera"]["horizontal_fov_deg"], tilt_deg=truth["geometry"]["camera_tilt_deg"])
+    column = np.array(truth["mapping"]["rectified_column_px"])
+    wavelength = np.array(truth["mapping"]["wavelength_nm"])
+    keep = np.isfinite(wavelength) & (wavelength > 380) & (wavelength < 750)
+    assert np.allclose(plan.column_of(wavelength[keep]), column[keep], atol=0.01)
+    assert plan.focal_length_px == pytest.approx(truth["geometry"]["focal_length_px"])
