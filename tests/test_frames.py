@@ -320,3 +320,19 @@ def test_preparer_matches_stack_of_one(rng):
     st = frames.stack_frames([frame], gamma="srgb")
     np.testing.assert_allclose(prepared, st.image, rtol=1e-6, atol=1e-6)
     np.testing.assert_array_equal(saturated, st.saturated)
+
+
+def test_load_stack_streams_a_video_and_hashes_it(tmp_path):
+    import hashlib
+
+    path = tmp_path / "lamp.avi"
+    writer = cv2.VideoWriter(str(path), cv2.VideoWriter_fourcc(*"MJPG"), 30, (64, 48))
+    for i in range(5):
+        frame = np.full((48, 64, 3), 40, np.uint8)
+        frame[20:28] = 200
+        writer.write(frame)
+    writer.release()
+    st = frames.load_stack(path, max_frames=4)
+    assert st.n_frames == 4
+    assert st.input_sha256 == (hashlib.sha256(path.read_bytes()).hexdigest(),)
+    assert st.image[24].mean() > 5 * st.image[5].mean()

@@ -274,3 +274,9 @@ def test_input_is_not_modified():
     image.setflags(write=False)
     geometry.measure_geometry(image)
     np.testing.assert_array_equal(image, copy)
+
+
+def test_band_rotated_beyond_the_range_is_refused():
+    image, _ = synthetic_band(shape=(500, 500), rotation_deg=24.0, lines_s=(), continuum=400.0, half_height=25.0)
+    with pytest.raises(GeometryError, match=r"the band is rotated by 2\d\.\d deg, beyond the \+-16 deg"):
+        geometry.measure_geometry(image)
