@@ -117,6 +117,18 @@ def _ask_open_path(parent, title: str, types: list[tuple[str, str]], *, folder: 
     return filedialog.askopenfilename(parent=parent, title=title, filetypes=types) or None
 
 
+def _freeze_heap() -> None:
+    """Move the objects alive now out of the garbage collector's sight.
+
+    A full collection walks every object; with matplotlib, Tk and the core
+    loaded it took 100-350 ms here, long enough to freeze the window. What is
+    alive after start-up (or after a calibration) lives on, so it is frozen.
+    """
+    import gc
+
+    gc.freeze()  # no collection first: that alone can take 100 ms
+
+
 class Viewer:
     """The bench viewer.
 
@@ -172,6 +184,11 @@ class Viewer:
         self._display_size = (640, 300)
         self._display_box = [self._display_size]   # shared with the worker thread
 
+        # OpenCV's own worker threads would compete with ours on a 2-core machine; one
+        # thread each for reading, processing, plotting and Tk keeps the window responsive.
+        import cv2
+
+        cv2.setNumThreads(1)
         # Full plot redraws run here, off the Tk thread (see canvas.ThreadedCanvas).
         self._plot_executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="benchspec-plot")
         self._build_style()
@@ -181,6 +198,7 @@ class Viewer:
         for text in messages:
             self.report(text, level="warning")
         self.show_light_chooser(initial=light)
+        _freeze_heap()
         self._after_id = root.after(self.poll_ms, self._tick)
         self._status_after = root.after(500, self._update_status)
 
@@ -219,7 +237,7 @@ class Viewer:
         style.configure("TLabelframe", background=p["paper"], bordercolor=p["muted"])
         style.configure("TLabelframe.Label", background=p["paper"], foreground=p["accent"],
                         font=("TkDefaultFont", 9, "bold"))
-        style.configure("TButton", padding=(6, 2))
+        style.configure("TButton", padding=(3, 1))
         style.configure("Go.TButton", background=p["accent"], foreground="#ffffff",
                         font=("TkDefaultFont", 11, "bold"), padding=(14, 6))
         style.map("Go.TButton", background=[("disabled", p["panel"]), ("active", "#235559")])
@@ -334,17 +352,17 @@ class Viewer:
 
         capture = ttk.LabelFrame(bar, text="Capture", padding=(4, 2))
         capture.grid(row=0, column=0, sticky="ns", padx=3)
-        self.buttons["hold"] = ttk.Button(capture, text="Hold", width=6, command=self.toggle_hold)
+        self.buttons["hold"] = ttk.Button(capture, text="Hold", width=5, command=self.toggle_hold)
         self.buttons["hold"].grid(row=0, column=0)
         self.stack_count = tk.IntVar(value=10)
         ttk.Label(capture, text="N").grid(row=0, column=1, padx=(6, 1))
         self.stack_spin = ttk.Spinbox(capture, from_=1, to=500, width=4, textvariable=self.stack_count)
         self.stack_spin.grid(row=0, column=2)
-        self.buttons["stack"] = ttk.Button(capture, text="Stack", width=6, command=self.stack)
+        self.buttons["stack"] = ttk.Button(capture, text="Stack", width=5, command=self.stack)
         self.buttons["stack"].grid(row=0, column=3, padx=(3, 0))
         self.buttons["dark"] = ttk.Button(capture, text="Dark", width=5, command=self.take_dark)
         self.buttons["dark"].grid(row=0, column=4, padx=(3, 0))
-        self.buttons["clear_dark"] = ttk.Button(capture, text="No dark", width=7, command=self.clear_dark)
+        self.buttons["clear_dark"] = ttk.Button(capture, text="No dark", width=6, command=self.clear_dark)
         self.buttons["clear_dark"].grid(row=0, column=5, padx=(3, 0))
         self.buttons["band"] = ttk.Button(capture, text="Band", width=5, command=self.find_band)
         self.buttons["band"].grid(row=0, column=6, padx=(3, 0))
@@ -353,16 +371,16 @@ class Viewer:
         waves.grid(row=0, column=1, sticky="ns", padx=3)
         lamps = list(available_lamps())
         self.lamp = tk.StringVar(value="cfl" if "cfl" in lamps else (lamps[0] if lamps else ""))
-        self.lamp_box = ttk.Combobox(waves, textvariable=self.lamp, values=lamps, width=7, state="readonly")
+        self.lamp_box = ttk.Combobox(waves, textvariable=self.lamp, values=lamps, width=5, state="readonly")
         self.lamp_box.grid(row=0, column=0)
-        self.buttons["calibrate"] = ttk.Button(waves, text="Calibrate", width=9, command=self.calibrate)
+        self.buttons["calibrate"] = ttk.Button(waves, text="Calibrate", width=8, command=self.calibrate)
         self.buttons["calibrate"].grid(row=0, column=1, padx=(3, 0))
         self.buttons["load_calibration"] = ttk.Button(waves, text="Load…", width=6, command=self.load_calibration)
         self.buttons["load_calibration"].grid(row=0, column=2, padx=(3, 0))
 
         species = ttk.LabelFrame(bar, text="Species", padding=(4, 2))
         species.grid(row=0, column=2, sticky="ns", padx=3)
-        self.buttons["identify"] = ttk.Button(species, text="Identify", width=8, command=self.identify)
+        self.buttons["identify"] = ttk.Button(species, text="Identify", width=7, command=self.identify)
         self.buttons["identify"].grid(row=0, column=0)
 
         camera = ttk.LabelFrame(bar, text="Camera", padding=(4, 2))
@@ -371,7 +389,7 @@ class Viewer:
         root.bind("<Configure>", self._on_root_resize, add="+")
         ttk.Label(camera, text="Exposure").grid(row=0, column=0, padx=(0, 2))
         self.exposure = tk.DoubleVar(value=100.0)
-        self.exposure_spin = ttk.Spinbox(camera, from_=1, to=10000, increment=10, width=6, textvariable=self.exposure)
+        self.exposure_spin = ttk.Spinbox(camera, from_=1, to=10000, increment=10, width=5, textvariable=self.exposure)
         self.exposure_spin.grid(row=0, column=1)
         self.buttons["exposure"] = ttk.Button(camera, text="Set", width=4, command=self.set_exposure)
         self.buttons["exposure"].grid(row=0, column=2, padx=(3, 0))
@@ -436,7 +454,7 @@ class Viewer:
         self.fit_canvas.get_tk_widget().grid(row=1, column=0, sticky="ew", pady=2)
         columns = ("pixel", "nm", "species", "residual")
         self.fit_table = ttk.Treeview(page, columns=columns, show="headings", height=8)
-        for name, title, width in zip(columns, ("pixel", "line nm", "species", "resid. nm"), (60, 70, 70, 70)):
+        for name, title, width in zip(columns, ("pixel", "line nm", "species", "resid. nm"), (58, 66, 100, 66)):
             self.fit_table.heading(name, text=title)
             self.fit_table.column(name, width=width, anchor="e", stretch=True)
         self.fit_table.grid(row=2, column=0, sticky="nsew")
@@ -452,7 +470,7 @@ class Viewer:
         self.species_summary.grid(row=0, column=0, sticky="ew")
         columns = ("rank", "species", "score", "flux", "lines")
         self.species_table = ttk.Treeview(page, columns=columns, show="headings", height=6)
-        for name, width in zip(columns, (36, 70, 56, 56, 50)):
+        for name, width in zip(columns, (34, 104, 48, 44, 40)):
             self.species_table.heading(name, text=name)
             self.species_table.column(name, width=width, anchor="e", stretch=True)
         self.species_table.grid(row=1, column=0, sticky="nsew", pady=2)
@@ -542,7 +560,7 @@ class Viewer:
         self.light = key
         self.light_confirmed = True
         title, _ = cautions_for(key)
-        self.light_button.configure(text=f"Light: {title.split(' (')[0].split(' or ')[0]}")
+        self.light_button.configure(text=f"Light: {key}")
         if key in _LIGHT_TO_LAMP and _LIGHT_TO_LAMP[key] in self.lamp_box.cget("values"):
             self.lamp.set(_LIGHT_TO_LAMP[key])
         self.gate.place_forget()
@@ -804,9 +822,17 @@ class Viewer:
         for text in self._spec_labels:
             text.set_visible(False)
         segments, colours = [], []
-        for label, (text, x, height, colour, _species) in zip(self._spec_labels, spec):
+        # Every line gets a tick; a label only when no taller line's label is too close to read.
+        min_dx = 0.022 * x_span
+        placed: list[float] = []
+        for k in sorted(range(len(spec)), key=lambda i: -spec[i][2]):
+            text, x, height, colour, _species = spec[k]
             segments.append([(x, height + gap), (x, height + 3 * gap)])
             colours.append(colour)
+            if any(abs(x - other) < min_dx for other in placed):
+                continue
+            placed.append(x)
+            label = self._spec_labels[len(placed) - 1]
             label.set_position((x, height + 3.6 * gap))
             label.set_text(text)
             label.set_color(PALETTE["warning"] if text.endswith("clipped") else PALETTE["ink"])
@@ -1040,6 +1066,7 @@ class Viewer:
                   message=f"calibrating on {len(frames)} frame(s) with the {lamp} lamp…")
 
     def _done_calibrate(self, summary: CalibrationSummary) -> None:
+        _freeze_heap()
         self.calibration = summary
         self.identification = None
         self._show_calibration(summary)

@@ -166,6 +166,9 @@ def _full_scale(image: np.ndarray) -> float:
     return float(np.nanmax(image)) or 1.0
 
 
+# Wavelengths shown on the live axis: the range identification works in (benchspec.identify).
+_VIEW_RANGE_NM = (300.0, 1100.0)
+
 # --------------------------------------------------------------------------- the processor
 
 
@@ -310,6 +313,10 @@ class BenchProcessor:
                 start, stop = self._columns_kept
                 pixel, intensity, saturated = pixel[start:stop], intensity[start:stop], saturated[start:stop]
                 axis, is_wl = self.calibration.core.wavelength_nm(pixel), True
+                # show what a camera can see; far beyond its lines the polynomial is extrapolated
+                seen = (axis >= _VIEW_RANGE_NM[0]) & (axis <= _VIEW_RANGE_NM[1])
+                if seen.sum() > 16:
+                    axis, pixel, intensity, saturated = axis[seen], pixel[seen], intensity[seen], saturated[seen]
             lines = self._live_lines(frame_index, axis, is_wl, intensity, saturated)
             overlay = self.overlay
             note = ""
@@ -589,7 +596,10 @@ def _calibration_summary(result, *, lamp: str, frames_used: int, message: str = 
     rows = tuple({"pixel": m.pixel, "wavelength_nm": m.reference_nm, "species": m.species,
                   "residual_nm": m.residual_nm, "used": m.used_in_fit} for m in result.matches)
     low, high = result.solution.pixel_range
-    grid = np.linspace(low, high, 200)
+    grid = np.linspace(low, high, 400)
+    seen = (result.wavelength_nm(grid) >= _VIEW_RANGE_NM[0]) & (result.wavelength_nm(grid) <= _VIEW_RANGE_NM[1])
+    if seen.sum() > 8:
+        grid = grid[seen]
     return CalibrationSummary(
         lamp=lamp, rms_px=float(result.rms_px), rms_nm=float(result.rms_nm), order=result.solution.order,
         verdict=result.verdict, rows=rows, fit_pixel=grid, fit_wavelength_nm=result.wavelength_nm(grid),
