@@ -20,14 +20,14 @@ The method, in the order it runs:
    range, weighted by relative intensity, each a Gaussian of the LSF width
    (phosphor bands also carry their own width, the line's ``tolerance_nm``)
    integrated over each sample. Each species may shift by up to
-   ``max_shift_nm``: three times the spectrum's median calibration
-   uncertainty (``Spectrum.wavelength_uncertainty_nm``), or 0.9 nm when the
-   spectrum does not carry one; the shift is the one that best correlates
-   with the data.
+   ``max_shift_nm``: three times the spectrum's calibration uncertainty
+   (``Spectrum.wavelength_uncertainty_nm``, median at the strong lines),
+   or 0.9 nm when the spectrum does not carry one; the shift is the one that
+   best correlates with the data.
 5. **Non-negative least squares** (``scipy.optimize.nnls``) over all
    candidate species at once plus a smooth non-negative continuum (broad
    Gaussian bumps, FWHM ``max(40 nm, 8 x LSF)``, and a signed constant), so
-   that mixtures share the flux between them.
+   that mixtures share the flux between them (weights 1/noise).
 6. **Relative intensities within a tolerance.** Lamp, discharge current and
    camera change line ratios. After each fit every line of a fitted species
    is rescaled by the ratio of the data to the model at that line, clipped
@@ -96,8 +96,9 @@ _UNKNOWN_SCORE = 0.4
 _UNKNOWN_EXPLAINED = 0.6
 _REPORTED_SCORE = 0.2
 _PASSES = 4  # fits: the first with NIST ratios, then with the response and per-line factors
-_RESPONSE_LIMIT = 10.0  # the shared smooth response may depart from 1 by at most this factor
+_RESPONSE_LIMIT = 100.0  # the shared smooth response may depart from 1 by at most this factor
 _RESPONSE_PRIOR_LINES = 3.0  # the prior "response = 1" weighs as much as this many well-measured lines
+_MIN_CONTRAST = 0.1  # an emission line rises at least this fraction above the continuum under it
 
 
 # --------------------------------------------------------------------------- results
@@ -225,7 +226,8 @@ class IdentificationResult:
     verdict : str
         ``"identified"``, ``"mixture"``, ``"uncertain"`` or ``"unknown"``.
     matches : tuple of SpeciesMatch
-        Species scoring at least 0.2, best first.
+        Species scoring at least 0.2, best first; empty when the verdict is
+        ``unknown`` (the notes then name the closest, not credible, candidates).
     unexplained : tuple of ObservedLine
         Observed lines no species explains.
     explained_fraction : float
@@ -601,11 +603,8 @@ def identify(
     edges_lo, edges_hi = _sample_edges(wavelength)
     step = edges_hi - edges_lo
     median_step = float(np.median(step))
-    if max_shift_nm is None:
-        cal = _DEFAULT_CALIBRATION_SIGMA_NM
-        if calibration is not None and np.any(np.isfinite(calibration)):
-            cal = float(np.nanmedian(calibration))
-        max_shift_nm = float(np.clip(3.0 * cal, 0.05, 3.0))
+    given_shift = max_shift_nm
+    max_shift_nm = 3.0 * _DEFAULT_CALIBRATION_SIGMA_NM if given_shift is None else float(given_shift)
     notes: list[str] = []
 
     # Observed lines and the line-spread function.
@@ -627,10 +626,17 @@ def identify(
     broad_limit = max(2.0 * lsf_fwhm, lsf_fwhm + 2.0 * median_step)
     narrow_limit = 0.5 * lsf_fwhm if lsf_fwhm >= 3.0 * median_step else 0.0  # narrower than the LSF: noise or hot pixels
     lines = tuple(l for l in observed if narrow_limit <= l.fwhm_nm <= broad_limit)
+    # Emission lines stand out from whatever continuum lies under them; ripples of a few
+    # percent on a bright continuum (absorption structure, response ripple) are not lines.
+    baseline = _rough_baseline(wavelength, intensity, lsf_fwhm)
+    base_at = np.interp([l.wavelength_nm for l in lines], wavelength, baseline) if lines else np.array([])
+    lines = tuple(l for l, b in zip(lines, base_at) if l.height >= _MIN_CONTRAST * max(b, 0.0))
     if not lines:
         notes.append(f"every peak is broader than {broad_limit:.1f} nm (twice the line width): no line spectrum")
         return _unknown(wavelength, max_shift_nm, notes, observed=observed, fwhm=lsf_fwhm)
     sigma_lsf = _gaussian_sigma(lsf_fwhm, median_step)
+    if given_shift is None:
+        max_shift_nm = _shift_allowance(wavelength, calibration, lines)
 
     templates = []
     for symbol in candidates:
@@ -645,7 +651,6 @@ def identify(
 
     weight = 1.0 / sigma
     basis = _continuum_basis(wavelength, lsf_fwhm)
-    baseline = _rough_baseline(wavelength, intensity, lsf_fwhm)
     line_signal = intensity - baseline
 
     # Per-species shift: the one (within the allowance) that best correlates with the line signal.
@@ -715,7 +720,8 @@ def identify(
             significant = usable & (numerator > 3.0 * noise_level)
             log_at.append(template.wavelength_nm[significant])
             log_ratio.append(np.log(total_factor[significant]))
-            log_weight.append(np.sqrt(np.clip(numerator[significant] / noise_level[significant], 0.0, None)))
+            # a line measured at flux SNR >= 20 counts fully; weaker lines count less
+            log_weight.append(np.clip(numerator[significant] / noise_level[significant] / 20.0, 0.0, 1.0))
         response = _fit_response(knots, np.concatenate(log_at) if log_at else np.array([]),
                                  np.concatenate(log_ratio) if log_ratio else np.array([]),
                                  np.concatenate(log_weight) if log_weight else np.array([]))
@@ -771,6 +777,23 @@ def _explained_total(wavelength, intensity, components, continuum, near) -> floa
     return float(min(1.0, np.sum(supported[near] * step[near]) / total))
 
 
+def _shift_allowance(wavelength, calibration, lines) -> float:
+    """Largest shift of a species' lines: 3 x the calibration uncertainty where the lines are.
+
+    The median of ``wavelength_uncertainty_nm`` at the strong observed lines
+    (above 10% of the strongest's SNR; a calibration is often far less
+    certain at the extrapolated ends of the axis than among its lines),
+    clipped to 0.05-3 nm; 0.9 nm without one.
+    """
+    if calibration is None or not np.any(np.isfinite(calibration)):
+        return 3.0 * _DEFAULT_CALIBRATION_SIGMA_NM
+    good = np.isfinite(calibration)
+    strongest = max(l.snr for l in lines)
+    strong = [l.wavelength_nm for l in lines if l.snr >= 0.1 * strongest]
+    at_lines = np.interp(strong, wavelength[good], calibration[good])
+    return float(np.clip(3.0 * np.median(at_lines), 0.05, 3.0))
+
+
 def _gaussian_sigma(fwhm: float, median_step: float) -> float:
     """Gaussian part of the LSF: the sample box (variance step^2/12) is modelled separately."""
     return float(np.sqrt(max((fwhm / _FWHM_PER_SIGMA) ** 2 - median_step**2 / 12.0, (0.25 * median_step) ** 2, 0.02**2)))
@@ -800,7 +823,7 @@ def _fit_response(knots: np.ndarray, at_nm: np.ndarray, log_ratio: np.ndarray, w
         unit = np.zeros(count)
         unit[j] = 1.0
         hats[:, j] = np.interp(at_nm, knots, unit)
-    w = weights / max(weights.max(), 1e-12)
+    w = np.asarray(weights, dtype=float)
     rows = [hats * w[:, None]]
     rhs = [log_ratio * w]
     ridge = np.sqrt(_RESPONSE_PRIOR_LINES)
@@ -810,7 +833,7 @@ def _fit_response(knots: np.ndarray, at_nm: np.ndarray, log_ratio: np.ndarray, w
         curvature = np.zeros((count - 2, count))
         for j in range(count - 2):
             curvature[j, j : j + 3] = (1.0, -2.0, 1.0)
-        rows.append(2.0 * ridge * curvature)
+        rows.append(ridge * curvature)
         rhs.append(np.zeros(count - 2))
     solution, *_ = np.linalg.lstsq(np.vstack(rows), np.concatenate(rhs), rcond=None)
     solution = np.clip(solution, -np.log(_RESPONSE_LIMIT), np.log(_RESPONSE_LIMIT))
@@ -938,6 +961,12 @@ def _assess(wavelength, intensity, sigma, templates, profiles, line_weights, shi
     if unexplained:
         notes.append(f"{len(unexplained)} observed line(s) are not explained by any candidate species")
 
+    if verdict == "unknown":
+        # nothing credible: no species is named (the notes say why)
+        closest = ", ".join(f"{m.symbol} {m.score:.2f}" for m in reported[:3])
+        if closest:
+            notes.append(f"closest candidates, not credible: {closest}")
+        reported = ()
     kept = {m.symbol for m in reported}
     comps = {}
     for k, template in enumerate(templates):
