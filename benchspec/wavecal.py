@@ -493,31 +493,28 @@ def _reference_lines(lamp: Lamp, low_nm: float = 370.0, high_nm: float = 1000.0)
 
 
 def _cluster(reference, resolution_nm: float) -> _Features:
-    """Merge reference lines closer than ``resolution_nm`` into blend features."""
+    """Merge reference lines closer than ``resolution_nm`` into blend features (vectorised over groups)."""
     wavelength, intensity, tolerance, species = reference
-    groups: list[list[int]] = []
-    for i in range(wavelength.size):
-        if groups and wavelength[i] - wavelength[groups[-1][-1]] < resolution_nm:
-            groups[-1].append(i)
-        else:
-            groups.append([i])
-    out_w, out_i, out_s, out_sp, out_m, out_merged = [], [], [], [], [], []
-    for g in groups:
-        g = np.array(g)
-        strongest = intensity[g].max()
-        g = g[intensity[g] >= 0.03 * strongest]  # lines this faint barely move a blend's centre
-        weights = intensity[g]
-        centre = float(np.sum(weights * wavelength[g]) / np.sum(weights))
-        spread = float(np.sqrt(np.sum(weights * (wavelength[g] - centre) ** 2) / np.sum(weights)))
-        listed = float(np.sqrt(np.sum(weights * tolerance[g] ** 2) / np.sum(weights)))
-        dominant = int(g[np.argmax(weights)])
-        out_w.append(centre)
-        out_i.append(float(np.sum(weights)))
-        out_s.append(math.hypot(listed, spread))
-        out_sp.append(species[dominant])
-        out_m.append(tuple(float(wavelength[k]) for k in g))
-        out_merged.append(g.size > 1)
-    return _Features(np.array(out_w), np.array(out_i), np.array(out_s), tuple(out_sp), tuple(out_m), np.array(out_merged))
+    n = wavelength.size
+    group = np.concatenate([[0], np.cumsum(np.diff(wavelength) >= resolution_nm)])
+    n_groups = int(group[-1]) + 1
+    strongest = np.zeros(n_groups)
+    np.maximum.at(strongest, group, intensity)
+    keep = intensity >= 0.03 * strongest[group]  # lines this faint barely move a blend's centre
+    g, w, lam, tol = group[keep], intensity[keep], wavelength[keep], tolerance[keep]
+    total = np.bincount(g, weights=w, minlength=n_groups)
+    centre = np.bincount(g, weights=w * lam, minlength=n_groups) / total
+    spread2 = np.maximum(np.bincount(g, weights=w * (lam - centre[g]) ** 2, minlength=n_groups) / total, 0.0)
+    listed2 = np.bincount(g, weights=w * tol**2, minlength=n_groups) / total
+    count = np.bincount(g, minlength=n_groups)
+    kept_index = np.flatnonzero(keep)
+    order = np.lexsort((-w, g))  # by group, strongest first
+    first = np.r_[0, np.flatnonzero(np.diff(g[order])) + 1]
+    dominant = kept_index[order[first]]
+    bounds = np.r_[0, np.cumsum(count)]
+    members = tuple(tuple(float(v) for v in lam[bounds[k]:bounds[k + 1]]) for k in range(n_groups))
+    return _Features(centre, total, np.sqrt(listed2 + spread2), tuple(species[k] for k in dominant), members,
+                     count > 1)
 
 
 def _normalise(pixel_low: float, pixel_high: float):
@@ -581,7 +578,10 @@ def _pair_hypotheses(pairs: Sequence[ManualPair], *, centre, scale):
 
 def _score_hypotheses(coeffs, peaks: _Peaks, features: _Features, *, centre, scale, d_low, d_high, tol_px, pairs, t_ends):
     """Coarse score of each hypothesis: lines landing on a feature; invalid hypotheses score -inf."""
-    t = (peaks.pixel - centre) / scale
+    # The 30 brightest lines are enough to rank hypotheses; refinement then uses every line.
+    strongest = np.sort(np.argsort(-peaks.amplitude)[:30])
+    amplitude = peaks.amplitude[strongest]
+    t = (peaks.pixel[strongest] - centre) / scale
     lam = coeffs[:, 0:1] + coeffs[:, 1:2] * t + coeffs[:, 2:3] * t**2
     disp = (coeffs[:, 1:2] + 2 * coeffs[:, 2:3] * t) / scale
     end_disp = (coeffs[:, 1:2] + 2 * coeffs[:, 2:3] * t_ends[None, :]) / scale
@@ -597,7 +597,7 @@ def _score_hypotheses(coeffs, peaks: _Peaks, features: _Features, *, centre, sca
     distance = np.abs(lam - fw[nearest])
     allowed = tol_px * np.abs(disp) + features.sigma[order][nearest]
     hit = distance < allowed
-    weight = 1.0 + 0.5 * (np.argsort(np.argsort(-peaks.amplitude)) < 6)
+    weight = 1.0 + 0.5 * (np.argsort(np.argsort(-amplitude)) < 6)
     score = (hit * weight[None, :]).sum(axis=1)
     for pair in pairs:
         tp = (pair.pixel - centre) / scale
@@ -674,14 +674,14 @@ def _cluster_adaptive(reference, resolution_nm: float, predicted_nm: np.ndarray)
     """Blend features that follow what was detected.
 
     Lines closer than 0.8 resolution element can never be separated and are
-    merged. Neighbours up to 1.5 elements apart stay separate features only
+    merged. Neighbours up to 2 elements apart stay separate features only
     if enough detected lines fall among them to account for each; otherwise
     the group is one blend feature at its intensity-weighted centroid.
     """
     sub = _cluster(reference, 0.8 * resolution_nm)
     groups: list[list[int]] = []
     for k in range(sub.wavelength.size):
-        if groups and sub.wavelength[k] - sub.wavelength[groups[-1][-1]] < 1.5 * resolution_nm:
+        if groups and sub.wavelength[k] - sub.wavelength[groups[-1][-1]] < 2.0 * resolution_nm:
             groups[-1].append(k)
         else:
             groups.append([k])
