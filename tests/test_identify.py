@@ -377,3 +377,42 @@ def test_cli_bad_file_exits_2_with_one_line(tmp_path, capsys, body, message):
     err = capsys.readouterr().err
     assert message in err
     assert err.count("\n") == 1 and "Traceback" not in err
+
+
+# --------------------------------------------------------------------------- virtual bench, end to end
+
+@pytest.fixture(scope="module")
+def bench_spectra():
+    """The packaged demo frames (rendered by the virtual bench) through calibration and extraction."""
+    import warnings
+
+    from benchspec import demo
+    from benchspec.pipeline import calibrate_frames, extract_frames
+
+    folder = demo.demo_folder()
+    dark = [folder / "dark.png"]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        calibration = calibrate_frames([folder / f"cfl_{i}.png" for i in (1, 2, 3)], lamp="cfl", dark=dark)
+        names = ("tube_A", "tube_B", "tube_C", "led", "laser", "halogen")
+        spectra = {name: extract_frames([folder / f"{name}.jpg"], calibration, dark=dark) for name in names}
+    truth = {name: json.loads((folder / f"{name}.truth.json").read_text(encoding="utf-8"))["bench"]["source"] for name in names}
+    return spectra, truth
+
+
+@pytest.mark.parametrize("name", ["tube_A", "tube_B", "tube_C"])
+def test_virtual_bench_tubes_are_identified_as_the_lamp_they_were_rendered_from(bench_spectra, name):
+    from benchspec.refdata import load_lamp
+
+    spectra, truth = bench_spectra
+    expected = load_lamp(truth[name]["name"]).species  # the truth sidecar names the lamp
+    result = identify(spectra[name])
+    assert result.verdict == "identified"
+    assert (result.best.symbol,) == expected
+
+
+@pytest.mark.parametrize("name", ["led", "laser", "halogen"])
+def test_virtual_bench_sources_outside_the_library_are_unknown(bench_spectra, name):
+    spectra, _ = bench_spectra
+    result = identify(spectra[name])
+    assert result.verdict == "unknown" and result.matches == ()
