@@ -340,3 +340,36 @@ def test_folder_with_non_images_is_reported(make_viewer, tmp_path):
     viewer.open_menu.invoke(3)
     assert "holds no images" in viewer.message.cget("text")
     assert viewer.worker.running
+
+
+def test_calibration_files_loaded_or_refused(make_viewer, tmp_path):
+    from benchspec.pipeline import calibrate_frames, write_calibration
+
+    frames = [read_image(DEMO / f"cfl_{k}.png") for k in (1, 2, 3)]
+    good = write_calibration(calibrate_frames(frames, lamp="cfl"), tmp_path / "bench3.json")
+    broken = tmp_path / "broken.json"
+    broken.write_text('{"schema": "benchspec.calibration/1", "geometry": ')
+    # a camera at another resolution: the demo frames at half size
+    small = [np.ascontiguousarray(f[::2, ::2]) for f in frames]
+    viewer = make_viewer(ArraySource(small, loop=True, frame_rate_hz=20, pace=True, name="camera 1"))
+    _first_frame(viewer)
+    viewer.dialogs.next_open = str(good)
+    viewer.buttons["load_calibration"].invoke()
+    _wait_log(viewer, "calibrate: bench3.json was made for 1280x720 px frames")
+    assert "this source delivers 640x360 px" in viewer.message.cget("text")
+    viewer.dialogs.next_open = str(broken)
+    viewer.buttons["load_calibration"].invoke()
+    _wait_log(viewer, "broken.json")
+    assert viewer.calibration is None
+    shown = viewer.stats.frames_shown
+    _wait(viewer.root, lambda: viewer.stats.frames_shown > shown + 3, what="frames after the refusals")
+    assert not viewer.last_result.axis_is_wavelength  # still the pixel axis: nothing half-applied
+
+    # the same file on a source of the right size is used at once
+    viewer.open_source(DemoSource("cfl"))
+    _wait(viewer.root, lambda: viewer.worker.last_frame is not None, what="a frame of the new source")
+    viewer.dialogs.next_open = str(good)
+    viewer.buttons["load_calibration"].invoke()
+    _wait_log(viewer, "calibrated with cfl")
+    _wait(viewer.root, lambda: viewer.last_result is not None and viewer.last_result.axis_is_wavelength,
+          what="wavelength axis from the file")
