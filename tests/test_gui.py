@@ -163,10 +163,22 @@ def test_demo_calibrate_identify_save(make_viewer, tmp_path, xdisplay):
     assert f"Verdict: {expected.verdict}" in viewer.species_summary.cget("text")
 
     # save everything through the Save menu (dialogs replaced)
-    for index, name in enumerate(["spectrum.csv", "calibration.json", "frame.png", "plot.png"]):
+    for index, name in enumerate(["spectrum.csv", "calibration.json", "frame.png", "plot.png"], start=1):
         viewer.dialogs.next_save = name
         viewer.save_menu.invoke(index)
         _wait_log(viewer, f"saved to {tmp_path / name}")
+    # and one capture in the session log: frames, spectrum and calibration together
+    from benchspec.pipeline import read_calibration
+    from benchspec.session import Session
+
+    viewer.dialogs.next_open = str(tmp_path / "session")
+    viewer.save_menu.invoke(0)
+    _wait_log(viewer, "saved in session")
+    session = Session.open(tmp_path / "session")
+    (record,) = session.captures
+    assert {"spectrum.json", "calibration.json"} <= set(record.files) and record.source_type == "fluorescent"
+    assert len(record.files_with_role("frame")) == 3
+    assert read_calibration(tmp_path / "calibration.json").wavelength.rms_px == pytest.approx(core.rms_px)
     text = (tmp_path / "spectrum.csv").read_text()
     assert "wavelength_nm" in text and "intensity" in text
     assert cv2.imread(str(tmp_path / "frame.png")).shape == frames[-1].shape

@@ -12,6 +12,7 @@ _KEYS_HELP = """keyboard shortcuts in the viewer:
   space   hold the spectrum / go live     s  stack N frames     d  take a dark
   b       measure the band again          c  calibrate with the chosen lamp
   i       identify                        +/-  exposure
+  Ctrl+Enter  capture frames, spectrum and calibration to the session log
   Ctrl+S  save spectrum   Ctrl+K  save calibration   Ctrl+F  save frame
   Ctrl+P  save plot       Ctrl+L  load calibration   Ctrl+O  open video
   F1      light source and its cautions              Ctrl+Q  quit
@@ -38,6 +39,8 @@ def register(subparsers) -> None:
     parser.add_argument("--height", type=int, default=720, help="camera height to request (px)")
     parser.add_argument("--fps", type=float, default=30.0, help="camera frame rate to request")
     parser.add_argument("--no-loop", action="store_true", help="stop at the end of a video or folder")
+    parser.add_argument("--session", metavar="DIR", default=None,
+                        help="session folder (capture log) that Ctrl+Enter saves captures to")
     parser.add_argument("--log", metavar="FILE", default=None, help="also write the viewer's log to FILE")
     parser.add_argument("--geometry", default="1024x768", help="window size, e.g. 1024x768 (projectors)")
     parser.set_defaults(handler=_run)
@@ -103,7 +106,7 @@ def _run(args) -> int:
     from ..gui.app import Viewer
 
     root.geometry(args.geometry)
-    viewer = Viewer(root, source=source, light=args.light, messages=messages)
+    viewer = Viewer(root, source=source, light=args.light, messages=messages, session_folder=args.session)
     if args.lamp:
         viewer.lamp.set(args.lamp)
     root.mainloop()

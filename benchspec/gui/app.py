@@ -62,6 +62,7 @@ SHORTCUTS: dict[str, tuple[str, str]] = {
     "i": ("identify", "identify the species"),
     "<plus>": ("exposure_up", "longer exposure (cameras that allow it)"),
     "<minus>": ("exposure_down", "shorter exposure"),
+    "<Control-Return>": ("capture", "capture frames, spectrum and calibration to the session log"),
     "<Control-s>": ("save_spectrum", "save the spectrum (.csv, .json, .jdx)"),
     "<Control-k>": ("save_calibration", "save the calibration (.json)"),
     "<Control-f>": ("save_frame", "save the frame (.png)"),
@@ -144,6 +145,9 @@ class Viewer:
     processor : BenchProcessor, optional
     messages : sequence of str
         Messages to show at start (e.g. "no camera found: showing the demo").
+    session_folder : path, optional
+        The capture log (:mod:`benchspec.session`) that Ctrl+Enter saves to;
+        asked for on the first capture when not given.
     ask_save_path, ask_open_path : callable, optional
         File dialogs, replaceable in tests (IDLE's habit):
         ``ask_save_path(parent, title, default_name, filetypes) -> path or None`` and
@@ -153,12 +157,13 @@ class Viewer:
     def __init__(self, root: tk.Tk, *, source: FrameSource | None = None, light: str | None = None,
                  processor: BenchProcessor | None = None, messages=(),
                  ask_save_path: Callable | None = None, ask_open_path: Callable | None = None,
-                 poll_ms: int = 8):
+                 session_folder=None, poll_ms: int = 8):
         self.root = root
         self.processor = processor or BenchProcessor()
         self.ask_save_path = ask_save_path or _ask_save_path
         self.ask_open_path = ask_open_path or _ask_open_path
         self.poll_ms = int(poll_ms)
+        self.session_folder = Path(session_folder) if session_folder else None
         self.stats = ViewerStats()
         self.worker: LiveWorker | None = None
         self.pending_source: FrameSource | None = source
@@ -276,6 +281,7 @@ class Viewer:
         self.light_button.grid(row=0, column=3, padx=6)
         self.save_button = ttk.Menubutton(header, text="Save ▾", width=7)
         save_menu = tk.Menu(self.save_button, tearoff=False)
+        save_menu.add_command(label="Capture to session log   Ctrl+Enter", command=self.capture_to_session)
         save_menu.add_command(label="Spectrum…      Ctrl+S", command=self.save_spectrum)
         save_menu.add_command(label="Calibration…   Ctrl+K", command=self.save_calibration)
         save_menu.add_command(label="Frame…         Ctrl+F", command=self.save_frame)
@@ -1186,6 +1192,28 @@ class Viewer:
         path = self.ask_save_path(self.root, title, default, types)
         return Path(path) if path else None
 
+    def capture_to_session(self) -> None:
+        """Save the frames on screen, their spectrum and the calibration to the session folder."""
+        frames = self._frames_now()
+        if not frames:
+            self.report("capture: no frame yet", level="error")
+            return
+        if self.session_folder is None:
+            folder = self.ask_open_path(self.root, "Choose (or create) a session folder", [], folder=True)
+            if not folder:
+                return
+            self.session_folder = Path(folder)
+        folder = self.session_folder
+        light = self.light
+        record = self._source_record()
+        label = f"{record.get('kind', 'source')} {Path(str(record.get('name', ''))).name}".strip()
+        self._run("capture", lambda processor=self.processor: processor.capture_to_session(
+            folder, frames, source_type=light, metadata={"source": record}, label=label),
+            message=f"saving a capture of {len(frames)} frame(s) to the session log…")
+
+    def _done_capture(self, text: str) -> None:
+        self.report(text)
+
     def save_spectrum(self) -> None:
         frames = self._frames_now()
         if not frames:
@@ -1246,7 +1274,7 @@ class Viewer:
         actions = {
             "hold": self.toggle_hold, "stack": self.stack, "dark": self.take_dark, "band": self.find_band, "calibrate": self.calibrate,
             "identify": self.identify, "exposure_up": lambda: self.set_exposure(1.25),
-            "exposure_down": lambda: self.set_exposure(0.8), "save_spectrum": self.save_spectrum,
+            "exposure_down": lambda: self.set_exposure(0.8), "save_spectrum": self.save_spectrum, "capture": self.capture_to_session,
             "save_calibration": self.save_calibration, "save_frame": self.save_frame, "save_plot": self.save_plot,
             "load_calibration": self.load_calibration, "open_video": self.open_video,
             "choose_light": self.show_light_chooser, "quit": self.close,

@@ -25,6 +25,7 @@ from ..errors import (
     IdentificationError,
     InputError,
 )
+from ..safety import SOURCE_TYPES as _SOURCE_TYPES
 from ..spectrum import Spectrum
 
 __all__ = [
@@ -516,6 +517,23 @@ class BenchProcessor:
                   if l.wavelength_nm is not None]
         written = write_spectrum(spectrum, Path(path), force=True, lines=labels or None)
         return f"spectrum saved to {written}"
+
+    def capture_to_session(self, folder, images: Sequence[np.ndarray], *, source_type: str | None = None,
+                           metadata: dict | None = None, label: str | None = None) -> str:
+        """Keep the frames, their spectrum and the calibration as one capture (``session.log_capture``)."""
+        from ..session import log_capture
+
+        distinct = _distinct(images)
+        spectrum = self.spectrum_of(distinct)
+        calibration = self.calibration_file
+        dark = self.dark
+        record = log_capture(
+            Path(folder), title="bench viewer session", spectrum=spectrum, frames=distinct,
+            calibration=None if calibration is None else calibration.to_dict(),
+            metadata=dict(metadata or {}, dark_frames=0 if dark is None else dark.n_frames,
+                          calibrated=calibration is not None),
+            label=label, source_type=source_type if source_type in _SOURCE_TYPES else None)
+        return f"capture {record.id} saved in session {folder} ({len(distinct)} frame(s))"
 
     def save_calibration(self, path) -> str:
         """Write the calibration file (``calfile.write_calibration``)."""
