@@ -395,6 +395,11 @@ def _valid_samples() -> dict[str, bytes]:
 
 def readers() -> list[Reader]:
     """Every file reader of the package, with a valid sample each (see the module notes)."""
+    return list(_readers())
+
+
+@functools.lru_cache(maxsize=1)
+def _readers() -> tuple[Reader, ...]:
     from . import frames, io, simulate
 
     s = _valid_samples()
@@ -418,7 +423,7 @@ def readers() -> list[Reader]:
     ]
     for reader in _optional_readers():
         found.append(reader)
-    return found
+    return tuple(found)
 
 
 def _optional_readers() -> list[Reader]:
