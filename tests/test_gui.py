@@ -385,3 +385,37 @@ def test_calibration_files_loaded_or_refused(make_viewer, tmp_path):
     _wait_log(viewer, "calibrated with cfl")
     _wait(viewer.root, lambda: viewer.last_result is not None and viewer.last_result.axis_is_wavelength,
           what="wavelength axis from the file")
+
+
+def test_clipping_lines_raise_the_warning(make_viewer, tmp_path, xdisplay):
+    frame = read_image(DEMO / "cfl_1.png").astype(np.float32)
+    bright = np.clip(frame * 4.0, 0, 255).astype(np.uint8)  # four times the exposure: the strong lines clip
+    viewer = make_viewer(ArraySource([bright], loop=True, frame_rate_hz=20, pace=True, name="camera 0"))
+    _wait(viewer.root, lambda: viewer.clip_warning.cget("text").startswith("CLIPPING"), timeout=20,
+          what="clipping warning")
+    assert str(viewer.clip_warning.cget("style")) == "Warn.TLabel"
+    assert any(line.saturated for line in viewer.last_result.lines)
+    _pump(viewer.root, 0.5)
+    _screenshot(viewer, tmp_path / "clipping.png", xdisplay)
+
+
+def test_light_chooser_screenshot(make_viewer, tmp_path, xdisplay):
+    viewer = make_viewer(DemoSource("cfl"), confirm=None)
+    viewer.light_radios["discharge"].invoke()
+    _pump(viewer.root, 0.2)
+    shot = _screenshot(viewer, tmp_path / "light-chooser.png", xdisplay)
+    shutil.copy(shot, "/tmp/benchspec-viewer-cautions.png")
+    assert "several kilovolts" in viewer.cautions_shown()
+
+
+def test_view_help_prints_the_cautions(capsys):
+    from benchspec.cli import main
+    from benchspec.safety import format_cautions
+
+    with pytest.raises(SystemExit) as exit_info:
+        main(["view", "--help"])
+    assert exit_info.value.code == 0
+    out = capsys.readouterr().out
+    for block in format_cautions().splitlines():
+        assert " ".join(block.split()) in " ".join(out.split())
+    assert "Ctrl+Enter" in out

@@ -458,6 +458,10 @@ class Viewer:
         self.fit_canvas = ThreadedCanvas(self.fit_figure, page, self._plot_executor)
         self.fit_canvas.get_tk_widget().configure(height=170, highlightthickness=0)
         self.fit_canvas.get_tk_widget().grid(row=1, column=0, sticky="ew", pady=2)
+        self.fit_axes.set_xticks([])
+        self.fit_axes.set_yticks([])
+        self.fit_axes.text(0.5, 0.5, "residuals appear here\nafter a calibration", ha="center", va="center",
+                           transform=self.fit_axes.transAxes, color=PALETTE["muted"], fontsize=8)
         columns = ("pixel", "nm", "species", "residual")
         self.fit_table = ttk.Treeview(page, columns=columns, show="headings", height=8)
         for name, title, width in zip(columns, ("pixel", "line nm", "species", "resid. nm"), (58, 66, 100, 66)):
@@ -782,9 +786,9 @@ class Viewer:
         self._spec_line.set_data(x, y)
         if needs_redraw or force:
             self._marks_spec = None
-        needs_redraw = self._update_marks(result, top * 1.32 if needs_redraw else state[2]) or needs_redraw
+        needs_redraw = self._update_marks(result, top * 1.45 if needs_redraw else state[2]) or needs_redraw
         if needs_redraw:
-            ylim_top = top * 1.32
+            ylim_top = top * 1.45
             ax.set_xlim(*xlim)
             ax.set_ylim(low * 1.1 if low < 0 else 0.0, ylim_top)
             ax.set_xlabel("wavelength in air (nm)" if result.axis_is_wavelength else "pixel along the band",
@@ -855,9 +859,9 @@ class Viewer:
         """
         clipped = [l for l in result.lines if l.saturated]
         if result.saturated_columns:
-            what = f"{len(clipped)} line(s) clip" if clipped else f"{result.saturated_columns} column(s) clip"
-            text = (f"CLIPPING: {what} at full scale. Shorten the exposure, close the slit a little or move "
-                    "the lamp back; clipped lines give wrong centres and strengths.")
+            what = f"{len(clipped)} line(s)" if clipped else f"{result.saturated_columns} column(s)"
+            text = (f"CLIPPING: {what} at full scale: shorten the exposure or move the lamp back "
+                    "(clipped lines give wrong centres and strengths)")
             style = "Warn.TLabel"
         else:
             text = f"Signal level: brightest pixel in the aperture at {100 * result.peak_fraction:.0f}% of full scale"
