@@ -206,7 +206,7 @@ class BenchProcessor:
         self.last_spectrum: Spectrum | None = None
         self._columns_kept: tuple[int, int] | None = None
         self._live_lines_cache: tuple[int, tuple[LiveLine, ...]] = (-999, ())
-        self.lines_every_n_frames = 6
+        self.lines_every_n_frames = 12
 
     # ------------------------------------------------------------------ frames
     def _dark_for(self, shape) -> Any:
@@ -309,16 +309,19 @@ class BenchProcessor:
             peak = float(np.max(image[y0:y1, x0:x1])) / _full_scale(image)
             pixel = np.arange(intensity.size, dtype=np.float64)
             intensity = np.asarray(intensity, dtype=np.float64)
+            variance = np.asarray(_variance, dtype=np.float64)
             axis, is_wl = pixel, False
             if self.calibration is not None and self._columns_kept is not None:
                 start, stop = self._columns_kept
                 pixel, intensity, saturated = pixel[start:stop], intensity[start:stop], saturated[start:stop]
+                variance = variance[start:stop]
                 axis, is_wl = self.calibration.core.wavelength_nm(pixel), True
                 # show what a camera can see; far beyond its lines the polynomial is extrapolated
                 seen = (axis >= _VIEW_RANGE_NM[0]) & (axis <= _VIEW_RANGE_NM[1])
                 if seen.sum() > 16:
                     axis, pixel, intensity, saturated = axis[seen], pixel[seen], intensity[seen], saturated[seen]
-            lines = self._live_lines(frame_index, axis, is_wl, intensity, saturated)
+                    variance = variance[seen]
+            lines = self._live_lines(frame_index, axis, is_wl, intensity, saturated, variance)
             overlay = self.overlay
             note = ""
             if self.dark is not None and self._dark_for(image.shape) is None:
@@ -328,17 +331,16 @@ class BenchProcessor:
                           held=stacked is not None, frames_in_stack=stacked.n_frames if stacked is not None else 1,
                           note=note)
 
-    def _live_lines(self, frame_index, axis, is_wl, intensity, saturated) -> tuple[LiveLine, ...]:
-        """Line marks, refreshed every few frames.
+    def _live_lines(self, frame_index, axis, is_wl, intensity, saturated, variance=None) -> tuple[LiveLine, ...]:
+        """Line marks from the core's line finder (``lines.find_lines``), refreshed every few frames.
 
-        Marks on the live view come from a quick peak search (display only:
-        the core's line fitter takes ~80 ms, too long per frame); everything
-        measured (calibration, identification, saved spectra) uses the core.
+        Fitting takes 10-40 ms, so the live view refits every
+        :attr:`lines_every_n_frames` frames and reuses the marks in between.
         """
         last, cached = self._live_lines_cache
         if frame_index >= 0 and 0 <= frame_index - last < self.lines_every_n_frames and cached:
             return cached
-        marks = _quick_peaks(axis, intensity, saturated)
+        marks = _core_marks(axis, is_wl, intensity, saturated, variance)
         labelled = tuple(self._label(m) if is_wl else m for m in marks)
         self._live_lines_cache = (frame_index, labelled)
         return labelled
@@ -652,20 +654,32 @@ def _overlay_of(geometry) -> BandOverlay:
                        description=f"band at {geometry.rotation_deg:+.2f} deg, {curvature}")
 
 
-def _quick_peaks(axis, intensity, saturated, *, max_marks: int = 14) -> tuple[LiveLine, ...]:
-    """Marks for the brightest local maxima (display only; the core's line finder measures lines)."""
-    from scipy import signal as sps
+def _core_marks(axis, is_wl, intensity, saturated, variance, *, max_marks: int = 14) -> tuple[LiveLine, ...]:
+    """The strongest emission lines of a live spectrum, fitted by ``benchspec.lines.find_lines``."""
+    import warnings
 
-    if intensity.size < 8:
+    from ..errors import LineError
+    from ..lines import find_lines
+
+    if intensity.size < 16 or not np.any(intensity > 0):
         return ()
-    top = float(np.max(intensity))
-    if top <= 0:
+    order = np.argsort(axis) if is_wl else np.arange(axis.size)
+    uncertainty = np.sqrt(np.maximum(variance[order], 1e-12)) if variance is not None else None
+    if uncertainty is None or not np.all(np.isfinite(uncertainty)):
+        uncertainty = np.full(axis.size, max(1e-6, float(np.std(np.diff(intensity))) / np.sqrt(2)))
+    kwargs = {"wavelength_nm": axis[order]} if is_wl else {}
+    try:
+        spectrum = Spectrum(intensity=intensity[order], uncertainty=uncertainty, pixel=np.arange(axis.size, dtype=float),
+                            saturated=saturated[order], **kwargs)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            table = find_lines(spectrum, min_snr=10.0, max_lines=max_marks)
+    except (LineError, BenchspecError):
         return ()
-    noise = 1.4826 * float(np.median(np.abs(np.diff(intensity)))) + 1e-9
-    peaks, props = sps.find_peaks(intensity, prominence=max(8 * noise, 0.04 * top), distance=4)
-    order = np.argsort(props["prominences"])[::-1][:max_marks]
     marks = []
-    for k in sorted(peaks[order]):
-        lo, hi = max(0, k - 2), min(intensity.size, k + 3)
-        marks.append(LiveLine(float(axis[k]), float(intensity[k]), None, "", bool(saturated[lo:hi].any())))
+    for line in table:
+        position = line.centre_nm if is_wl and line.centre_nm is not None else float(
+            np.interp(line.centre_px, np.arange(axis.size), axis[order]))
+        marks.append(LiveLine(float(position), float(line.peak + line.continuum), None, "", bool(line.saturated)))
+    marks.sort(key=lambda m: m.position)
     return tuple(marks)
