@@ -242,6 +242,17 @@ def test_keyboard_shortcuts_drive_the_viewer(make_viewer):
     root.event_generate("<Key-c>")
     _wait_log(viewer, "calibrated with cfl")
 
+    # the classroom flow: calibrate on the desk lamp, then point the same setup at a mystery tube
+    scenes = viewer.open_menu.nametowidget(viewer.open_menu.entrycget("Demo scene", "menu"))
+    scenes.invoke(scenes.index("tube_A"))
+    _wait(root, lambda: viewer.worker.last_frame is not None and viewer.worker.last_frame.origin == "tube_A.jpg",
+          what="tube A frames")
+    _first_frame(viewer)
+    root.event_generate("<Key-i>")
+    _wait_log(viewer, "identified:")
+    top = viewer.species_table.item(viewer.species_table.get_children()[0], "values")[1]
+    assert top == "He"  # demo_images/README.md: tube A is helium (the virtual bench's truth)
+
 
 def test_stack_and_dark(make_viewer):
     viewer = make_viewer(DemoSource("cfl_1", pace=False))
@@ -349,7 +360,7 @@ def test_folder_with_non_images_is_reported(make_viewer, tmp_path):
     empty = tmp_path / "empty"
     empty.mkdir()
     viewer.dialogs.next_open = str(empty)
-    viewer.open_menu.invoke(3)
+    viewer.open_menu.invoke(viewer.open_menu.index("Image folder…"))
     assert "holds no images" in viewer.message.cget("text")
     assert viewer.worker.running
 

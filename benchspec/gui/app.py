@@ -118,6 +118,20 @@ def _ask_open_path(parent, title: str, types: list[tuple[str, str]], *, folder: 
     return filedialog.askopenfilename(parent=parent, title=title, filetypes=types) or None
 
 
+def _demo_scenes() -> list[str]:
+    """Scene names of the demo frames (empty when they are not installed)."""
+    from ..sources import IMAGE_SUFFIXES, _scene_name, demo_folder
+
+    folder = demo_folder()
+    if not folder.is_dir():
+        return []
+    names: list[str] = []
+    for path in sorted(folder.iterdir()):
+        if path.suffix.lower() in IMAGE_SUFFIXES and _scene_name(path) not in names:
+            names.append(_scene_name(path))
+    return names
+
+
 def _freeze_heap() -> None:
     """Move the objects alive now out of the garbage collector's sight.
 
@@ -268,7 +282,11 @@ class Viewer:
                   background=p["panel"]).grid(row=0, column=0, padx=(0, 12))
         self.open_button = ttk.Menubutton(header, text="Source ▾")
         menu = tk.Menu(self.open_button, tearoff=False)
-        menu.add_command(label="Demo bench", command=lambda: self.open_spec("demo"))
+        menu.add_command(label="Demo bench (desk CFL)", command=lambda: self.open_spec("demo"))
+        scenes = tk.Menu(menu, tearoff=False)
+        for scene in _demo_scenes():
+            scenes.add_command(label=scene, command=lambda name=scene: self.open_spec(f"demo:{name}"))
+        menu.add_cascade(label="Demo scene", menu=scenes)
         menu.add_command(label="Camera 0", command=lambda: self.open_spec("0"))
         menu.add_command(label="Video file…   Ctrl+O", command=self.open_video)
         menu.add_command(label="Image folder…", command=self.open_folder)
@@ -601,6 +619,11 @@ class Viewer:
             return processor.live(frame.image, display_size=size[0], frame_index=frame.index,
                                   timestamp_s=frame.timestamp_s)
 
+        self.processor.source_changed()
+        if self.identification is not None:
+            self.identification = None
+            self.species_summary.configure(text="No identification for this source yet: press Identify (i).")
+            self.species_table.delete(*self.species_table.get_children())
         self.worker = LiveWorker(source, process).start()
         self._notes_seen = set(info.notes)
         if self.held is not None:

@@ -207,6 +207,9 @@ class BenchProcessor:
         self._columns_kept: tuple[int, int] | None = None
         self._live_lines_cache: tuple[int, tuple[LiveLine, ...]] = (-999, ())
         self.lines_every_n_frames = 12
+        # Lines are named after the calibration lamp's lines only while that lamp is in view
+        # (until another source is opened); afterwards only an identification names them.
+        self.label_with_lamp = False
 
     # ------------------------------------------------------------------ frames
     def _dark_for(self, shape) -> Any:
@@ -352,7 +355,7 @@ class BenchProcessor:
             for match in self.identification.ranked:
                 for line in match.get("lines", ()):
                     known.append((float(line["observed_nm"]), float(line["reference_nm"]), match["symbol"]))
-        if self.calibration is not None:
+        if self.calibration is not None and self.label_with_lamp:
             known += [(row["wavelength_nm"], row["wavelength_nm"], row["species"]) for row in self.calibration.rows]
         species, reference = "", None
         if known:
@@ -444,6 +447,7 @@ class BenchProcessor:
             self.calibration = summary
             self.calibration_file = calibration
             self._columns_kept = (int(kept[0]), int(kept[1]))
+            self.label_with_lamp = frames_used > 0  # a loaded file: the lamp is not necessarily in view
             self.identification = None
             self._live_lines_cache = (-999, ())
         return summary
@@ -467,6 +471,13 @@ class BenchProcessor:
             self.identification = summary
             self._live_lines_cache = (-999, ())
         return summary
+
+    def source_changed(self) -> None:
+        """Another source was opened: the lamp and species names no longer apply to what is seen."""
+        with self._lock:
+            self.label_with_lamp = False
+            self.identification = None
+            self._live_lines_cache = (-999, ())
 
     def forget_calibration(self) -> None:
         with self._lock:
