@@ -226,6 +226,11 @@ def _validate_wavelength(data, origin: str, n_columns: int) -> WavelengthCalibra
             _fail(origin, f"`matches[{k}]` has unknown field(s) {', '.join(sorted(unknown))}")
         if not 200.0 <= float(match["reference_nm"]) <= 1200.0:
             _fail(origin, f"`matches[{k}].reference_nm` is {match['reference_nm']}, not a wavelength in nm (200-1200)")
+    for key in ("lamps", "line_list_sources"):
+        if not isinstance(data[key], list) or not all(isinstance(v, str) for v in data[key]):
+            _fail(origin, f"`wavelength_calibration.{key}` must be a list of strings")
+    if not isinstance(data["verdict_reason"], str):
+        _fail(origin, "`wavelength_calibration.verdict_reason` must be a string")
     if data["verdict"] not in ("good", "fair", "poor"):
         _fail(origin, f"`verdict` must be good, fair or poor, got {data['verdict']!r}")
     for key in ("rms_px", "rms_nm", "max_uncertainty_nm", "coverage_fraction"):
@@ -235,6 +240,56 @@ def _validate_wavelength(data, origin: str, n_columns: int) -> WavelengthCalibra
         return WavelengthCalibration.from_dict(data)
     except (KeyError, TypeError, ValueError) as exc:
         _fail(origin, f"the wavelength calibration is malformed ({exc})")
+
+
+# Types of the geometry's fields in the file, so a damaged file fails here rather than deep inside rectify.
+_GEOMETRY_INTS = ("frame_width_px", "frame_height_px", "n_columns", "n_rows", "centre_row", "n_lines_traced")
+_GEOMETRY_NUMBERS = ("rotation_deg", "rotation_uncertainty_deg", "centre_x_px", "centre_y_px", "first_column_s_px",
+                     "band_height_px")
+_GEOMETRY_NUMBER_LISTS = ("tilt_coefficients", "curvature_coefficients", "spatial_profile")
+_MAX_SIDE_PX = 20000  # far above any camera frame (common practice, no source)
+
+
+def _validate_geometry_fields(geometry: Any, origin: str) -> None:
+    if not isinstance(geometry, Mapping):
+        _fail(origin, "`geometry` must be an object")
+    for key in _GEOMETRY_INTS:
+        if key in geometry:
+            value = geometry[key]
+            if isinstance(value, bool) or not isinstance(value, int) or not 0 <= value <= _MAX_SIDE_PX:
+                _fail(origin, f"`geometry.{key}` must be a whole number from 0 to {_MAX_SIDE_PX}, was {value!r}")
+    for key in _GEOMETRY_NUMBERS:
+        if key in geometry:
+            _number(geometry[key], f"geometry.{key}", origin)
+    for key in ("rotation_uncertainty_deg", "band_height_px"):
+        if key in geometry and not geometry[key] >= 0:
+            _fail(origin, f"`geometry.{key}` must not be negative, was {geometry[key]!r}")
+    if geometry.get("curvature_rms_px") is not None:
+        if _number(geometry["curvature_rms_px"], "geometry.curvature_rms_px", origin) < 0:
+            _fail(origin, "`geometry.curvature_rms_px` must not be negative")
+    if "curvature_known" in geometry and not isinstance(geometry["curvature_known"], bool):
+        _fail(origin, f"`geometry.curvature_known` must be true or false, was {geometry['curvature_known']!r}")
+    for key in _GEOMETRY_NUMBER_LISTS:
+        if key in geometry:
+            _numbers(geometry[key], f"geometry.{key}", origin)
+    for key in ("aperture_rows",):
+        if key in geometry:
+            rows = geometry[key]
+            if not isinstance(rows, list) or len(rows) != 2 or not all(type(v) is int for v in rows):
+                _fail(origin, f"`geometry.{key}` must be two whole numbers [start, stop], was {rows!r}")
+    if "background_rows" in geometry:
+        pairs = geometry["background_rows"]
+        if not isinstance(pairs, list) or not all(
+            isinstance(pair, list) and len(pair) == 2 and all(type(v) is int for v in pair) for pair in pairs
+        ):
+            _fail(origin, f"`geometry.background_rows` must be a list of [start, stop] pairs, was {pairs!r}")
+    if "notes" in geometry and (not isinstance(geometry["notes"], list) or not all(isinstance(v, str) for v in geometry["notes"])):
+        _fail(origin, "`geometry.notes` must be a list of strings")
+    n_rows, n_columns, centre = geometry.get("n_rows"), geometry.get("n_columns"), geometry.get("centre_row")
+    if isinstance(n_rows, int) and isinstance(centre, int) and not 0 <= centre < n_rows:
+        _fail(origin, f"`geometry.centre_row` {centre} lies outside the {n_rows} rectified rows")
+    if isinstance(n_rows, int) and isinstance(n_columns, int) and n_rows * n_columns > 50_000_000:
+        _fail(origin, f"`geometry` asks for a {n_columns}x{n_rows} rectified band, above the 50 MP frame limit")
 
 
 def calibration_from_dict(data: Any, *, origin: str = "calibration") -> Calibration:
@@ -271,6 +326,7 @@ def calibration_from_dict(data: Any, *, origin: str = "calibration") -> Calibrat
     software = data["software"]
     if not isinstance(software, Mapping) or not isinstance(software.get("version"), str):
         _fail(origin, "`software` must be an object with a `version` string")
+    _validate_geometry_fields(data["geometry"], origin)
     try:
         geometry = Geometry.from_dict(data["geometry"])
     except FileFormatError as exc:
