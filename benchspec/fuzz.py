@@ -440,8 +440,44 @@ def _optional_readers() -> list[Reader]:
     return out
 
 
+@functools.lru_cache(maxsize=1)
+def _calibration_sample() -> bytes:
+    """A real calibration file: an Hg spectrum (packaged NIST line list) calibrated by wavecal, on a 300-column band."""
+    from . import calfile, lines, wavecal
+    from .geometry import Geometry
+    from .refdata import load_lamp
+    from .spectrum import Spectrum
+
+    n = 300
+    pixel = np.arange(n, dtype=np.float64)
+    wavelength = 380.0 + 1.1 * pixel  # linear dispersion, 1.1 nm/px (invented bench)
+    signal = np.full(n, 20.0)
+    for line in load_lamp("hg").lines():
+        if 382.0 < line.wavelength_nm < 705.0:
+            signal += 3000.0 * line.relative_intensity * np.exp(-0.5 * ((wavelength - line.wavelength_nm) / 1.3) ** 2)
+    noisy = signal + np.random.default_rng(7).normal(0.0, 1.0, n) * np.sqrt(4.0 + signal)
+    spectrum = Spectrum(intensity=noisy, uncertainty=np.sqrt(4.0 + signal), pixel=pixel)
+    solution = wavecal.calibrate_lines(lines.find_lines(spectrum), lamp="hg")
+    aperture = (16, 81)
+    geometry = Geometry(
+        frame_width_px=480, frame_height_px=320, rotation_deg=2.5, rotation_uncertainty_deg=0.01,
+        centre_x_px=240.0, centre_y_px=160.0, first_column_s_px=-150.0, n_columns=n, n_rows=97, centre_row=48,
+        aperture_rows=aperture, background_rows=((4, 12), (85, 93)), band_height_px=18.8,
+        tilt_coefficients=(0.0,), curvature_coefficients=(0.002,), curvature_known=True, curvature_rms_px=0.05,
+        n_lines_traced=5, spatial_profile=tuple(np.full(65, 1 / 65)), notes=(_NOTE,),
+    )
+    calibration = calfile.Calibration(
+        geometry=geometry, wavelength=solution, frames=({"path": f"{_NOTE}.png", "sha256": "0" * 64, "lamp": "hg"},),
+        settings={"gamma": "2.2", "marker": float(_MARKER)}, reference_spectrum=tuple(float(v) for v in noisy),
+        created_utc="2026-12-01T19:00:00Z",
+    )
+    return json.dumps(calibration.to_dict(), ensure_ascii=False, indent=1).encode("utf-8")
+
+
 def _calibration_reader() -> Reader | None:
-    return None
+    from . import calfile
+
+    return Reader("calibration-json", ".json", calfile.read_calibration, _calibration_sample(), True, "calibration")
 
 
 def _response_sample() -> bytes:
@@ -942,6 +978,8 @@ def bad_inputs(reader_names: Sequence[str] | None = None) -> list[BadInput]:
             cases += _EXTRA_CASES[reader.family](reader, samples)
         if reader.suffix == ".json":
             cases += _json_schema_cases(reader)
+        if reader.name in ("calibration-json", "session-capture"):
+            cases += _json_nested_cases(reader)
         seen = set()
         for case in cases:
             if case.case not in seen:
@@ -963,6 +1001,7 @@ def _json_schema_cases(reader: Reader) -> list[BadInput]:
     optional = {"provenance", "notes", "name", "title", "label", "temperature_k", "smoothing_nm", "min_signal_fraction",
                 "software", "wavelength_uncertainty_nm", "saturated", "active", "source_type", "valid_range_nm"}
     # keys with documented defaults: nm; uncalibrated; unknown time; default view
+    optional -= {"calibration-json": {"provenance", "notes", "name", "title", "label", "software"}}.get(r, set())
     optional |= {"spectrum-json": {"units", "wavelength_nm"}, "session-manifest": {"created_utc"},
                  "session-screen": {"saved_utc", "view"}}.get(r, set())
     for key, value in obj.items():
@@ -1016,6 +1055,53 @@ def _npy_cases(reader: Reader, samples: dict[str, bytes]) -> list[BadInput]:
         BadInput(r, "complex-frame", _npy_bytes(np.zeros((8, 8), np.complex64))),
         BadInput(r, "nan-frame", _npy_bytes(np.full((8, 8), np.nan, np.float32)), must_refuse=False),
     ]
+
+
+def _json_nested_cases(reader: Reader) -> list[BadInput]:
+    """Fields one level down (calibration geometry, solution, matches; capture files) given wrong values."""
+    obj = json.loads(reader.valid)
+    r = reader.name
+    out: list[BadInput] = []
+    dump = lambda o: json.dumps(o, ensure_ascii=False).encode("utf-8")  # noqa: E731
+    wrong_values = (("null", None), ("string", "x"), ("negative", -1), ("huge", 1e300), ("list", [1]), ("object", {}))
+    for top, inner in obj.items():
+        if not isinstance(inner, dict):
+            continue
+        targets = [(top, key) for key in inner]
+        if top == "wavelength_calibration" and isinstance(inner.get("solution"), dict):
+            targets += [(top, "solution", key) for key in inner["solution"]]
+        for path in targets:
+            for label, wrong in wrong_values:
+                new = json.loads(reader.valid)
+                parent = new
+                for key in path[:-1]:
+                    parent = parent[key]
+                original = parent[path[-1]]
+                if type(original) is type(wrong) and label not in ("negative", "huge"):
+                    continue
+                if label in ("negative", "huge") and not isinstance(original, (int, float)):
+                    continue
+                if label == "huge" and isinstance(original, float):
+                    continue  # a large float is odd but not invalid (an RMS, a scale); sizes are ints
+                parent[path[-1]] = wrong
+                # free text, notes and provenance may hold anything; numbers may be negative where they are offsets
+                lenient = bool({"notes", "version", "name", "label", "metadata", "view", "settings", "variable"} & set(path)) or (
+                    label in ("negative", "huge") and path[-1] in (
+                        "rotation_deg", "centre_x_px", "centre_y_px", "first_column_s_px", "pixel_centre",
+                        "rotation_uncertainty_deg", "curvature_rms_px", "n_detected")) or (
+                    label == "null" and path[-1] == "curvature_rms_px")  # None: curvature unknown
+                out.append(BadInput(r, "nested-" + ".".join(path) + f"-{label}", dump(new), must_refuse=not lenient))
+    if r == "calibration-json":
+        units = json.loads(reader.valid)
+        units["units"]["wavelength"] = "um"
+        out.append(BadInput(r, "unit-wavelength-um", dump(units)))
+        units["units"] = {"wavelength": "nm", "medium": "vacuum", "pixel": "rectified column"}
+        out.append(BadInput(r, "unit-medium-vacuum", dump(units)))
+        for version in ("benchspec.calibration/2", "benchspec.calibration/0", "benchspec.calibration"):
+            changed = json.loads(reader.valid)
+            changed["schema"] = version
+            out.append(BadInput(r, f"schema-{version.replace('/', '-')}", dump(changed)))
+    return out
 
 
 # Catalogue builders of the optional readers (filled in as their modules land).
