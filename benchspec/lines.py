@@ -237,6 +237,128 @@ def _gaussian_jacobian(x0):
     return jacobian
 
 
+def _group_arrays(x, y, sigma, uses, guesses_list):
+    """Pad the groups' samples and parameters to common sizes for :func:`_fit_groups`."""
+    sizes = [int(np.count_nonzero(u)) for u in uses]
+    counts = [len(g) for g in guesses_list]
+    fittable = [g for g in range(len(uses)) if sizes[g] >= 2 + 3 * counts[g] + 1]
+    if not fittable:
+        return None
+    n_samples = max(sizes[g] for g in fittable)
+    n_lines = max(counts[g] for g in fittable)
+    n_groups, n_params = len(fittable), 2 + 3 * n_lines
+    xs = np.zeros((n_groups, n_samples))
+    ys = np.zeros((n_groups, n_samples))
+    weight = np.zeros((n_groups, n_samples))  # 1 / sigma; 0 on padding
+    pivot = np.zeros(n_groups)
+    params = np.zeros((n_groups, n_params))
+    lower = np.full((n_groups, n_params), -np.inf)
+    upper = np.full((n_groups, n_params), np.inf)
+    for b, g in enumerate(fittable):
+        gx, gy, gs = x[uses[g]], y[uses[g]], sigma[uses[g]]
+        m = gx.size
+        xs[b, :m], ys[b, :m], weight[b, :m] = gx, gy, 1.0 / gs
+        xs[b, m:] = gx[-1]
+        pivot[b] = float(np.mean(gx))
+        edge = np.r_[gy[:2], gy[-2:]]
+        params[b, 1] = float(np.min(edge))
+        span = float(gx.max() - gx.min())
+        # the same start and bounds as _fit_group
+        for j, (amplitude, centre, width) in enumerate(guesses_list[g]):
+            base = 2 + 3 * j
+            params[b, base : base + 3] = (max(amplitude, 1e-12), centre, max(width, 0.5))
+            lower[b, base : base + 3] = (0.0, centre - max(2.0, width), 0.3)
+            upper[b, base : base + 3] = (np.inf, centre + max(2.0, width), max(span, 1.0))
+        for j in range(counts[g], n_lines):  # padding lines: zero amplitude, held fixed
+            base = 2 + 3 * j
+            params[b, base : base + 3] = lower[b, base : base + 3] = upper[b, base : base + 3] = (0.0, pivot[b], 1.0)
+    params = np.minimum(np.maximum(params, lower), upper)
+    return fittable, sizes, counts, xs, ys, weight, pivot, params, lower, upper
+
+
+def _fit_groups(x, y, sigma, uses, guesses_list, *, max_iterations: int = 30):
+    """Fit every group's Gaussians on a linear background at once; None where a group is not settled.
+
+    Levenberg-Marquardt (Marquardt 1963) with the analytic Jacobian,
+    vectorised over groups padded to a common size, with steps clipped to
+    the bounds of :func:`_fit_group`. A group is returned only if it
+    converged within ``max_iterations`` with every parameter strictly
+    inside its bounds, where the bounded solver would reach the same
+    minimum; the others (a line shrinking to nothing, a centre pushed to its
+    limit, slow convergence) get None and are left to :func:`_fit_group`.
+    The covariance is computed as ``scipy.optimize.curve_fit`` does
+    (pseudo-inverse of the weighted Jacobian, absolute sigma).
+    """
+    out = [None] * len(uses)
+    arrays = _group_arrays(x, y, sigma, uses, guesses_list)
+    if arrays is None:
+        return out
+    fittable, sizes, counts, xs, ys, weight, pivot, p, lower, upper = arrays
+    n_groups, n_params = p.shape
+    active = lower != upper  # padding lines are held fixed
+    offset = xs - pivot[:, None]
+
+    def model(params):
+        z = (xs[:, None, :] - params[:, 3::3, None]) / params[:, 4::3, None]  # (group, line, sample)
+        e = np.exp(-0.5 * z * z)
+        return params[:, 1:2] + params[:, 0:1] * offset + np.einsum("bkn,bk->bn", e, params[:, 2::3]), z, e
+
+    def jacobian(params, z, e):
+        jac = np.empty((n_groups, xs.shape[1], n_params))
+        jac[:, :, 0] = offset
+        jac[:, :, 1] = 1.0
+        ae = params[:, 2::3, None] * e
+        width = params[:, 4::3, None]
+        jac[:, :, 2::3] = np.swapaxes(e, 1, 2)
+        jac[:, :, 3::3] = np.swapaxes(ae * z / width, 1, 2)
+        jac[:, :, 4::3] = np.swapaxes(ae * z * z / width, 1, 2)
+        return jac * (active * 1.0)[:, None, :] * weight[:, :, None]
+
+    m, z, e = model(p)
+    jac = jacobian(p, z, e)
+    r = weight * (ys - m)
+    cost = np.einsum("bn,bn->b", r, r)
+    damping = np.full(n_groups, 1e-3)
+    done = np.zeros(n_groups, dtype=bool)
+    eye = np.eye(n_params)
+    for _ in range(max_iterations):
+        normal = np.einsum("bnp,bnq->bpq", jac, jac)
+        gradient = np.einsum("bnp,bn->bp", jac, r)
+        diagonal = np.einsum("bpp->bp", normal)
+        floor = 1e-12 * diagonal.max(axis=1, keepdims=True) + 1e-300
+        scale = damping[:, None] * np.maximum(diagonal, floor) + ~active
+        try:
+            step = np.linalg.solve(normal + scale[:, :, None] * eye, gradient[:, :, None])[:, :, 0]
+        except np.linalg.LinAlgError:
+            return out
+        trial = np.minimum(np.maximum(p + step, lower), upper)
+        m_trial, z_trial, e_trial = model(trial)
+        r_trial = weight * (ys - m_trial)
+        cost_trial = np.einsum("bn,bn->b", r_trial, r_trial)
+        better = (cost_trial < cost) & ~done
+        tiny_step = np.abs(trial - p).max(axis=1) <= 1e-8 * (np.abs(p).max(axis=1) + 1e-8)
+        # relative reduction of the cost below 1e-8: scipy's default ftol
+        done |= (better & (cost - cost_trial <= 1e-8 * cost)) | (tiny_step & ~better) | (damping >= 1e16)
+        if better.any():
+            p[better], cost[better], r[better] = trial[better], cost_trial[better], r_trial[better]
+            jac[better] = jacobian(trial, z_trial, e_trial)[better]
+        damping = np.where(better, np.maximum(damping / 3.0, 1e-12), np.minimum(damping * 8.0, 1e16))
+        if done.all():
+            break
+    for b, g in enumerate(fittable):
+        n_used, q = sizes[g], 2 + 3 * counts[g]
+        params = p[b, :q]
+        margin = 1e-6 * np.maximum(1.0, np.abs(params))
+        if not done[b] or np.any((params - lower[b, :q] <= margin) | (upper[b, :q] - params <= margin)):
+            continue
+        _, singular, vt = np.linalg.svd(jac[b, :n_used, :q], full_matrices=False)
+        keep = singular > np.finfo(float).eps * max(n_used, q) * singular[0]
+        cov = (vt[keep].T / singular[keep] ** 2) @ vt[keep]
+        if np.all(np.isfinite(cov)):
+            out[g] = (params.copy(), cov, float(cost[b] / max(1, n_used - q)))
+    return out
+
+
 def _fit_group(x, y, sigma, use, guesses):
     """Least-squares fit of several Gaussians on a linear background.
 
@@ -395,6 +517,7 @@ def find_lines(
             groups.append([k])
 
     fitted = []  # (centre_index, centre_sigma, sigma_width, amplitude, background, chi2, saturated, group size, k)
+    prepared = []
     for group in groups:
         low = int(np.floor(peaks[group[0]] - 1.6 * widths[group[0]] - 2))
         high = int(np.ceil(peaks[group[-1]] + 1.6 * widths[group[-1]] + 2))
@@ -407,7 +530,12 @@ def find_lines(
         if use.sum() < n_params + 2:
             use = window
         guesses = [(float(prominence[k]), float(peaks[k]), float(widths[k] / _FWHM_PER_SIGMA)) for k in group]
-        result = _fit_group(x, y, sigma, use, guesses)
+        prepared.append((group, window, use, clipped_group, guesses))
+    # All groups at once (vectorised); a group the batch does not settle is fitted alone with bounds.
+    batch = _fit_groups(x, y, sigma, [p[2] for p in prepared], [p[4] for p in prepared])
+    for (group, window, use, clipped_group, guesses), result in zip(prepared, batch):
+        if result is None:
+            result = _fit_group(x, y, sigma, use, guesses)
         if result is None and len(group) > 1:
             # fall back to one fit per line
             for k in group:
