@@ -26,7 +26,8 @@ The method, in the order it runs:
    best correlates with the data.
 5. **Non-negative least squares** (``scipy.optimize.nnls``) over all
    candidate species at once plus a smooth non-negative continuum (broad
-   Gaussian bumps, FWHM ``max(40 nm, 8 x LSF)``, and a signed constant), so
+   Gaussian bumps, FWHM ``max(40 nm, 8 x LSF)``, and a constant; a negative
+   floor, from an over-subtracted background, is lifted first), so
    that mixtures share the flux between them (weights 1/noise).
 6. **Relative intensities within a tolerance.** Lamp, discharge current and
    camera change line ratios. After each fit every line of a fitted species
@@ -37,8 +38,10 @@ The method, in the order it runs:
 7. **Scores.** For each species: ``fraction`` is the share of the observed
    line flux (within 1.5 FWHM of an observed line, above the fitted
    continuum) that its model explains; ``presence`` is one minus the share
-   of its predicted flux (lines predicted above 3 sigma) that is absent from
-   the data even after the factor-of-tolerance rescaling. The score is
+   of its expected flux (NIST ratios x the shared response, scaled to the
+   lines that carry most of its model) that is missing from the data beyond the intensity
+   tolerance, counting only lines that would be seen even at
+   1/tolerance of their expected strength. The score is
    ``presence**2 * (1 - exp(-fraction / 0.04))``, in [0, 1]; a species that
    explains no observed line scores 0.
 8. **Verdict.** ``unknown`` when there are no observed lines, the best score
@@ -91,12 +94,15 @@ _MAX_LSF_FWHM_NM = 10.0
 _BROADEST_LINE_NM = 12.0
 _EXPLAINED_SHARE = 0.25  # a peak is explained when the model reaches this share of its height
 _SCORE_FRACTION_SCALE = 0.04
+_PRESENCE_POWER = 1.5
 _IDENTIFIED_SCORE = 0.6
 _UNKNOWN_SCORE = 0.4
 _UNKNOWN_EXPLAINED = 0.6
 _REPORTED_SCORE = 0.2
 _PASSES = 4  # fits: the first with NIST ratios, then with the response and per-line factors
-_RESPONSE_LIMIT = 100.0  # the shared smooth response may depart from 1 by at most this factor
+_RESPONSE_LIMIT = 300.0  # the shared smooth response may depart from 1 by at most this factor
+_RESPONSE_MIN_LINES = 5  # only species showing this many lines inform the shared response
+_RESPONSE_KNOT_NM = 50.0  # knot spacing of the piecewise-linear log response (IR-cut filters fall within ~50 nm)
 _RESPONSE_PRIOR_LINES = 3.0  # the prior "response = 1" weighs as much as this many well-measured lines
 _MIN_CONTRAST = 0.1  # an emission line rises at least this fraction above the continuum under it
 
@@ -510,9 +516,13 @@ def _build_template(symbol: str, wavelength: np.ndarray, step: np.ndarray, sigma
     return _Template(symbol, centres, intensity / intensity.max(), sigma, pair_sample, pair_line)
 
 
-def _profiles(template: _Template, edges_lo: np.ndarray, edges_hi: np.ndarray, step: np.ndarray, shift: float) -> np.ndarray:
-    """Unit-area line profile (per nm) of each pair, integrated over each sample's width."""
-    centre = template.wavelength_nm[template.pair_line] + shift
+def _profiles(template: _Template, edges_lo: np.ndarray, edges_hi: np.ndarray, step: np.ndarray, shift) -> np.ndarray:
+    """Unit-area line profile (per nm) of each pair, integrated over each sample's width.
+
+    ``shift`` is one shift for all lines or an array with one per line.
+    """
+    shift = np.asarray(shift, dtype=float)
+    centre = template.wavelength_nm[template.pair_line] + (shift[template.pair_line] if shift.ndim else shift)
     sigma = template.sigma_nm[template.pair_line]
     s = template.pair_sample
     upper = special.ndtr((edges_hi[s] - centre) / sigma)
@@ -532,7 +542,7 @@ def _continuum_basis(wavelength: np.ndarray, fwhm_nm: float) -> np.ndarray:
     centres = np.linspace(wavelength[0], wavelength[-1], count)
     bumps = np.exp(-0.5 * ((wavelength[:, None] - centres[None, :]) / sigma) ** 2)
     constant = np.ones((wavelength.size, 1))
-    return np.hstack([bumps, constant, -constant])
+    return np.hstack([bumps, constant])
 
 
 # --------------------------------------------------------------------------- identification
@@ -638,9 +648,12 @@ def identify(
     if given_shift is None:
         max_shift_nm = _shift_allowance(wavelength, calibration, lines)
 
+    reach = max_shift_nm
+    if given_shift is None and calibration is not None and np.any(np.isfinite(calibration)):
+        reach = max(reach, float(np.clip(3.0 * np.nanmax(calibration), 0.05, 3.0)))
     templates = []
     for symbol in candidates:
-        template = _build_template(symbol, wavelength, step, sigma_lsf, max_shift_nm)
+        template = _build_template(symbol, wavelength, step, sigma_lsf, reach)
         if template is not None:
             templates.append(template)
     skipped = [s for s in candidates if s not in {t.symbol for t in templates}]
@@ -652,6 +665,10 @@ def identify(
     weight = 1.0 / sigma
     basis = _continuum_basis(wavelength, lsf_fwhm)
     line_signal = intensity - baseline
+    # The continuum is non-negative; an over-subtracted background (a negative floor) is
+    # lifted first, so that no species can pay for spurious lines with a negative pedestal.
+    offset = min(0.0, float(np.percentile(intensity, 2.0)))
+    intensity = intensity - offset
 
     # Per-species shift: the one (within the allowance) that best correlates with the line signal.
     shifts, profiles = [], []
@@ -674,6 +691,18 @@ def identify(
             correlation(fine)
         best_shift = max(tried, key=lambda key: tried[key][0])
         best = (tried[best_shift][0], best_shift, tried[best_shift][1])
+        if given_shift is None and calibration is not None:
+            # The calibration error usually grows towards the ends of the axis: let the lines
+            # follow a smooth offset curve, each within 3 sigma of the calibration where it lies.
+            allowance = _line_allowance(template, wavelength, calibration)
+            curve = _offset_curve(template, lines, allowance, min_snr)
+            if curve is not None:
+                profile = _profiles(template, edges_lo, edges_hi, step, curve)
+                column = _render(template, profile, template.intensity, n)
+                norm = np.sqrt(np.sum((column * weight) ** 2))
+                value = float(np.sum(line_signal * column * weight**2) / norm) if norm > 0 else -np.inf
+                if value > best[0]:
+                    best = (value, curve, profile)
         shifts.append(best[1])
         profiles.append(best[2])
 
@@ -718,6 +747,8 @@ def identify(
             ratios.append(total_factor)
             usable_masks.append(usable)
             significant = usable & (numerator > 3.0 * noise_level)
+            if np.count_nonzero(significant) < _RESPONSE_MIN_LINES:
+                continue  # too few lines to tell an instrument response from a wrong species
             log_at.append(template.wavelength_nm[significant])
             log_ratio.append(np.log(total_factor[significant]))
             # a line measured at flux SNR >= 20 counts fully; weaker lines count less
@@ -751,7 +782,7 @@ def identify(
 
     return _assess(
         wavelength, intensity, sigma, templates, profiles, line_weights, shifts, species_coef, components, continuum,
-        lines, observed, lsf_fwhm, max_shift_nm, notes, n, near, marginal, response, intensity_tolerance,
+        lines, observed, lsf_fwhm, max_shift_nm, notes, n, near, marginal, response, intensity_tolerance, offset,
     )
 
 
@@ -794,6 +825,50 @@ def _shift_allowance(wavelength, calibration, lines) -> float:
     return float(np.clip(3.0 * np.median(at_lines), 0.05, 3.0))
 
 
+def _line_allowance(template: _Template, wavelength: np.ndarray, calibration: np.ndarray) -> np.ndarray:
+    """Largest offset of each line: 3 x the calibration uncertainty at its wavelength (0.05-3 nm)."""
+    good = np.isfinite(calibration)
+    local = np.interp(template.wavelength_nm, wavelength[good], calibration[good])
+    return np.clip(3.0 * local, 0.05, 3.0)
+
+
+def _offset_curve(template: _Template, lines: Sequence[ObservedLine], allowance: np.ndarray, min_snr: float) -> np.ndarray | None:
+    """Smooth offsets (observed - NIST) of the species' lines, from its strong isolated lines matched to observed ones.
+
+    A weighted polynomial of degree up to 2 through the offsets of the
+    species' 30 strongest isolated lines that have an observed line within
+    their allowance; each line's offset is then clipped to its allowance.
+    None when fewer than three lines match.
+    """
+    observed = np.array([l.wavelength_nm for l in lines if l.snr >= 2.0 * min_snr])
+    if observed.size < 3:
+        return None
+    centres, strength, sigma = template.wavelength_nm, template.intensity, template.sigma_nm
+    at, offset, weight = [], [], []
+    for j in np.argsort(-strength)[:30]:
+        if strength[j] < 0.02:
+            break
+        neighbours = np.abs(centres - centres[j]) < 2.5 * sigma[j]
+        if np.sum(strength[neighbours] >= 0.3 * strength[j]) > 1:
+            continue  # a blend of the species' own lines: its observed centre is not this line's
+        distance = observed - centres[j]
+        k = int(np.argmin(np.abs(distance)))
+        if abs(distance[k]) <= allowance[j]:
+            at.append(centres[j])
+            offset.append(distance[k])
+            weight.append(np.sqrt(strength[j]))
+    if len(at) < 3:
+        return None
+    at, offset, weight = np.array(at), np.array(offset), np.array(weight)
+    span = at.max() - at.min()
+    degree = 0 if span < 30.0 else min(2, len(at) - 2)
+    centre = 0.5 * (at.max() + at.min())
+    scale = max(span / 2.0, 1.0)
+    coefficients = np.polyfit((at - centre) / scale, offset, degree, w=weight)
+    curve = np.polyval(coefficients, (centres - centre) / scale)
+    return np.clip(curve, -allowance, allowance)
+
+
 def _gaussian_sigma(fwhm: float, median_step: float) -> float:
     """Gaussian part of the LSF: the sample box (variance step^2/12) is modelled separately."""
     return float(np.sqrt(max((fwhm / _FWHM_PER_SIGMA) ** 2 - median_step**2 / 12.0, (0.25 * median_step) ** 2, 0.02**2)))
@@ -801,7 +876,7 @@ def _gaussian_sigma(fwhm: float, median_step: float) -> float:
 
 def _response_knots(wavelength: np.ndarray) -> np.ndarray:
     span = wavelength[-1] - wavelength[0]
-    count = int(np.clip(np.round(span / 100.0) + 1, 2, 9))
+    count = int(np.clip(np.round(span / _RESPONSE_KNOT_NM) + 1, 2, 17))
     return np.linspace(wavelength[0], wavelength[-1], count)
 
 
@@ -902,7 +977,7 @@ def _readonly(values) -> np.ndarray:
 
 
 def _assess(wavelength, intensity, sigma, templates, profiles, line_weights, shifts, species_coef, components, continuum,
-            lines, observed, fwhm, max_shift, notes, n, near, marginal, response, tolerance) -> IdentificationResult:
+            lines, observed, fwhm, max_shift, notes, n, near, marginal, response, tolerance, offset) -> IdentificationResult:
     model = components.sum(axis=1)
     excess = np.clip(intensity - continuum, 0.0, None)
     step = np.gradient(wavelength)
@@ -938,8 +1013,10 @@ def _assess(wavelength, intensity, sigma, templates, profiles, line_weights, shi
         if not line_matches:
             score = 0.0
         else:
-            score = presence**2 * (1.0 - np.exp(-float(marginal[k]) / _SCORE_FRACTION_SCALE))
-        matches.append(SpeciesMatch(template.symbol, float(score), fraction, float(presence), float(shifts[k]),
+            score = presence**_PRESENCE_POWER * (1.0 - np.exp(-float(marginal[k]) / _SCORE_FRACTION_SCALE))
+        shift_array = np.asarray(shifts[k], dtype=float)
+        shift_reported = float(shift_array[int(np.argmax(template.intensity))]) if shift_array.ndim else float(shift_array)
+        matches.append(SpeciesMatch(template.symbol, float(score), fraction, float(presence), shift_reported,
                                     line_matches, missing))
     matches.sort(key=lambda m: (-m.score, -m.fraction))
     reported = tuple(m for m in matches if m.score >= _REPORTED_SCORE)
@@ -982,7 +1059,7 @@ def _assess(wavelength, intensity, sigma, templates, profiles, line_weights, shi
         observed=tuple(observed),
         notes=tuple(notes),
         wavelength_nm=_readonly(wavelength),
-        continuum=_readonly(continuum),
+        continuum=_readonly(continuum + offset),
         components=comps,
     )
 
@@ -1008,8 +1085,8 @@ def _presence(template, profile, amplitude, intensity, continuum, others, sigma,
     """How much of what the species predicts is really there: 1 - flux share of its lines missing beyond tolerance.
 
     The species' expected line fluxes are its NIST ASD relative intensities
-    times the fitted instrument response, scaled to the lines it explains
-    best (the flux-weighted 80th percentile of observed/expected). A line is
+    times the fitted instrument response, scaled by observed/expected over the
+    lines that carry half of the species' modelled flux. A line is
     *strong* when even at 1/tolerance of that it would stand 3 sigma above the
     noise; a strong line weaker than expected/tolerance counts as (partly)
     missing.
@@ -1026,13 +1103,16 @@ def _presence(template, profile, amplitude, intensity, continuum, others, sigma,
     noise_flux = np.where(inside, noise / np.where(inside, pp, 1.0), np.inf)
     nominal = template.intensity * response(template.wavelength_nm)
     claimed = np.clip(np.minimum(observed, amplitude), 0.0, None)
-    ratio = np.where(inside & (nominal > 0), claimed / np.where(nominal > 0, nominal, 1.0), 0.0)
-    weights = np.where(inside, nominal, 0.0)
-    order = np.argsort(ratio)
-    cumulative = np.cumsum(weights[order])
-    if cumulative[-1] <= 0:
+    modelled = np.where(inside, amplitude, 0.0)
+    if modelled.sum() <= 0 or not np.any(claimed >= 3.0 * noise_flux):
         return 1.0, ()
-    scale = float(ratio[order][np.searchsorted(cumulative, 0.8 * cumulative[-1])])
+    # The species' scale: data over NIST expectation on the lines that carry half of its
+    # modelled flux (where the fit put it), so that a species fitted to one line is judged
+    # by what that line implies for all the others.
+    order = np.argsort(-modelled)
+    cumulative = np.cumsum(modelled[order])
+    core = order[: int(np.searchsorted(cumulative, 0.5 * cumulative[-1])) + 1]
+    scale = float(claimed[core].sum() / max(nominal[core].sum(), 1e-300))
     expected = scale * nominal
     strong = inside & (expected / tolerance >= 3.0 * noise_flux)
     if not np.any(strong):
