@@ -396,9 +396,13 @@ class CameraSource(FrameSource):
         self._t0 = time.monotonic()
         if capture_factory is None:
             cv2 = _cv2()
-            if isinstance(device, str) and not os.path.exists(device):
-                raise SourceError(f"no camera at {device}: the device does not exist; "
-                                  "plug the camera in, or choose another source (e.g. --source demo)")
+            node = device if isinstance(device, str) else f"/dev/video{device}"
+            if sys.platform.startswith("linux") and not os.path.exists(node):
+                # asking OpenCV would only print driver warnings
+                what = f"{device}: the device does not exist" if isinstance(device, str) else \
+                    f"{device} ({node} does not exist)"
+                raise SourceError(f"no camera at {what}; plug the camera in, or choose another source "
+                                  "(e.g. --source demo)")
             backend = cv2.CAP_V4L2 if sys.platform.startswith("linux") else cv2.CAP_ANY
             capture_factory = lambda dev: cv2.VideoCapture(dev, backend)  # noqa: E731
         try:

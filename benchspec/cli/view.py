@@ -90,8 +90,7 @@ def _run(args) -> int:
 
     settings = CameraSettings(width_px=args.width, height_px=args.height, frame_rate_hz=args.fps)
     source, messages = choose_source(args.source, loop=not args.no_loop, settings=settings)
-    for text in messages:
-        print(f"benchspec view: {text}", file=sys.stderr)
+    # the messages reach stderr through the viewer's log, once the window is open
 
     try:
         import tkinter as tk
