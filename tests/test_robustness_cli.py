@@ -1,0 +1,168 @@
+"""Bad files through the command line: one line on stderr, exit code 2, no traceback, nothing written.
+
+Each command that reads a file gets a selection of the catalogue's bad inputs
+for that kind of file (see :mod:`benchspec.fuzz`), written under a path with
+spaces and non-ASCII characters. ``--debug`` turns the one line back into the
+full traceback.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from benchspec import fuzz, io
+from benchspec.cli import build_parser, main
+from benchspec.errors import BenchspecError
+
+READERS = {reader.name: reader for reader in fuzz.readers()}
+CATALOGUE = fuzz.bad_inputs()
+
+
+def _commands() -> set[str]:
+    parser = build_parser()
+    for action in parser._subparsers._group_actions:  # the registered command groups
+        return set(action.choices)
+    return set()
+
+
+AVAILABLE = _commands()
+
+# (command name, reader whose bad inputs it gets, argv template). {bad} is the bad file,
+# {out} a fresh output folder, {frame} a valid frame, {spectrum} a valid spectrum, {cal} a valid calibration.
+COMMANDS = [
+    ("lines", "spectrum-csv", ["lines", "{bad}"]),
+    ("lines", "spectrum-jdx", ["lines", "{bad}"]),
+    ("identify", "spectrum-json", ["identify", "{bad}"]),
+    ("identify", "spectrum-txt", ["identify", "{bad}"]),
+    ("convert", "spectrum-csv", ["convert", "{bad}", "{out}/copy.json"]),
+    ("convert", "spectrum-jdx", ["convert", "{bad}", "{out}/copy.csv"]),
+    ("report", "spectrum-json", ["report", "{bad}", "--out", "{out}/report.pdf"]),
+    ("calibrate", "image-png", ["calibrate", "{bad}", "--lamp", "cfl", "--out", "{out}/cal.json"]),
+    ("calibrate", "image-jpeg", ["calibrate", "{bad}", "--lamp", "hg", "--out", "{out}/cal.json"]),
+    ("calibrate", "video-avi", ["calibrate", "{bad}", "--lamp", "cfl", "--out", "{out}/cal.json"]),
+    ("extract", "image-tiff", ["extract", "{bad}", "--calibration", "{cal}", "--out", "{out}/spectrum.csv"]),
+    ("extract", "calibration-json", ["extract", "{frame}", "--calibration", "{bad}", "--out", "{out}/spectrum.csv"]),
+    ("simulate", "bench-toml", ["simulate", "--bench", "{bad}", "--out", "{out}/frame.png"]),
+    ("simulate", "bench-json", ["simulate", "--bench", "{bad}", "--out", "{out}/frame.png"]),
+    ("metrics", "response-json", ["metrics", "{spectrum}", "--response", "{bad}", "--plot", "{out}/metrics.png"]),
+    ("session", "session-manifest", ["session", "list", "{session}"]),
+]
+
+# A spread of every kind of bad input, the same for each command (deterministic).
+_KINDS = ("empty", "whitespace-only", "truncated-50pct", "random-bytes", "wrong-type-pdf", "wrong-type-image-file",
+          "wrong-type-spectrum-file", "latin-1-text", "utf-16-text", "number-nan", "number-1e999",
+          "huge-sparse-file-300MB", "png-claims-100000x100000", "jpeg-claims-60000x60000", "tiff-claims-100000x100000",
+          "avi-frames-claim-12000x12000", "avi-header-only", "schema-version-2", "schema-version-99",
+          "schema-schema_version-99", "schema-version-99", "unit-wavelength-um", "xunits-wavenumber", "no-end-label",
+          "deeply-nested", "source-number", "width-null", "nan-value", "schema-benchspec.calibration-2",
+          "unit-medium-vacuum", "nested-geometry.centre_row-string", "schema-key-relative_response-string",
+          "schema-key-title-list")
+
+
+def _selection(reader_name: str) -> list[fuzz.BadInput]:
+    cases = [c for c in CATALOGUE if c.reader == reader_name and c.must_refuse and c.case in _KINDS]
+    return cases
+
+
+PARAMS = [
+    pytest.param(command, reader, argv, case, id=f"{command}-{case.id}")
+    for command, reader, argv in COMMANDS
+    if reader in READERS
+    for case in _selection(reader)
+]
+
+
+def _valid_files(folder: Path) -> dict:
+    folder.mkdir(parents=True, exist_ok=True)
+    frame = folder / "frame.png"
+    import cv2
+
+    ok, png = cv2.imencode(".png", fuzz._test_frame(width=480, height=320))
+    frame.write_bytes(png.tobytes())
+    spectrum = folder / "spectrum.csv"
+    if not spectrum.exists():
+        io.write_spectrum(fuzz._sample_spectrum(), spectrum)
+    files = {"frame": frame, "spectrum": spectrum}
+    if "calibration-json" in READERS:
+        cal = folder / "cal.json"
+        cal.write_bytes(READERS["calibration-json"].valid)
+        files["cal"] = cal
+    return files
+
+
+def _argv(template, *, bad: Path, out: Path, valid: dict, session: Path | None = None) -> list[str]:
+    values = {"bad": str(bad), "out": str(out), "session": str(session) if session else "", **{k: str(v) for k, v in valid.items()}}
+    return [part.format(**values) for part in template]
+
+
+def _prepare(case: fuzz.BadInput, reader: fuzz.Reader, folder: Path) -> tuple[Path, Path | None]:
+    bad = fuzz.write_input(folder, reader, case.data, sparse_size=case.sparse_size)
+    session = None
+    if reader.name == "session-manifest":
+        session = fuzz._session_copy_with(bad, "session.json")
+    return bad, session
+
+
+@pytest.mark.parametrize("command,reader_name,template,case", PARAMS)
+def test_cli_refuses_bad_file_with_one_line_and_exit_2(tmp_path, capsys, command, reader_name, template, case):
+    if command not in AVAILABLE:
+        pytest.skip(f"the `{command}` command is not registered yet")
+    reader = READERS[reader_name]
+    valid = _valid_files(tmp_path / "valid")
+    bad, session = _prepare(case, reader, tmp_path)
+    out = tmp_path / "out folder ü"
+    out.mkdir()
+    code = main(_argv(template, bad=bad, out=out, valid=valid, session=session))
+    captured = capsys.readouterr()
+    err = captured.err.strip().splitlines()
+    errors = [line for line in err if ": error: " in line]
+    assert code == 2, f"exit code {code}; stderr: {captured.err!r}"
+    assert "Traceback" not in captured.err
+    assert len(errors) == 1, captured.err
+    assert errors[0].startswith(f"benchspec {command}: error: ")
+    named = bad.name in errors[0] or bad.stem in errors[0] or (session is not None and session.name in errors[0])
+    assert named, f"the message does not name the file: {errors[0]!r}"
+    assert list(out.iterdir()) == [], "a refused command wrote something"
+    # only warnings and safety cautions may accompany the error line
+    assert all(line.startswith(("benchspec", "caution")) for line in err), captured.err
+
+
+@pytest.mark.parametrize("command,reader_name,template", [c for c in COMMANDS if c[1] in READERS][::3],
+                         ids=[f"{c[0]}-{c[1]}" for c in COMMANDS if c[1] in READERS][::3])
+def test_debug_shows_the_traceback(tmp_path, command, reader_name, template):
+    if command not in AVAILABLE:
+        pytest.skip(f"the `{command}` command is not registered yet")
+    reader = READERS[reader_name]
+    valid = _valid_files(tmp_path / "valid")
+    case = next(c for c in CATALOGUE if c.reader == reader_name and c.case == "empty")
+    bad, session = _prepare(case, reader, tmp_path)
+    out = tmp_path / "out"
+    out.mkdir()
+    with pytest.raises(BenchspecError):
+        main(["--debug", *_argv(template, bad=bad, out=out, valid=valid, session=session)])
+
+
+def test_cli_selection_is_counted():
+    """Every command with a reader gets several kinds of bad input."""
+    per_command = {}
+    for param in PARAMS:
+        per_command.setdefault((param.values[0], param.values[1]), 0)
+        per_command[(param.values[0], param.values[1])] += 1
+    assert len(PARAMS) >= 100
+    for key, count in per_command.items():
+        assert count >= 5, key
+
+
+def test_cli_reads_valid_files_at_awkward_paths(tmp_path, capsys):
+    """The good path works too: a spectrum under a folder with spaces and non-ASCII names."""
+    if "lines" not in AVAILABLE:
+        pytest.skip("the `lines` command is not registered yet")
+    reader = READERS["spectrum-csv"]
+    path = fuzz.write_input(tmp_path, reader, reader.valid)
+    assert main(["lines", str(path), "--json"]) == 0
+    printed = capsys.readouterr().out
+    assert json.loads(printed) is not None
