@@ -112,6 +112,9 @@ def _run(args) -> int:
         if Path(args.out).exists():
             raise InputError(f"{args.out} already exists; pass --force to overwrite it, or choose another name")
     module = _load(args.benchmark)
+    if not callable(getattr(module, "run", None)):
+        raise InputError(f"benchspec.benchmarks.{BENCHMARKS[args.benchmark]} has no run(quick) function yet; "
+                         "choose another benchmark")
     if args.benchmark == "speed":
         progress = None if args.json else (lambda message: print(f"  timing {message}", file=sys.stderr, flush=True))
         figures = module.run(quick=args.quick, sizes=parse_sizes(args.sizes) if args.sizes else None,
