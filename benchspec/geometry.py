@@ -567,22 +567,24 @@ def measure_geometry(
 
     with np.errstate(all="ignore"), _quiet_nan_warnings():
         for iteration in range(iterations + 1):
-            s0, n_s, t0, n_t, _ = region()
-            band = _band_image(frame, theta_deg=theta, cx=cx, cy=cy, s0=s0, n_s=n_s, t0=t0, n_t=n_t,
-                               tilt=tilt, curvature=curv)
-            trace = _measure_trace(band, s0=s0, t0=t0, half_height=half_height)
-            s_ref = trace["lit_middle_s"] if iteration == 0 else 0.0
-            previous_theta = theta
-            theta, cx, cy, half_height = _updated_axis(theta, cx, cy, trace, s_ref=s_ref)
+            # Straight edges first: repeat the pure-rotation trace while it still turns the axis
+            # by more than 0.3 deg (a tall, short band can leave the coarse search a few degrees off).
+            for attempt in range(4 if iteration == 0 else 1):
+                s0, n_s, t0, n_t, _ = region()
+                band = _band_image(frame, theta_deg=theta, cx=cx, cy=cy, s0=s0, n_s=n_s, t0=t0, n_t=n_t,
+                                   tilt=tilt, curvature=curv)
+                trace = _measure_trace(band, s0=s0, t0=t0, half_height=half_height)
+                s_ref = trace["lit_middle_s"] if iteration == 0 else 0.0
+                previous_theta = theta
+                theta, cx, cy, half_height = _updated_axis(theta, cx, cy, trace, s_ref=s_ref)
+                if abs(theta - previous_theta) < 0.3:
+                    break
             # Turning the axis by d turns the sampled slit images by -d; keep lines straight by
             # adding d (radians) to the tilt b(s) the model already holds.
             if np.any(tilt) or np.any(curv):
                 tilt = np.polynomial.polynomial.polyadd(tilt, [TILT_SIGN * math.radians(theta - previous_theta)])
-            if abs(theta) > max_rotation_deg + 1:
-                raise GeometryError(
-                    f"the band is rotated by {theta:.1f} deg, beyond the +-{max_rotation_deg:g} deg benchspec corrects; "
-                    "level the camera so the spectrum runs across the frame"
-                )
+            if abs(theta) > 45:
+                break  # runaway: reported below
             if iteration == iterations:
                 break
             # Curvature residual on the band resampled with the updated axis and current model.
@@ -603,6 +605,11 @@ def measure_geometry(
             curv = np.polynomial.polynomial.polyadd(curv, residual["curvature"])
             curvature = residual
 
+        if abs(theta) > max_rotation_deg + 1:
+            raise GeometryError(
+                f"the band is rotated by {theta:.1f} deg, beyond the +-{max_rotation_deg:g} deg benchspec corrects; "
+                "level the camera so the spectrum runs across the frame"
+            )
         # Final band image with the final model: spatial profile, aperture, edge checks.
         s0, n_s, t0, n_t, (s_lo, s_hi) = region()
         band = _band_image(frame, theta_deg=theta, cx=cx, cy=cy, s0=s0, n_s=n_s, t0=t0, n_t=n_t,
@@ -854,6 +861,17 @@ def _measure_trace(band: np.ndarray, *, s0: float, t0: float, half_height: float
         top = (i_top_c - 1) + (level - smooth[idx, i_top_c - 1]) / (smooth[idx, i_top_c] - smooth[idx, i_top_c - 1])
         bottom = i_bot_c + (smooth[idx, i_bot_c] - level) / (smooth[idx, i_bot_c] - smooth[idx, i_bot_c + 1])
     ok &= np.isfinite(top) & np.isfinite(bottom)
+    # The chunks at the two ends of the lit band see the band's (tilted) end, not its edges: drop them.
+    lit_index = np.flatnonzero(chunk_signal > 0.05 * max(chunk_signal.max(), 1e-12))
+    if lit_index.size >= 10:
+        drop = 2
+    elif lit_index.size >= 4:
+        drop = 1
+    else:
+        drop = 0
+    if drop:
+        ok[lit_index[:drop]] = False
+        ok[lit_index[-drop:]] = False
     mids = list(0.5 * (top[ok] + bottom[ok]) + t0)
     widths = list((bottom - top)[ok])
     snr = np.minimum(chunk_signal / noise, 50.0)  # capped: a few bright lines must not outvote the rest of the band
@@ -878,14 +896,18 @@ def _measure_trace(band: np.ndarray, *, s0: float, t0: float, half_height: float
     degree = 1 if len(mids) >= 3 else 0
     # Chunks far weaker than the band (stray light, frame corners) and chunks far off a
     # Theil-Sen line (robust to a few wild points of high weight) are dropped first.
-    usable = signals >= 0.02 * signals.max()
+    usable = signals >= 0.1 * np.median(signals)  # much fainter chunks: the band's fading ends, stray light
+    if usable.sum() < 2:
+        usable = np.ones(signals.size, dtype=bool)
     if degree == 1 and usable.sum() >= 3:
         from scipy.stats import theilslopes
 
         slope0, intercept0, _, _ = theilslopes(mids[usable], centres_s[usable])
         resid = mids - (intercept0 + slope0 * centres_s)
         spread = max(_robust_sigma(resid[usable]), 0.1)
-        usable &= np.abs(resid) < 5 * spread
+        close = usable & (np.abs(resid) < 5 * spread)
+        if close.sum() >= 3:
+            usable = close
     w = np.where(usable, w, 0.0)
     coef, cov, keep, _ = _robust_line_fit(centres_s, mids, w, degree=degree, floor=0.05)
     if degree == 0:
@@ -1118,15 +1140,18 @@ def _measure_curvature(band, sat_band, *, centre_index, half_height, s0, min_snr
     line_s = np.array(line_s)
     span = line_s.max() - line_s.min()
     n = line_s.size
-    length = n_s
-    deg_c = 2 if (n >= 6 and span > 0.4 * length) else 1 if (n >= 3 and span > 0.15 * length) else 0
-    deg_b = 1 if (n >= 3 and span > 0.15 * length) else 0
+    lit = np.flatnonzero(spectrum > 0.05 * max(spectrum.max(), 1e-12))
+    lit_span = float(lit[-1] - lit[0]) if lit.size > 1 else float(n_s)
+    # Degree: as high as the lines allow (quadratic needs 6 lines spread over half the lit band,
+    # so it is not extrapolated far), lowered while the top coefficient is not significant.
+    max_c = 2 if (n >= 6 and span >= 0.5 * lit_span) else 1 if n >= 3 else 0
+    max_b = 1 if n >= 3 else 0
     # fit in scaled s for conditioning, then convert to plain coefficients
     scale = max(1.0, span / 2)
     centre_s = 0.5 * (line_s.max() + line_s.min())
     z = (line_s - centre_s) / scale
-    c_coef, _, keep_c, _ = _robust_line_fit(z, np.array(line_c), np.array(line_wc), degree=deg_c, floor=1e-7)
-    b_coef, _, keep_b, _ = _robust_line_fit(z, np.array(line_b), np.array(line_wb), degree=deg_b, floor=1e-4)
+    c_coef, keep_c = _significant_fit(z, np.array(line_c), np.array(line_wc), max_degree=max_c, floor=1e-7)
+    b_coef, keep_b = _significant_fit(z, np.array(line_b), np.array(line_wb), max_degree=max_b, floor=1e-4)
     curvature = _unscale_poly(c_coef, centre_s, scale)
     tilt = _unscale_poly(b_coef, centre_s, scale)
     # straightness: residual of every traced point about the model (line centre x0 free)
@@ -1140,6 +1165,26 @@ def _measure_curvature(band, sat_band, *, centre_index, half_height, s0, min_snr
     rms = float(np.sqrt(np.mean(np.concatenate(res_all) ** 2))) if res_all else None
     return {"known": True, "tilt": tilt, "curvature": curvature, "rms": rms, "n_lines": int(np.sum(keep_c & keep_b)),
             "line_s": line_s, "line_c": np.array(line_c)}
+
+
+def _significant_fit(x, y, w, *, max_degree: int, floor: float):
+    """Robust polynomial fit of the highest degree <= max_degree whose top coefficient is significant (> 2.5 sigma).
+
+    Returns (coefficients lowest first, keep mask); degree 0 falls back to the
+    weighted median when clipping leaves nothing.
+    """
+    for degree in range(max_degree, 0, -1):
+        coef, cov, keep, _ = _robust_line_fit(x, y, w, degree=degree, floor=floor)
+        if keep.sum() > degree + 1 and np.isfinite(cov[degree, degree]) and cov[degree, degree] > 0:
+            if abs(coef[degree]) > 2.5 * math.sqrt(cov[degree, degree]):
+                return coef, keep
+    coef, cov, keep, _ = _robust_line_fit(x, y, w, degree=0, floor=floor)
+    if not keep.any():
+        order = np.argsort(y)
+        cumulative = np.cumsum(w[order])
+        coef = np.array([y[order][np.searchsorted(cumulative, 0.5 * cumulative[-1])]])
+        keep = np.ones(y.size, dtype=bool)
+    return coef, keep
 
 
 def _unscale_poly(coef, centre, scale):
