@@ -332,6 +332,8 @@ def extract_frames(
 
     if not each:
         stacked, records, dark_records = _stack(frames, dark=dark, gamma=gamma, channel=channel, method=method)
+        names = ", ".join(Path(r["path"]).name for r in records if r.get("path"))[:120] or "the frames"
+        _check_frame_size(stacked.shape, calibration, cal_path, names)
         band = _check_band(stacked.image, calibration, "frames")
         spectrum = extract_stack(stacked, calibration.geometry, method=extraction)
         provenance = build_provenance(
@@ -364,6 +366,7 @@ def extract_frames(
     for path, index, frame in sources:
         stacked = stack_frames([frame], gamma=gamma, channel=channel, dark=dark_stack)
         label = f"{path or 'array'} frame {index}"
+        _check_frame_size(stacked.shape, calibration, cal_path, label)
         band = _check_band(stacked.image, calibration, label)
         spectrum = extract_stack(stacked, calibration.geometry, method=extraction)
         provenance = build_provenance(
@@ -377,6 +380,18 @@ def extract_frames(
     if not spectra:
         raise FrameError("no frames to extract; pass image files, a folder, a glob pattern or a video")
     return spectra
+
+
+def _check_frame_size(shape, calibration: Calibration, cal_path, what: str) -> None:
+    """FrameError naming the frames, the calibration file and both sizes when they differ."""
+    height, width = int(shape[0]), int(shape[1])
+    cal_height, cal_width = calibration.frame_shape
+    if (height, width) != (cal_height, cal_width):
+        source = f"calibration {cal_path}" if cal_path is not None else "the calibration"
+        raise FrameError(
+            f"{what}: {width}x{height} px, but {source} was made on {cal_width}x{cal_height} px frames "
+            f"(another camera resolution?); set the camera back to {cal_width}x{cal_height} or recalibrate"
+        )
 
 
 def _iter_labelled(frames):
