@@ -347,3 +347,25 @@ def test_geometry_of_another_frame_size_is_refused_with_both_sizes():
     stacked = stack_frames([np.zeros((720, 1280), np.uint8) + np.uint8(40), np.full((720, 1280), 200, np.uint8)], check=False)
     with pytest.raises(FrameError, match="1280x720"):
         extract.extract_stack(stacked, geometry)
+
+
+def test_cli_extract_with_calibration_of_another_frame_size(tmp_path, capsys):
+    """The camera now runs at 640x480; the calibration was made at 480x320: refused, naming both files and sizes."""
+    import cv2
+
+    from benchspec.cli import main
+
+    if "calibration-json" not in {r.name for r in fuzz.readers()}:
+        pytest.skip("calfile not available")
+    calibration = tmp_path / "bench 3 calibration.json"
+    calibration.write_bytes(fuzz._calibration_sample())
+    frame = tmp_path / "lamp ü.png"
+    frame.write_bytes(cv2.imencode(".png", fuzz._test_frame(width=640, height=480))[1].tobytes())
+    out = tmp_path / "spectrum.csv"
+    for extra in ([], ["--each"]):
+        code = main(["extract", str(frame), "--calibration", str(calibration), "--out", str(out), *extra])
+        err = capsys.readouterr().err
+        assert code == 2 and "Traceback" not in err and err.count("\n") == 1
+        assert "640x480" in err and "480x320" in err
+        assert frame.name in err and calibration.name in err
+        assert not out.exists()
