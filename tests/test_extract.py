@@ -178,9 +178,9 @@ def test_saturated_columns_are_flagged_and_provenance_recorded():
 
 
 def test_extract_stack_on_the_virtual_bench():
-    bench = simulate.Bench().with_(camera={"rotation_deg": 6.0}, slit={"smile_px": 15.0},
-                                   output={"gamma": "1", "bit_depth": 16})
-    stack = frames.stack_frames([simulate.render(bench, seed=s).image for s in range(6)])
+    bench = simulate.Bench().with_(camera={"rotation_deg": 6.0, "width_px": 640, "height_px": 360},
+                                   slit={"smile_px": 15.0, "height_px": 100.0}, output={"gamma": "1", "bit_depth": 16})
+    stack = frames.stack_frames([simulate.render(bench, seed=s).image for s in range(3)])
     g = geometry.measure_geometry(stack.image, saturated=stack.saturated)
     box = extract.extract_stack(stack, g, method="box")
     optimal = extract.extract_stack(stack, g, method="optimal")
