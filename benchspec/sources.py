@@ -267,9 +267,19 @@ class FrameSource:
 
     @property
     def info(self) -> SourceInfo:
-        """The current description of the source (a fresh frozen object)."""
-        return SourceInfo(kind=self.kind, name=self._name, frames_delivered=self._delivered,
-                          notes=tuple(self._notes), **self._info_fields())
+        """The current description of the source (a fresh frozen object).
+
+        It may ask the device (a camera's resolution), so it waits for a read
+        in progress; use :attr:`notes` where only the notes are needed.
+        """
+        with self._lock:
+            return SourceInfo(kind=self.kind, name=self._name, frames_delivered=self._delivered,
+                              notes=tuple(self._notes), **self._info_fields())
+
+    @property
+    def notes(self) -> tuple[str, ...]:
+        """The notes so far (cheap, and safe to read from another thread: no device call)."""
+        return tuple(self._notes)
 
     @property
     def is_lost(self) -> bool:

@@ -691,7 +691,7 @@ class Viewer:
             except Exception:
                 break
             self._on_event(event)
-        notes = worker.source.info.notes if worker.source_state == "running" else ()
+        notes = worker.source.notes  # not .info: that would query the device from the Tk thread
         for note in notes:
             if note not in self._notes_seen:
                 self._notes_seen.add(note)

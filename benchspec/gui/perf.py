@@ -134,6 +134,7 @@ def measure_viewer(video=None, *, seconds: float = 10.0, calibrate: bool = True,
             beat["last"] = now
             root.after(period_ms, heartbeat)
 
+        load_before = os.getloadavg()[0]
         start_shown = viewer.stats.frames_shown
         start_read = viewer.worker.frames_read
         start_dropped = viewer.worker.frames.dropped
@@ -159,6 +160,9 @@ def measure_viewer(video=None, *, seconds: float = 10.0, calibrate: bool = True,
             if gaps else None,
             "calibrated": calibrated,
             "window": size,
+            "cpu_count": os.cpu_count(),
+            # other programs compete for the same cores: the figures are only comparable at similar load
+            "load_average_1min": round(max(load_before, os.getloadavg()[0]), 2),
         }
         if screenshot:
             from PIL import ImageGrab
@@ -198,6 +202,7 @@ def main(argv=None) -> int:
               f"{result['frames_dropped']} dropped)")
         print(f"  live processing: {result['median_processing_ms']} ms per frame (median)")
         print(f"  Tk thread longest stall: {result['worst_block_ms']} ms (99th percentile {result['p99_block_ms']} ms)")
+        print(f"  machine: {result['cpu_count']} cores, load average {result['load_average_1min']} during the run")
     return 0
 
 
