@@ -1117,7 +1117,7 @@ class Viewer:
     def _show_calibration(self, summary: CalibrationSummary) -> None:
         used = [r for r in summary.rows if r.get("used", True)]
         self.fit_summary.configure(
-            text=f"Lamp {summary.lamp}: RMS {summary.rms_nm:.3f} nm = {summary.rms_px:.2f} px, "
+            text=f"Lamp {summary.lamp}: RMS {summary.rms_nm:.3f} nm = {summary.rms_px:.3f} px, "
                  f"{len(used)} of {len(summary.rows)} lines, polynomial order {summary.order}.\n"
                  f"Verdict: {summary.verdict}. {summary.message}".strip())
         self.fit_table.delete(*self.fit_table.get_children())
