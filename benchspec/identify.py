@@ -715,9 +715,7 @@ def identify(
         scale = columns.max(axis=0)
         scale[scale <= 0] = 1.0
         design = np.hstack([columns / scale, basis])
-        # ||A x - b|| = ||R x - Q^T b|| + const with A = QR: solve the small triangular problem instead.
-        q, r = np.linalg.qr(design * weight[:, None])
-        qtb = q.T @ (intensity * weight)
+        r, qtb = _compressed(design * weight[:, None], intensity * weight)
         coef, _ = optimize.nnls(r, qtb, maxiter=50 * design.shape[1])
         species_coef = coef[: len(templates)] / scale
         components = columns * species_coef[None, :]
@@ -784,6 +782,27 @@ def identify(
         wavelength, intensity, sigma, templates, profiles, line_weights, shifts, species_coef, components, continuum,
         lines, observed, lsf_fwhm, max_shift_nm, notes, n, near, marginal, response, intensity_tolerance, offset,
     )
+
+
+def _compressed(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """A small triangular problem with the same least-squares solutions as ``a x = b``.
+
+    With ``a = Q R`` (R upper triangular, from the Cholesky factor of the Gram
+    matrix), ``||a x - b||^2 = ||R x - Q^T b||^2 + const`` for every x, so the
+    non-negative fits (and the refits that drop a column) run on k x k
+    instead of n x k. The Gram matrix is summed with ``einsum`` loops rather
+    than threaded BLAS: the matrices are small and threads only contend.
+    """
+    gram = np.einsum("ij,ik->jk", a, a)
+    atb = np.einsum("ij,i->j", a, b)
+    ridge = 1e-12 * max(float(np.trace(gram)), 1e-300)
+    try:
+        lower = np.linalg.cholesky(gram + ridge * np.eye(gram.shape[0]))
+    except np.linalg.LinAlgError:
+        return a, b
+    from scipy.linalg import solve_triangular
+
+    return lower.T, solve_triangular(lower, atb, lower=True)
 
 
 def _near_lines(wavelength: np.ndarray, lines: Sequence[ObservedLine], fwhm: float) -> np.ndarray:
