@@ -114,6 +114,16 @@ def _add_common(parser, *, out_help: str | None = None) -> None:
     parser.add_argument("--force", action="store_true", help="overwrite existing output files")
 
 
+def _check_outputs(args) -> None:
+    """Refuse existing output files before any work, so nothing is half-written (without --force)."""
+    if getattr(args, "force", False):
+        return
+    for name in ("out", "plot"):
+        path = getattr(args, name, None)
+        if path and Path(path).exists():
+            raise InputError(f"{path} already exists; pass --force to overwrite it, or choose another name")
+
+
 def _fmt(value, spec=".2f", unit=""):
     if value is None:
         return "n/a"
@@ -254,11 +264,10 @@ def register(subparsers) -> None:
 
 
 def _run_response(args) -> int:
+    _check_outputs(args)
     from ..analysis.response import compute_response, save_response
 
     _caution("daylight" if args.daylight else "halogen")
-    if args.out and not args.force and Path(args.out).exists():
-        raise InputError(f"{args.out} already exists; pass --force to overwrite it, or choose another name")
     lamp = _load_inputs(args.lamp, calibration=args.calibration, what="lamp")
     response = compute_response(
         lamp,
@@ -297,11 +306,10 @@ def _run_response(args) -> int:
 
 
 def _run_absorbance(args) -> int:
+    _check_outputs(args)
     from ..analysis.absorbance import absorbance_spectrum
     from ..io import build_provenance, write_table
 
-    if args.out and not args.force and Path(args.out).exists():
-        raise InputError(f"{args.out} already exists; pass --force to overwrite it, or choose another name")
     # Dark frames are subtracted from frames before extraction; a dark spectrum is subtracted here.
     dark_frames = args.dark if args.dark and _is_frames(args.dark) else None
     sample = _load_inputs(args.sample, calibration=args.calibration, what="sample", dark_frames=dark_frames)
@@ -383,6 +391,7 @@ def _band_absorbance(result, args):
 
 
 def _run_concentration(args) -> int:
+    _check_outputs(args)
     from ..analysis.absorbance import absorbance_spectrum, fit_beer_lambert, molar_absorptivity, predict_concentration
 
     concentrations, absorbances, sigmas, labels = [], [], [], []
@@ -490,6 +499,7 @@ def _run_concentration(args) -> int:
 
 
 def _run_rydberg(args) -> int:
+    _check_outputs(args)
     from ..analysis.rydberg import rydberg_from_spectrum
 
     _caution("discharge")
@@ -524,6 +534,7 @@ def _find_laser(key: str):
 
 
 def _run_metrics(args) -> int:
+    _check_outputs(args)
     from ..analysis.metrics import source_metrics
     from ..analysis.response import apply_response, load_response
 
@@ -571,6 +582,7 @@ def _run_metrics(args) -> int:
 
 
 def _run_daylight(args) -> int:
+    _check_outputs(args)
     from ..analysis.daylight import identify_daylight_lines
 
     _caution("daylight")
@@ -596,6 +608,7 @@ def _run_daylight(args) -> int:
 
 
 def _run_plan(args) -> int:
+    _check_outputs(args)
     from ..analysis.planner import dispersion_hint, plan_setup
 
     plan = plan_setup(
