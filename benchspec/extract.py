@@ -850,6 +850,8 @@ class LiveExtractor:
         roi = frame[self.y0:self.y1, self.x0:self.x1]
         image_roi, sat_roi = self._region_preparer().prepare(roi)
         flux, var = self._from_rectified(self._remap(image_roi))
+        if not sat_roi.any():  # the usual live frame: nothing clipped, no second remap needed
+            return flux, var, np.zeros(flux.shape, dtype=bool)
         sat = cv2.remap(sat_roi.view(np.uint8), self._maps[0], self._maps[1], cv2.INTER_NEAREST,
                         borderMode=cv2.BORDER_CONSTANT, borderValue=0)[self._a0:self._a1].any(axis=0)
         return flux, var, sat
