@@ -47,9 +47,12 @@ def _register_report(subparsers) -> None:
 
 
 def _load_calibration(path) -> dict:
+    from ..calfile import calibration_from_dict
+
     data = read_json_file(path, what="calibration file")
     if not isinstance(data, dict):
         raise FileFormatError(f"{path}: a calibration file must hold a JSON object")
+    calibration_from_dict(data, origin=str(path))  # checked against its schema before use
     return data
 
 
@@ -195,6 +198,8 @@ def _run_session_add(args) -> int:
     from ..session import log_capture
 
     spectrum = read_spectrum(args.spectrum) if args.spectrum else None
+    if args.calibration:
+        _load_calibration(args.calibration)  # refuse a file that is not a valid calibration before logging anything
     if spectrum is None and not args.frame:
         raise InputError("nothing to log: give --spectrum and/or --frame")
     metadata = _parse_meta(args.meta)
