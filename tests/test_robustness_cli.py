@@ -50,6 +50,8 @@ COMMANDS = [
     ("simulate", "bench-json", ["simulate", "--bench", "{bad}", "--out", "{out}/frame.png"]),
     ("metrics", "response-json", ["metrics", "{spectrum}", "--response", "{bad}", "--plot", "{out}/metrics.png"]),
     ("session", "session-manifest", ["session", "list", "{session}"]),
+    ("report", "calibration-json", ["report", "{spectrum}", "--calibration", "{bad}", "--out", "{out}/report.pdf"]),
+    ("session", "calibration-json", ["session", "add", "{out}/log", "--spectrum", "{spectrum}", "--calibration", "{bad}"]),
 ]
 
 # A spread of every kind of bad input, the same for each command (deterministic).
