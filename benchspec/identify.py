@@ -3,59 +3,74 @@
 The method, in the order it runs:
 
 1. **Boundary checks.** The spectrum must be calibrated (a ``wavelength_nm``
-   axis), finite, strictly increasing, and lie within 300-1100 nm.
+   axis), finite, strictly increasing (no repeats) and overlap 300-1100 nm
+   by at least 50 nm; samples outside 300-1100 nm are dropped.
 2. **Observed lines.** Peaks whose prominence exceeds ``min_snr`` times the
-   noise are found (``scipy.signal.find_peaks``); their centres are
-   half-maximum centroids and their widths are measured at half prominence.
+   noise are found (``scipy.signal.find_peaks``, on data smoothed to the
+   line width); their centres are half-maximum centroids and their widths
+   are measured at half prominence. Peaks narrower than half the LSF (noise,
+   hot pixels), broader than twice it, or rising less than 10% above the
+   continuum under them (ripples on a bright continuum) are not lines.
 3. **Line-spread function (LSF).** Unless ``fwhm_nm`` is given, the LSF
    FWHM is the 25th percentile of the widths of the significant peaks
    (blends only widen peaks). A spectrum whose narrowest significant peak is
    broader than 12 nm has no lines (an LED, a lamp continuum) and is
    ``unknown``, unless it shows four or more peaks of which one is narrow
-   (a dense line spectrum seen at low resolution). Each sample is modelled as the
-   integral of the line profile over the sample's own width (a box), so the
-   model works at any sampling: 0.05 nm spectrometer pixels or the 5 nm
-   steps of tabulated lamp spectra.
+   (a dense line spectrum seen at low resolution). Each sample is modelled
+   as the integral of the line profile over the sample's own width (a box),
+   so the model works at any sampling: 0.05 nm spectrometer pixels or the
+   5 nm steps of tabulated lamp spectra.
 4. **Forward model per species.** The species' NIST ASD lines inside the
    range, weighted by relative intensity, each a Gaussian of the LSF width
    (phosphor bands also carry their own width, the line's ``tolerance_nm``)
-   integrated over each sample. Each species may shift by up to
-   ``max_shift_nm``: three times the spectrum's calibration uncertainty
-   (``Spectrum.wavelength_uncertainty_nm``, median at the strong lines),
-   or 0.9 nm when the spectrum does not carry one; the shift is the one that
-   best correlates with the data.
+   integrated over each sample. The lines may shift within the calibration
+   uncertainty: a common shift of up to ``max_shift_nm`` (three times
+   ``Spectrum.wavelength_uncertainty_nm``, median at the strong lines, or
+   0.9 nm when the spectrum carries none) chosen by correlation with the
+   data; then, when the calibration uncertainty is known, a smooth offset
+   curve (polynomial of degree <= 2 through the offsets of the species'
+   isolated strong lines) with each line kept within three times the
+   uncertainty at its own wavelength -- whichever correlates better.
 5. **Non-negative least squares** (``scipy.optimize.nnls``) over all
    candidate species at once plus a smooth non-negative continuum (broad
    Gaussian bumps, FWHM ``max(40 nm, 8 x LSF)``, and a constant; a negative
-   floor, from an over-subtracted background, is lifted first), so
-   that mixtures share the flux between them (weights 1/noise).
+   floor, from an over-subtracted background, is lifted first), so that
+   mixtures share the flux between them (weights 1/noise).
 6. **Relative intensities within a tolerance.** Lamp, discharge current and
-   camera change line ratios. After each fit every line of a fitted species
-   is rescaled by the ratio of the data to the model at that line, clipped
-   to ``[1/intensity_tolerance, intensity_tolerance]`` (default a factor of
-   4 either way from the NIST ASD value), and the fit is repeated (two
-   passes). Beyond that factor the model does not follow the data.
+   camera change line ratios. After each fit two things are re-estimated
+   and the fit repeated (four fits in all): a smooth instrument response
+   shared by all species (piecewise-linear in log, knots every 50 nm,
+   within x/÷300, pulled towards 1 with the weight of three well-measured
+   lines per knot, and informed only by species that show five or more
+   lines), and a factor for every line of every fitted species, the ratio
+   of the data to the model at that line clipped to
+   ``[1/intensity_tolerance, intensity_tolerance]`` (default 4). Beyond
+   that the model does not follow the data.
 7. **Scores.** For each species: ``fraction`` is the share of the observed
    line flux (within 1.5 FWHM of an observed line, above the fitted
-   continuum) that its model explains; ``presence`` is one minus the share
+   continuum) that its model explains. ``presence`` is one minus the share
    of its expected flux (NIST ratios x the shared response, scaled to the
-   lines that carry most of its model) that is missing from the data beyond the intensity
-   tolerance, counting only lines that would be seen even at
-   1/tolerance of their expected strength. The score is
-   ``presence**2 * (1 - exp(-fraction / 0.04))``, in [0, 1]; a species that
-   explains no observed line scores 0.
+   lines that carry half of its model) that is missing from the data
+   beyond the intensity tolerance, counting only lines that would be seen
+   even at 1/tolerance of their expected strength. ``marginal`` is the
+   line flux no longer explained when the fit is repeated without the
+   species. The score is ``presence**1.5 * (1 - exp(-marginal / 0.04))``,
+   in [0, 1]; a species that explains no observed line scores 0.
 8. **Verdict.** ``unknown`` when there are no observed lines, the best score
-   is below 0.4 or less than 60% of the line flux is explained;
-   ``identified`` when exactly one species scores at least 0.6 and at least
-   70% of the line flux is explained; ``mixture`` when two or more do
-   (a compact fluorescent lamp is the mixture Hg + CFL-phosphor);
-   ``uncertain`` otherwise.
+   is below 0.4 or less than 60% of the line flux is explained (no species
+   is then named); ``identified`` when exactly one species scores at least
+   0.6 and at least 70% of the line flux is explained; ``mixture`` when two
+   or more do (a compact fluorescent lamp is the mixture Hg +
+   CFL-phosphor); ``uncertain`` otherwise.
 
 Spectra from other instruments: build a :class:`~benchspec.spectrum.Spectrum`
 with :func:`benchspec.spectrum.as_spectrum` from a wavelength column (air
-wavelengths in nm, strictly increasing, 300-1100 nm) and an intensity column
-(linear, any units, background ideally subtracted). Sampling may be anything
-from a few hundredths of a nm to 5 nm. If the data come from a vacuum-
+wavelengths in nm, strictly increasing) and an intensity column (linear, any
+units, background ideally subtracted), or read a file with
+:func:`benchspec.io.read_spectrum` (a CSV with ``wavelength_nm,intensity``
+and optional ``uncertainty``, ``saturated``, ``wavelength_uncertainty_nm``
+columns; or plain two-column text). Sampling may be anything from a few
+hundredths of a nm to 5 nm. If the data come from a vacuum-
 wavelength instrument convert them first (``benchspec.physics.vacuum_to_air_nm``).
 """
 
@@ -329,7 +344,9 @@ def _checked_inputs(spectrum) -> tuple[np.ndarray, np.ndarray, np.ndarray | None
 def check_wavelength_axis(wavelength_nm) -> None:
     """Raise :class:`IdentificationError` unless ``wavelength_nm`` is usable for identification.
 
-    Finite, strictly increasing (no repeats), and within 300-1100 nm.
+    Finite, strictly increasing (no repeats), and overlapping 300-1100 nm by at
+    least 50 nm (or by its whole span, if shorter); :func:`identify` drops the
+    samples outside 300-1100 nm.
     """
     wavelength = np.asarray(wavelength_nm, dtype=float)
     if wavelength.ndim != 1 or wavelength.size == 0:
