@@ -604,7 +604,8 @@ def identify(
     ------
     IdentificationError
         No wavelength axis; NaN or infinite values; wavelengths not strictly
-        increasing or repeated; range outside 300-1100 nm; too few samples.
+        increasing or repeated; less than 50 nm inside 300-1100 nm; too few
+        samples.
     InputError
         Unknown species or out-of-range options.
 

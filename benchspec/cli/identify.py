@@ -37,7 +37,7 @@ def register(subparsers) -> None:
         description="Identify the species (and mixtures) that made a calibrated emission spectrum, against the "
         "packaged NIST ASD line library. Prints a table; --json prints one JSON object.",
         formatter_class=argparse.RawDescriptionHelpFormatter,
-        epilog="Input columns: wavelength_nm (air, nm, strictly increasing, 300-1100 nm) and intensity; optional "
+        epilog="Input columns: wavelength_nm (air, nm, strictly increasing; samples outside 300-1100 nm are ignored) and intensity; optional "
         "uncertainty, saturated, wavelength_uncertainty_nm. A plain two-column wavelength,intensity file from "
         "another instrument works too, at any sampling.\n"
         "Verdicts: identified, mixture, uncertain, unknown (nothing in the library fits; never a guess).",
