@@ -641,6 +641,9 @@ def _read_image_file(path: Path) -> np.ndarray:
     try:
         with Image.open(str(path)) as probe:
             width, height = probe.size
+    except Image.DecompressionBombError:  # Pillow's own guard fired: the header claims an enormous frame
+        raise SourceError(f"{path} claims a frame far above the {MAX_FRAME_PIXELS} pixel limit; "
+                          "it is refused before decoding (a damaged file, or not a camera frame)") from None
     except Exception:
         raise SourceError(f"{path} is not an image PIL or OpenCV can read; remove it from the folder") from None
     if width * height > MAX_FRAME_PIXELS:
