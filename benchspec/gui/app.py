@@ -1177,10 +1177,15 @@ class Viewer:
             self.species_table.insert("", "end", values=(rank, match["symbol"], f"{match['score']:.2f}",
                                                          f"{match.get('fraction', 0.0):.2f}", len(match.get("lines", ()))))
         lines = []
+        missing = {m.symbol: m.missing_nm for m in getattr(summary.core, "matches", ())}
         for match in summary.ranked:
             found = [f"{l.get('observed_nm', l.get('wavelength_nm', 0.0)):.1f}" for l in match.get("lines", ())]
             if found:
                 lines.append(f"{match['symbol']} explains: " + ", ".join(found) + " nm")
+            absent = missing.get(match["symbol"]) or ()
+            if absent:
+                lines.append(f"   {match['symbol']} lines expected but not seen: "
+                             + ", ".join(f"{w:.1f}" for w in absent[:5]) + " nm")
         if summary.unexplained:
             lines.append("Unexplained: " + ", ".join(f"{l['wavelength_nm']:.1f}" for l in summary.unexplained) + " nm")
         else:
