@@ -106,8 +106,9 @@ def test_huge_frames_are_refused_before_decoding(tmp_path, monkeypatch, name, da
     with pytest.raises(FrameError):
         frames.load_stack([path])
     # the live sources refuse it the same way (FolderSource skips it, then has nothing left)
-    with pytest.raises(SourceError, match=path.name):
+    with pytest.raises(SourceError, match=path.name) as info:
         sources.open_source(str(path), loop=False, pace=False).read()
+    assert "pixel limit" in str(info.value)
 
 
 def test_pixel_limit_is_documented_and_adjustable(tmp_path):
