@@ -190,3 +190,14 @@ def test_apply_response_drop_and_nan():
     far = as_spectrum(np.arange(800.0, 900.0), np.ones(100), uncertainty=np.ones(100))
     with pytest.raises(AnalysisError, match="does not overlap"):
         apply_response(far, response)
+
+
+def test_daylight_response_beyond_the_d65_table_is_invalid_there():
+    # Spectra from the pipeline reach past 300-780 nm (extrapolated columns); D65 does not: invalid there.
+    d65 = colour.SDS_ILLUMINANTS["D65"]
+    wl = np.arange(250.0, 850.0, 1.0)
+    values = 100 * (np.interp(wl, np.asarray(d65.wavelengths, float), np.asarray(d65.values, float), left=50, right=50))
+    response = compute_response(as_spectrum(wl, values, uncertainty=np.full(wl.size, 0.5)), reference="daylight")
+    low, high = response.valid_range_nm
+    assert 300 <= low and high <= 780
+    assert not response.valid[(wl < 300) | (wl > 780)].any()

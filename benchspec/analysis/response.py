@@ -118,7 +118,8 @@ def reference_spectrum(wavelength_nm, *, reference: str = "planck", temperature_
     """Relative spectral radiance of the reference source at ``wavelength_nm`` (max 1 over the grid).
 
     "planck": Planck's law at ``temperature_k`` (:func:`benchspec.physics.planck_spectral_radiance`).
-    "daylight": CIE illuminant D65 (colour-science's table, linearly interpolated).
+    "daylight": CIE illuminant D65 (colour-science's table, linearly interpolated; NaN
+    outside its 300-780 nm).
     """
     wavelength = np.asarray(wavelength_nm, dtype=np.float64)
     if reference == "planck":
@@ -135,8 +136,8 @@ def reference_spectrum(wavelength_nm, *, reference: str = "planck", temperature_
 
         d65 = colour.SDS_ILLUMINANTS["D65"]
         values = np.interp(wavelength, np.asarray(d65.wavelengths, float), np.asarray(d65.values, float), left=np.nan, right=np.nan)
-        if np.any(~np.isfinite(values)):
-            raise InputError("the daylight reference (CIE D65) covers 300-780 nm; crop the spectrum to that range")
+        if not np.any(np.isfinite(values)):
+            raise InputError("the daylight reference (CIE D65) covers 300-780 nm and the spectrum lies outside it")
     else:
         raise InputError(f"`reference` must be one of {', '.join(REFERENCES)}, was {reference!r}")
     return values / np.nanmax(values)
@@ -215,11 +216,14 @@ def compute_response(
     ratio = signal / ref
     ratio_sigma = sigma / ref
     # Saturated samples carry no shape information: bridge them linearly, then mark them invalid.
-    good = ~saturated
+    good = ~saturated & np.isfinite(ref)
+    if np.count_nonzero(good) < window:
+        raise AnalysisError("too few unsaturated samples inside the reference's range to compute a response")
     ratio_filled = np.interp(wl, wl[good], ratio[good])
     coefficients = signal_savgol_coeffs(window, _SG_ORDER)
     response = savgol_filter(ratio_filled, window, _SG_ORDER, mode="interp")
     variance = np.convolve(np.where(good, ratio_sigma, 0.0) ** 2, coefficients**2, mode="same")
+    outside_reference = np.convolve((~np.isfinite(ref)).astype(float), np.ones(window), mode="same") > 0
     response_sigma = np.sqrt(variance)
     smooth_signal = savgol_filter(np.interp(wl, wl[good], signal[good]), window, _SG_ORDER, mode="interp")
     # Valid: away from saturation by half a window, bright enough, and well above the noise.
@@ -229,6 +233,7 @@ def compute_response(
             np.isfinite(response)
             & (response > 0)
             & ~near_saturation
+            & ~outside_reference
             & (smooth_signal >= min_signal_fraction * peak)
             & (response >= min_snr * response_sigma)
         )
