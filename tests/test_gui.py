@@ -430,3 +430,14 @@ def test_view_help_prints_the_cautions(capsys):
     for block in format_cautions().splitlines():
         assert " ".join(block.split()) in " ".join(out.split())
     assert "Ctrl+Enter" in out
+
+
+def test_lens_cap_on_says_no_band_and_keeps_running(make_viewer, rng):
+    # a lens cap: read noise only
+    black = [rng.integers(0, 4, size=(360, 640, 3), dtype=np.uint8) for _ in range(3)]
+    viewer = make_viewer(ArraySource(black, loop=True, frame_rate_hz=20, pace=True, name="camera 0"))
+    _wait(viewer.root, lambda: "band" in viewer.message.cget("text"), timeout=20, what="no-band message")
+    assert any("band" in line and line.startswith("warning") for line in viewer.log_lines)
+    viewer.buttons["calibrate"].invoke()
+    _wait(viewer.root, lambda: "calibrate:" in _log(viewer), timeout=20, what="calibration refused")
+    assert viewer.calibration is None and viewer.worker.running

@@ -198,6 +198,7 @@ class Viewer:
         self._spec_axis_state = None
         self._spec_background = None
         self._closed = False
+        self._last_note = ""
         self._after_id = None
         self._status_after = None
         self._display_size = (640, 300)
@@ -624,10 +625,12 @@ class Viewer:
             self.identification = None
             self.species_summary.configure(text="No identification for this source yet: press Identify (i).")
             self.species_table.delete(*self.species_table.get_children())
+        if self.held is not None:  # a new source is watched live
+            self.held, self.held_frames = None, []
+            self.buttons["hold"].configure(text="Hold")
+            self.spectrum_state.configure(text="live")
         self.worker = LiveWorker(source, process).start()
         self._notes_seen = set(info.notes)
-        if self.held is not None:
-            self.worker.pause_live(True)
 
     def open_source(self, source: FrameSource) -> None:
         """Show ``source`` (after the light-source check, if not done yet)."""
@@ -728,6 +731,9 @@ class Viewer:
     def _show(self, result: LiveResult) -> None:
         started = time.perf_counter()
         self.last_result = result
+        if result.note and result.note != self._last_note:
+            self.report(result.note, level="warning")  # e.g. no band found, a dark of another size
+        self._last_note = result.note
         self._draw_frame(result)
         self._draw_spectrum(result)
         self._show_clipping(result)

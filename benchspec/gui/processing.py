@@ -9,6 +9,7 @@ draw. Nothing here imports tkinter; matplotlib only for saving a plot file.
 from __future__ import annotations
 
 import threading
+import time
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Sequence
@@ -207,6 +208,7 @@ class BenchProcessor:
         self._columns_kept: tuple[int, int] | None = None
         self._live_lines_cache: tuple[int, tuple[LiveLine, ...]] = (-999, ())
         self.lines_every_n_frames = 12
+        self._geometry_failure: tuple[float, BenchspecError] | None = None
         # Lines are named after the calibration lamp's lines only while that lamp is in view
         # (until another source is opened); afterwards only an identification names them.
         self.label_with_lamp = False
@@ -281,7 +283,16 @@ class BenchProcessor:
                     f"the frame is {image.shape[1]}x{image.shape[0]} px but the calibration was made on "
                     f"{self.geometry_shape[1]}x{self.geometry_shape[0]} px frames; use the camera resolution of "
                     "the calibration, or calibrate again")
-            self.locate(stacked if stacked is not None else self.stack([image]))
+            # Without a band (lens cap on, lamp off) every frame would search again: once a second is enough.
+            failed = self._geometry_failure
+            if stacked is None and failed is not None and time.monotonic() - failed[0] < 1.0:
+                raise failed[1]
+            try:
+                self.locate(stacked if stacked is not None else self.stack([image]))
+            except BenchspecError as exc:
+                self._geometry_failure = (time.monotonic(), exc)
+                raise
+            self._geometry_failure = None
 
     def _refresh_extractor(self) -> None:
         if self.geometry is not None:
