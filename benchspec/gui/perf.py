@@ -136,6 +136,8 @@ def measure_viewer(video=None, *, seconds: float = 10.0, calibrate: bool = True,
 
         load_before = os.getloadavg()[0]
         start_shown = viewer.stats.frames_shown
+        start_skipped = viewer.stats.spectrum_skipped
+        start_renders = viewer.stats.full_redraws
         start_read = viewer.worker.frames_read
         start_dropped = viewer.worker.frames.dropped
         started = time.perf_counter()
@@ -153,6 +155,9 @@ def measure_viewer(video=None, *, seconds: float = 10.0, calibrate: bool = True,
             "frames_shown": shown,
             "frames_shown_per_s": round(shown / elapsed, 2),
             "frames_dropped": worker.frames.dropped - start_dropped,
+            # frames whose spectrum trace waited for a full plot render (the frame itself was shown)
+            "spectrum_updates_skipped": viewer.stats.spectrum_skipped - start_skipped,
+            "full_plot_renders": viewer.stats.full_redraws - start_renders,
             "median_processing_ms": round(float(np.median(worker.recent_process_s)) * 1000, 2)
             if worker.recent_process_s else None,
             "worst_block_ms": round(max(0.0, (max(gaps) - period_ms / 1000)) * 1000, 1) if gaps else None,
@@ -199,7 +204,8 @@ def main(argv=None) -> int:
               f"{'calibrated' if result['calibrated'] else 'pixel axis'}:")
         print(f"  frames shown: {result['frames_shown_per_s']:.1f} per second "
               f"({result['frames_shown']} in {result['seconds']} s; {result['frames_read']} read, "
-              f"{result['frames_dropped']} dropped)")
+              f"{result['frames_dropped']} dropped; spectrum trace waited for {result['full_plot_renders']} "
+              f"full plot render(s) on {result['spectrum_updates_skipped']} frames)")
         print(f"  live processing: {result['median_processing_ms']} ms per frame (median)")
         print(f"  Tk thread longest stall: {result['worst_block_ms']} ms (99th percentile {result['p99_block_ms']} ms)")
         print(f"  machine: {result['cpu_count']} cores, load average {result['load_average_1min']} during the run")
