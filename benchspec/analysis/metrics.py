@@ -108,8 +108,14 @@ def _peak(wl, y, sigma):
     xs, ys, ss = wl[lo : hi + 1] - x0, y[lo : hi + 1], sigma[lo : hi + 1]
     if np.all(ys > 0):
         ys, ss = np.log(ys), ss / ys
-    coeffs, cov = np.polyfit(xs, ys, 2, w=1 / ss, cov="unscaled")
+    try:
+        with np.errstate(all="ignore"):
+            coeffs, cov = np.polyfit(xs, ys, 2, w=1 / ss, cov="unscaled")
+    except (np.linalg.LinAlgError, ValueError):  # weights that overflow (values near 1e300, zero sigma)
+        return float(wl[i]), float((wl[hi] - wl[lo]) / 2), i
     a, b = coeffs[0], coeffs[1]
+    if not (np.all(np.isfinite(coeffs)) and np.all(np.isfinite(cov))):
+        return float(wl[i]), float((wl[hi] - wl[lo]) / 2), i
     if a >= 0:
         return float(wl[i]), float((wl[hi] - wl[lo]) / 2), i
     vertex = -b / (2 * a)
