@@ -8,7 +8,7 @@ The method, in the order it runs:
 2. **Observed lines.** Peaks whose prominence exceeds ``min_snr`` times the
    noise are found (``scipy.signal.find_peaks``, on data smoothed to the
    line width); their centres are half-maximum centroids and their widths
-   are measured at half prominence. Peaks narrower than half the LSF (noise,
+   are measured at half prominence. Peaks narrower than 0.3 x the LSF (noise,
    hot pixels), broader than twice it, or rising less than 10% above the
    continuum under them (ripples on a bright continuum) are not lines.
 3. **Line-spread function (LSF).** Unless ``fwhm_nm`` is given, the LSF
@@ -652,7 +652,7 @@ def identify(
     smooth = (lsf_fwhm / median_step) / _FWHM_PER_SIGMA / 2.0
     observed = find_observed_lines(wavelength, intensity, noise=sigma, min_snr=min_snr, smooth_samples=smooth) if smooth >= 0.8 else first
     broad_limit = max(2.0 * lsf_fwhm, lsf_fwhm + 2.0 * median_step)
-    narrow_limit = 0.5 * lsf_fwhm if lsf_fwhm >= 3.0 * median_step else 0.0  # narrower than the LSF: noise or hot pixels
+    narrow_limit = 0.3 * lsf_fwhm if lsf_fwhm >= 3.0 * median_step else 0.0  # far narrower than the LSF: noise or hot pixels
     lines = tuple(l for l in observed if narrow_limit <= l.fwhm_nm <= broad_limit)
     # Emission lines stand out from whatever continuum lies under them; ripples of a few
     # percent on a bright continuum (absorption structure, response ripple) are not lines.
