@@ -676,7 +676,8 @@ class LiveExtractor:
     -----
     Same background model, variance propagation and saturation flag as
     :func:`extract`; with the same interpolation, box results agree with it
-    to float32 rounding.
+    to float32 rounding. The extractor reuses one output buffer, so use one
+    extractor per thread; the arrays it returns are new.
     """
 
     def __init__(self, geometry: Geometry, *, noise_model: NoiseModel, method: str = "box",
@@ -743,6 +744,8 @@ class LiveExtractor:
         self._profile = (profile / profile.sum())[:, None]
         self._pixel = np.arange(n_cols, dtype=np.float64)
         self._roi_preparer = None
+        self._buffer = np.empty((n_rows, n_cols), np.float32)
+        self._sat_buffer = np.empty((n_rows, n_cols), np.uint8)
         area = jacobian(geometry)  # None when 1 everywhere
         self._area = None if area is None else np.ascontiguousarray(area[a0:a1])
         if self._area is not None:
@@ -758,7 +761,10 @@ class LiveExtractor:
         return (self.x0, self.y0, self.x1, self.y1)
 
     def rectify(self, image: np.ndarray) -> np.ndarray:
-        """Rectified band (n_rows, n_columns), float32, of a linear frame of the geometry's size."""
+        """Rectified band (n_rows, n_columns), float32 (a new array), of a linear frame of the geometry's size."""
+        return self._rectify_into_buffer(image).copy()
+
+    def _rectify_into_buffer(self, image: np.ndarray) -> np.ndarray:
         check_frame_size(image.shape, self.geometry)
         roi = image[self.y0:self.y1, self.x0:self.x1]
         if roi.dtype != np.float32:
@@ -766,7 +772,9 @@ class LiveExtractor:
         return self._remap(roi)
 
     def _remap(self, roi: np.ndarray) -> np.ndarray:
-        return cv2.remap(roi, self._maps[0], self._maps[1], self._flag, borderMode=cv2.BORDER_CONSTANT, borderValue=0)
+        # into a buffer kept between frames: a fresh 1 MB array per frame costs its page faults
+        return cv2.remap(roi, self._maps[0], self._maps[1], self._flag, dst=self._buffer,
+                         borderMode=cv2.BORDER_CONSTANT, borderValue=0)
 
     def _variance(self, signal):
         nm = self.noise_model
@@ -815,10 +823,11 @@ class LiveExtractor:
 
     def process_arrays(self, image: np.ndarray, saturated: np.ndarray | None = None):
         """(intensity, variance, saturated) for one linear float32 frame: the fast path, no Spectrum built."""
-        flux, var = self._from_rectified(self.rectify(image))
+        image = np.asarray(image)
+        flux, var = self._from_rectified(self._rectify_into_buffer(image))
         if saturated is not None:
             sat_roi = np.ascontiguousarray(saturated[self.y0:self.y1, self.x0:self.x1]).view(np.uint8)
-            sat = cv2.remap(sat_roi, self._maps[0], self._maps[1], cv2.INTER_NEAREST,
+            sat = cv2.remap(sat_roi, self._maps[0], self._maps[1], cv2.INTER_NEAREST, dst=self._sat_buffer,
                             borderMode=cv2.BORDER_CONSTANT, borderValue=0)
             sat_cols = sat[self._a0:self._a1].any(axis=0)
         else:
@@ -852,7 +861,7 @@ class LiveExtractor:
         flux, var = self._from_rectified(self._remap(image_roi))
         if not sat_roi.any():  # the usual live frame: nothing clipped, no second remap needed
             return flux, var, np.zeros(flux.shape, dtype=bool)
-        sat = cv2.remap(sat_roi.view(np.uint8), self._maps[0], self._maps[1], cv2.INTER_NEAREST,
+        sat = cv2.remap(sat_roi.view(np.uint8), self._maps[0], self._maps[1], cv2.INTER_NEAREST, dst=self._sat_buffer,
                         borderMode=cv2.BORDER_CONSTANT, borderValue=0)[self._a0:self._a1].any(axis=0)
         return flux, var, sat
 

@@ -55,6 +55,7 @@ from __future__ import annotations
 import glob as _glob
 import hashlib
 import io
+import math
 import os
 import warnings
 from dataclasses import dataclass, field
@@ -625,11 +626,12 @@ class FramePreparer:
             image = cv2.transform(linear, w)
             if image.ndim == 3:
                 image = image[:, :, 0]
-            top = frame.max(axis=2) if frame.dtype != np.uint8 else cv2.max(cv2.max(frame[:, :, 0], frame[:, :, 1]), frame[:, :, 2])
+            # one pass: 255 where every channel is below the saturation code
+            below = int(math.ceil(full)) - 1
+            saturated = cv2.inRange(frame, (0, 0, 0), (below, below, below)) == 0
         else:
             image = linear
-            top = frame
-        saturated = top >= full
+            saturated = frame >= full
         if self.dark is not None:
             if self.dark.shape != image.shape:
                 raise FrameError(
