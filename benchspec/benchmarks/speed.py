@@ -95,15 +95,25 @@ def _time(fn: Callable[[], Any], *, repeats: int, warmup: int = 1, per: int = 1,
     """Median (and spread) of ``repeats`` timed calls of ``fn`` after ``warmup`` calls, in ms per ``per`` items.
 
     With ``budget_s``, slow calls are repeated only as often as fit in that
-    many seconds (at least 3 samples; 1 with a budget under a second).
+    many seconds (at least 3 samples). A budget under a second (quick mode)
+    skips the warm-up and may keep a single sample.
     """
+    quick = budget_s is not None and budget_s < 1.0
+    if quick:
+        warmup = 0  # quick mode checks that the stages run; its figures are indicative only
     start = time.perf_counter()
     for _ in range(warmup):
         fn()
     warm = (time.perf_counter() - start) / max(warmup, 1)
-    if budget_s is not None and warm > 0:
-        repeats = max(3 if budget_s >= 1.0 else 1, min(repeats, int(budget_s / warm)))
     samples, cpu_samples = [], []
+    if quick:
+        start, start_cpu = time.perf_counter(), time.process_time()
+        fn()
+        warm = time.perf_counter() - start
+        samples.append(warm * 1000.0 / per)
+        cpu_samples.append((time.process_time() - start_cpu) * 1000.0 / per)
+    if budget_s is not None and warm > 0:
+        repeats = max(3 if not quick else 0, min(repeats - len(samples), int(budget_s / warm)))
     gc_was_enabled = gc.isenabled()
     gc.disable()  # a collection in the middle of one sample is noise, not the stage's cost
     try:
