@@ -773,6 +773,9 @@ def _text_cases(reader: Reader, samples: dict[str, bytes]) -> list[BadInput]:
         changed = _replace_once(valid, marker, token.encode())
         if changed is not None:
             cases.append(BadInput(r, f"number-{token}", changed))
+    changed = _replace_once(valid, marker, b"1" * 400)  # an integer far beyond any float (found by the fuzzer)
+    if changed is not None:
+        cases.append(BadInput(r, "number-400-digits", changed))
     changed = _replace_once(valid, marker, b"12,3.4")
     if changed is not None:
         cases.append(BadInput(r, "number-garbled", changed))
@@ -1088,7 +1091,7 @@ def _json_nested_cases(reader: Reader) -> list[BadInput]:
                 lenient = bool({"notes", "version", "name", "label", "metadata", "view", "settings", "variable"} & set(path)) or (
                     label in ("negative", "huge") and path[-1] in (
                         "rotation_deg", "centre_x_px", "centre_y_px", "first_column_s_px", "pixel_centre",
-                        "rotation_uncertainty_deg", "curvature_rms_px", "n_detected")) or (
+                        "rotation_uncertainty_deg", "curvature_rms_px", "n_detected", "evidence_nats")) or (
                     label == "null" and path[-1] == "curvature_rms_px")  # None: curvature unknown
                 out.append(BadInput(r, "nested-" + ".".join(path) + f"-{label}", dump(new), must_refuse=not lenient))
     if r == "calibration-json":

@@ -512,6 +512,12 @@ def _reject_constant(name: str):
     raise ValueError(f"non-finite number {name}")
 
 
+def _bounded_int(text: str) -> int:
+    if len(text.lstrip("-")) > 300:  # beyond any float: 1e300 written out in digits is already absurd for a file
+        raise ValueError(f"number {text[:20]}... with {len(text)} digits, too large")
+    return int(text)
+
+
 def _finite_float(text: str) -> float:
     value = float(text)
     if not math.isfinite(value):  # 1e999 parses to inf without passing through parse_constant
@@ -524,7 +530,7 @@ def read_json_file(path, *, what: str = "JSON file") -> Any:
     path = Path(path)
     text = _decode_text(path, _read_bytes(path, what), what)
     try:
-        return json.loads(text, parse_constant=_reject_constant, parse_float=_finite_float)
+        return json.loads(text, parse_constant=_reject_constant, parse_float=_finite_float, parse_int=_bounded_int)
     except json.JSONDecodeError as exc:
         hint = " (truncated?)" if exc.pos >= len(text.rstrip()) - 1 else ""
         raise FileFormatError(f"{path} is not valid JSON{hint}: {exc.msg} at line {exc.lineno} column {exc.colno}") from None
@@ -895,7 +901,7 @@ def _provenance_from_comments(path: Path, comments: Sequence[str]) -> dict:
     if raw is None:
         return {}
     try:
-        value = json.loads(raw, parse_constant=_reject_constant, parse_float=_finite_float)
+        value = json.loads(raw, parse_constant=_reject_constant, parse_float=_finite_float, parse_int=_bounded_int)
     except (ValueError, RecursionError):
         raise FileFormatError(f"{path}: the `# provenance-json:` line is not valid JSON (truncated or edited?)") from None
     if not isinstance(value, dict):
@@ -1567,7 +1573,7 @@ def _read_jcamp(path: Path) -> Spectrum:
         if order != list(range(1, len(order) + 1)):
             raise FileFormatError(f"{path}: provenance chunks are missing (found {order[:5]}...); the file was edited or truncated")
         try:
-            provenance = json.loads("".join(provenance_chunks[i] for i in order), parse_constant=_reject_constant, parse_float=_finite_float)
+            provenance = json.loads("".join(provenance_chunks[i] for i in order), parse_constant=_reject_constant, parse_float=_finite_float, parse_int=_bounded_int)
         except (ValueError, RecursionError):
             raise FileFormatError(f"{path}: the ##$BENCHSPEC PROVENANCE labels do not hold valid JSON (edited or truncated?)") from None
         if not isinstance(provenance, dict):

@@ -287,7 +287,10 @@ def _section_from(cls, section: str, values: Mapping[str, Any]):
         elif isinstance(default, float) or default is None:
             if isinstance(value, bool) or not isinstance(value, (int, float)):
                 raise BenchFileError(f"'{section}.{key}' must be a number, was {value!r}")
-            value = float(value)
+            try:
+                value = float(value)
+            except OverflowError:  # an integer with hundreds of digits
+                raise BenchFileError(f"'{section}.{key}' is far too large, was {str(value)[:20]}...") from None
             if not math.isfinite(value):
                 raise BenchFileError(f"'{section}.{key}' must be finite, was {value!r}")
         kwargs[key] = value
