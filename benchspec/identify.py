@@ -118,7 +118,7 @@ _PASSES = 4  # fits: the first with NIST ratios, then with the response and per-
 _RESPONSE_LIMIT = 300.0  # the shared smooth response may depart from 1 by at most this factor
 _RESPONSE_MIN_LINES = 5  # only species showing this many lines inform the shared response
 _RESPONSE_KNOT_NM = 50.0  # knot spacing of the piecewise-linear log response (IR-cut filters fall within ~50 nm)
-_RESPONSE_PRIOR_LINES = 3.0  # the prior "response = 1" weighs as much as this many well-measured lines
+_RESPONSE_PRIOR_LINES = 1.0  # the prior "response = 1" weighs as much as this many well-measured lines
 _MIN_CONTRAST = 0.1  # an emission line rises at least this fraction above the continuum under it
 
 
