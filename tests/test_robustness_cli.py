@@ -168,3 +168,62 @@ def test_cli_reads_valid_files_at_awkward_paths(tmp_path, capsys):
     assert main(["lines", str(path), "--json"]) == 0
     printed = capsys.readouterr().out
     assert json.loads(printed) is not None
+
+
+# --------------------------------------------------------------------------- valid files, pathological content
+
+
+def _pathological_spectra() -> dict:
+    """Spectra that parse but hold what no bench should produce (invented shapes)."""
+    from benchspec.spectrum import Spectrum
+
+    wl = np.linspace(400.0, 700.0, 301)
+    index = np.arange(301, dtype=float)
+    peak = np.exp(-0.5 * ((index - 150) / 2.0) ** 2)
+
+    def make(wavelength, intensity, uncertainty=None):
+        intensity = np.asarray(intensity, dtype=float)
+        sigma = np.ones(intensity.size) if uncertainty is None else np.asarray(uncertainty, dtype=float)
+        return Spectrum(intensity=intensity, uncertainty=sigma, pixel=np.arange(intensity.size, dtype=float),
+                        wavelength_nm=None if wavelength is None else np.asarray(wavelength, dtype=float),
+                        provenance=io.build_provenance(created_utc="2026-12-01T20:00:00Z"))
+
+    return {
+        "constant": make(wl, np.full(301, 5.0)),
+        "all-zero-no-noise": make(wl, np.zeros(301), np.zeros(301)),
+        "two-samples": make([500.0, 501.0], [1.0, 2.0]),
+        "negative": make(wl, -100 * np.abs(np.sin(wl))),
+        "near-1e300": make(wl, 1e300 * peak),
+        "near-1e-300": make(wl, 1e-300 * peak),
+        "uncalibrated": make(None, 100 * peak),
+        "far-ultraviolet": make(np.linspace(10.0, 20.0, 301), 100 * peak),
+        "mid-infrared": make(np.linspace(5000.0, 6000.0, 301), 100 * peak),
+        "single-spike": make(wl, np.where(index == 150, 1e6, 0.0)),
+        "one-picometre-wide": make(np.linspace(500.0, 500.001, 301), np.random.default_rng(0).random(301)),
+        "zero-uncertainty": make(wl, 100 * peak + 1, np.zeros(301)),
+    }
+
+
+PATHOLOGICAL = _pathological_spectra()
+CONTENT_COMMANDS = [["lines", "{f}"], ["lines", "{f}", "--absorption"], ["identify", "{f}"],
+                    ["convert", "{f}", "{o}/copy.jdx"], ["metrics", "{f}"]]
+
+
+@pytest.mark.parametrize("argv", CONTENT_COMMANDS, ids=[" ".join(c[:2]).replace("{f}", "").strip() for c in CONTENT_COMMANDS])
+@pytest.mark.parametrize("name", list(PATHOLOGICAL))
+def test_pathological_content_never_crashes(tmp_path, capsys, name, argv):
+    command = argv[0]
+    if command not in AVAILABLE:
+        pytest.skip(f"the `{command}` command is not registered yet")
+    path = tmp_path / f"odd {name}.json"
+    io.write_spectrum(PATHOLOGICAL[name], path)
+    out = tmp_path / "out"
+    out.mkdir()
+    code = main([part.format(f=path, o=out) for part in argv])  # an exception here is a crash
+    captured = capsys.readouterr()
+    assert code in (0, 2), captured.err
+    assert "Traceback" not in captured.err
+    if code == 2:
+        errors = [line for line in captured.err.splitlines() if ": error: " in line]
+        assert len(errors) == 1 and errors[0].startswith(f"benchspec {command}: error: ")
+        assert list(out.iterdir()) == []
