@@ -24,16 +24,18 @@ The Tk thread only draws. Frames are read and processed by
 from __future__ import annotations
 
 import logging
+import queue
+import sys
+import threading
 import time
 import tkinter as tk
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from tkinter import ttk
 from typing import Callable
 
 import numpy as np
-from concurrent.futures import ThreadPoolExecutor
-
 from matplotlib.collections import LineCollection
 from matplotlib.figure import Figure
 from PIL import Image, ImageTk
@@ -199,6 +201,7 @@ class Viewer:
         self._spec_background = None
         self._closed = False
         self._last_note = ""
+        self._opened: "queue.Queue" = queue.Queue()   # cameras opened on a helper thread
         self._after_id = None
         self._status_after = None
         self._display_size = (640, 300)
@@ -643,14 +646,49 @@ class Viewer:
         self._start(source)
 
     def open_spec(self, spec: str) -> bool:
-        """Open a source by name (as on the command line); False (and a message) if it fails."""
+        """Open a source by name (as on the command line); False (and a message) if it fails.
+
+        Cameras open on a helper thread (a driver can take a second or more to
+        answer); the source is shown when it is ready. A camera whose device
+        node is missing is refused at once.
+        """
+        text = str(spec).strip()
+        if text.isdigit() or text.startswith("/dev/"):
+            node = text if text.startswith("/dev/") else f"/dev/video{text}"
+            if sys.platform.startswith("linux") and not Path(node).exists():
+                self.report(f"no camera at {text} ({node} does not exist); plug the camera in, or choose "
+                            "another source", level="error")
+                return False
+            self.report(f"opening camera {text}…")
+            opened = self._opened
+
+            def open_camera():
+                try:
+                    opened.put((text, open_source(text), None))
+                except BenchspecError as exc:
+                    opened.put((text, None, exc))
+
+            threading.Thread(target=open_camera, name="benchspec-open", daemon=True).start()
+            return True
         try:
-            source = open_source(spec)
+            source = open_source(text)
         except BenchspecError as exc:
             self.report(str(exc), level="error")
             return False
         self.open_source(source)
         return True
+
+    def _check_opened(self) -> None:
+        try:
+            spec, source, error = self._opened.get_nowait()
+        except queue.Empty:
+            return
+        if error is not None:
+            self.report(str(error), level="error")
+        elif self._closed:
+            source.close()
+        else:
+            self.open_source(source)
 
     def open_video(self) -> None:
         path = self.ask_open_path(self.root, "Open a video", [("Videos", "*.avi *.mp4 *.mkv *.mov"), ("All", "*")])
@@ -673,6 +711,7 @@ class Viewer:
         if self._closed:
             return
         try:
+            self._check_opened()
             self.spec_canvas.poll()
             self.fit_canvas.poll()
             self._handle_events()
