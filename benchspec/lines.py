@@ -301,7 +301,7 @@ def _fit_groups(x, y, sigma, uses, guesses_list, *, max_iterations: int = 30):
     def model(params):
         z = (xs[:, None, :] - params[:, 3::3, None]) / params[:, 4::3, None]  # (group, line, sample)
         e = np.exp(-0.5 * z * z)
-        return params[:, 1:2] + params[:, 0:1] * offset + np.einsum("bkn,bk->bn", e, params[:, 2::3]), z, e
+        return params[:, 1:2] + params[:, 0:1] * offset + (params[:, None, 2::3] @ e)[:, 0, :], z, e
 
     def jacobian(params, z, e):
         jac = np.empty((n_groups, xs.shape[1], n_params))
@@ -320,11 +320,14 @@ def _fit_groups(x, y, sigma, uses, guesses_list, *, max_iterations: int = 30):
     cost = np.einsum("bn,bn->b", r, r)
     damping = np.full(n_groups, 1e-3)
     done = np.zeros(n_groups, dtype=bool)
+    at_bound = np.zeros(n_groups, dtype=int)  # consecutive iterations with a parameter held at a bound
+    gave_up = np.zeros(n_groups, dtype=bool)
     eye = np.eye(n_params)
     for _ in range(max_iterations):
-        normal = np.einsum("bnp,bnq->bpq", jac, jac)
-        gradient = np.einsum("bnp,bn->bp", jac, r)
-        diagonal = np.einsum("bpp->bp", normal)
+        jac_t = np.swapaxes(jac, 1, 2)
+        normal = jac_t @ jac
+        gradient = (jac_t @ r[:, :, None])[:, :, 0]
+        diagonal = np.diagonal(normal, axis1=1, axis2=2)
         floor = 1e-12 * diagonal.max(axis=1, keepdims=True) + 1e-300
         scale = damping[:, None] * np.maximum(diagonal, floor) + ~active
         try:
@@ -337,8 +340,13 @@ def _fit_groups(x, y, sigma, uses, guesses_list, *, max_iterations: int = 30):
         cost_trial = np.einsum("bn,bn->b", r_trial, r_trial)
         better = (cost_trial < cost) & ~done
         tiny_step = np.abs(trial - p).max(axis=1) <= 1e-8 * (np.abs(p).max(axis=1) + 1e-8)
+        # a group pinned at a bound is left to the bounded solver: stop iterating it
+        pinned = np.any(active & ((trial <= lower) | (trial >= upper)), axis=1)
+        at_bound = np.where(pinned, at_bound + 1, 0)
         # relative reduction of the cost below 1e-8: scipy's default ftol
         done |= (better & (cost - cost_trial <= 1e-8 * cost)) | (tiny_step & ~better) | (damping >= 1e16)
+        gave_up |= (at_bound >= 3) & ~done
+        done |= gave_up
         if better.any():
             p[better], cost[better], r[better] = trial[better], cost_trial[better], r_trial[better]
             jac[better] = jacobian(trial, z_trial, e_trial)[better]
@@ -349,7 +357,7 @@ def _fit_groups(x, y, sigma, uses, guesses_list, *, max_iterations: int = 30):
         n_used, q = sizes[g], 2 + 3 * counts[g]
         params = p[b, :q]
         margin = 1e-6 * np.maximum(1.0, np.abs(params))
-        if not done[b] or np.any((params - lower[b, :q] <= margin) | (upper[b, :q] - params <= margin)):
+        if not done[b] or gave_up[b] or np.any((params - lower[b, :q] <= margin) | (upper[b, :q] - params <= margin)):
             continue
         _, singular, vt = np.linalg.svd(jac[b, :n_used, :q], full_matrices=False)
         keep = singular > np.finfo(float).eps * max(n_used, q) * singular[0]
