@@ -227,3 +227,64 @@ def test_pathological_content_never_crashes(tmp_path, capsys, name, argv):
         errors = [line for line in captured.err.splitlines() if ": error: " in line]
         assert len(errors) == 1 and errors[0].startswith(f"benchspec {command}: error: ")
         assert list(out.iterdir()) == []
+
+
+def _pathological_frames() -> dict:
+    """Frames that decode but hold no usable spectrum, or odd pixel formats (invented content)."""
+    rng = np.random.default_rng(0)
+    height, width = 240, 320
+    pattern = fuzz._test_frame(width=width, height=height)  # RGB
+    return {
+        "black.png": np.zeros((height, width, 3), np.uint8),
+        "white-saturated.png": np.full((height, width, 3), 255, np.uint8),
+        "uniform-grey.png": np.full((height, width, 3), 128, np.uint8),
+        "noise-only.png": rng.integers(0, 256, (height, width, 3), dtype=np.uint8),
+        "one-pixel.png": np.full((1, 1, 3), 200, np.uint8),
+        "one-row.png": (rng.random((1, 2000)) * 255).astype(np.uint8),
+        "one-column.png": (rng.random((2000, 1)) * 255).astype(np.uint8),
+        "band-touching-edge.png": np.vstack([np.full((20, width), 220, np.uint8), np.full((height - 20, width), 10, np.uint8)]),
+        "16-bit-black.png": np.zeros((height, width), np.uint16),
+        "16-bit-noise.png": rng.integers(0, 65536, (height, width), dtype=np.uint16),
+        "two-lines-only.png": pattern,
+        "palette.png": ("P", pattern),
+        "grey-alpha.png": ("LA", pattern),
+        "rgba.png": ("RGBA", pattern),
+        "cmyk.jpg": ("CMYK", pattern),
+        "one-bit.png": ("1", pattern),
+        "multi-page.tif": ("multi", pattern),
+    }
+
+
+def _write_frame(path: Path, content) -> None:
+    import cv2
+    from PIL import Image
+
+    if isinstance(content, tuple):
+        mode, rgb = content
+        image = Image.fromarray(rgb)
+        if mode == "multi":
+            image.save(path, save_all=True, append_images=[image])
+        else:
+            image.convert(mode).save(path)
+        return
+    array = content[:, :, ::-1] if content.ndim == 3 else content
+    path.write_bytes(cv2.imencode(path.suffix, array)[1].tobytes())
+
+
+PATHOLOGICAL_FRAMES = _pathological_frames()
+
+
+@pytest.mark.parametrize("name", list(PATHOLOGICAL_FRAMES))
+def test_pathological_frames_never_crash_calibrate(tmp_path, capsys, name):
+    if "calibrate" not in AVAILABLE:
+        pytest.skip("the `calibrate` command is not registered yet")
+    path = tmp_path / f"frame {name}"
+    _write_frame(path, PATHOLOGICAL_FRAMES[name])
+    out = tmp_path / "out"
+    out.mkdir()
+    code = main(["calibrate", str(path), "--lamp", "cfl", "--out", str(out / "cal.json")])
+    captured = capsys.readouterr()
+    assert code == 2, captured.err  # none of these holds a lamp spectrum to calibrate on
+    errors = [line for line in captured.err.splitlines() if ": error: " in line]
+    assert len(errors) == 1 and errors[0].startswith("benchspec calibrate: error: ") and "Traceback" not in captured.err
+    assert list(out.iterdir()) == []
