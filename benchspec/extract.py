@@ -733,6 +733,11 @@ class LiveExtractor:
         # variance of a side's mean = V(mean) * k / count
         self._side_scale = [(k / np.maximum(c, 1.0)).astype(np.float32) for k, c in zip(side_k, counts)]
         first, second = _side_coefficients(geometry, oks)
+        valid_ap = valid[a0:a1]
+        # aperture samples whose kernel leaves the frame read 0 and get no background either
+        self._valid_ap = None if valid_ap.all() else valid_ap.astype(np.float32)
+        first = first * valid_ap
+        second = second * valid_ap
         self._coef_first = first.astype(np.float32)  # (n_ap, n_cols)
         self._coef_second = second.astype(np.float32)
         self._sum_first = first.sum(axis=0).astype(np.float32)  # box: background sum = A1 m1 + A2 m2
@@ -751,9 +756,9 @@ class LiveExtractor:
         if self._area is not None:
             self._sum_first = (self._area * self._coef_first).sum(axis=0)
             self._sum_second = (self._area * self._coef_second).sum(axis=0)
-            self._sum_area_sq = (self._area.astype(np.float64) ** 2).sum(axis=0).astype(np.float32)
+            self._sum_area_sq = ((self._area.astype(np.float64) ** 2) * valid_ap).sum(axis=0).astype(np.float32)
         else:
-            self._sum_area_sq = np.float32(self._n_ap)
+            self._sum_area_sq = valid_ap.sum(axis=0).astype(np.float32)
 
     @property
     def region(self) -> tuple[int, int, int, int]:
@@ -811,6 +816,8 @@ class LiveExtractor:
         else:
             v = np.maximum(self._variance(model / area + bg) * area * area, 1e-12)
         w = profile / v
+        if self._valid_ap is not None:
+            w = w * self._valid_ap
         denom = (w * profile).sum(axis=0)
         flux = (w * net).sum(axis=0) / denom
         var = self._k_aperture / denom  # the profile sums to one

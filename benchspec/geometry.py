@@ -38,7 +38,9 @@ emission line across rows (sub-pixel Gaussian peak interpolation), fits
 ``b(s)`` and ``c(s)`` with outlier rejection, and chooses the extraction
 aperture (where the band's spatial profile is above 2% of its peak) and
 background rows on both sides. On a continuum with no line the rotation
-still comes from the band's edges and ``curvature_known`` is False.
+still comes from the band's edges and ``curvature_known`` is False. A band
+too short for its edges (a few chunks long) takes its rotation from the
+common tilt of its slit images, and says so in ``notes``.
 
 :func:`measure_band_shift` compares a later frame with a stored geometry and
 says whether the setup was bumped.
@@ -605,6 +607,13 @@ def measure_geometry(
             curv = np.polynomial.polynomial.polyadd(curv, residual["curvature"])
             curvature = residual
 
+        if trace["n_chunks"] < 4 and curvature is not None and curvature["known"] and abs(tilt[0]) > 0.005:
+            # Too short a band for its edges: the slit images are perpendicular to the dispersion,
+            # so their common tilt is the remaining rotation.
+            d_rad = -math.atan(float(tilt[0]))
+            theta += math.degrees(d_rad)
+            tilt = np.polynomial.polynomial.polyadd(tilt, [TILT_SIGN * d_rad])
+            notes.append("rotation taken from the tilt of the slit images (the band is too short for its edges)")
         if abs(theta) > max_rotation_deg + 1:
             raise GeometryError(
                 f"the band is rotated by {theta:.1f} deg, beyond the +-{max_rotation_deg:g} deg benchspec corrects; "
@@ -707,8 +716,15 @@ class _quiet_nan_warnings(warnings.catch_warnings):
 
 
 def _updated_axis(theta, cx, cy, trace, *, s_ref: float):
-    """New angle and centre from a trace fit t_mid(s) = a + m s measured in the current band coordinates."""
+    """New angle and centre from a trace fit t_mid(s) = a + m s measured in the current band coordinates.
+
+    A slope from fewer than 4 chunks is not trusted (only the centre moves), and one step turns
+    the axis by at most 6 degrees, so a poor first measurement cannot run away.
+    """
     a, m = trace["intercept"], trace["slope"]
+    if trace["n_chunks"] < 4:
+        m = 0.0
+    m = float(np.clip(m, -math.tan(math.radians(6.0)), math.tan(math.radians(6.0))))
     th = math.radians(theta)
     t_ref = a + m * s_ref
     new_cx = cx + s_ref * math.cos(th) - t_ref * math.sin(th)
@@ -801,11 +817,28 @@ def _measure_trace(band: np.ndarray, *, s0: float, t0: float, half_height: float
     """
     n_t, n_s = band.shape
     centre_index = -t0
-    n_chunks = int(np.clip(n_s // 24, 6, 64))
-    edges = np.linspace(0, n_s, n_chunks + 1).astype(int)
-    # Move chunk boundaries to the darkest column nearby, so no line's stroke is cut in two.
     core = band[max(0, int(centre_index - half_height)): int(centre_index + half_height) + 1]
-    column_signal = np.nan_to_num(np.nanmean(core, axis=0), nan=np.inf)
+    column_mean = np.nanmean(core, axis=0)
+    # Chunks of about 24-30 px cover the lit part of the band (plus a margin); narrower chunks would
+    # cut the slit images of a misaligned band.
+    finite_cols = np.isfinite(column_mean)
+    if finite_cols.any():
+        base = np.nanpercentile(column_mean, 10)
+        peak = np.nanmax(column_mean)
+        lit_cols = np.flatnonzero(finite_cols & (column_mean > base + 0.05 * (peak - base)))
+    else:
+        lit_cols = np.array([], dtype=int)
+    if lit_cols.size >= 8:
+        span_lo, span_hi = lit_cols[0], lit_cols[-1] + 1
+        pad = max(8, (span_hi - span_lo) // 10)
+        span_lo, span_hi = max(0, span_lo - pad), min(n_s, span_hi + pad)
+    else:
+        span_lo, span_hi = 0, n_s
+    chunk_px = max(24, n_s // 64)
+    n_chunks = max(2, (span_hi - span_lo) // chunk_px)
+    edges = np.linspace(span_lo, span_hi, n_chunks + 1).astype(int)
+    # Move chunk boundaries to the darkest column nearby, so no line's stroke is cut in two.
+    column_signal = np.nan_to_num(column_mean, nan=np.inf)
     reach = max(1, (edges[1] - edges[0]) // 3)
     for k in range(1, n_chunks):
         lo, hi = max(edges[k - 1] + 2, edges[k] - reach), min(edges[k + 1] - 2, edges[k] + reach)
@@ -815,8 +848,9 @@ def _measure_trace(band: np.ndarray, *, s0: float, t0: float, half_height: float
     window = (max(0, int(centre_index - 1.6 * half_height - 4)), min(n_t, int(centre_index + 1.6 * half_height + 5)))
     # All chunk profiles at once: sums and counts of finite values per chunk (reduceat over columns).
     finite_map = np.isfinite(band)
-    sums = np.add.reduceat(np.where(finite_map, band, 0.0), edges[:-1], axis=1).T  # (n_chunks, n_t)
-    counts = np.add.reduceat(finite_map, edges[:-1], axis=1).T
+    sub = slice(edges[0], edges[-1])
+    sums = np.add.reduceat(np.where(finite_map[:, sub], band[:, sub], 0.0), edges[:-1] - edges[0], axis=1).T
+    counts = np.add.reduceat(finite_map[:, sub], edges[:-1] - edges[0], axis=1).T  # (n_chunks, n_t)
     widths_px = np.diff(edges)[:, None]
     rows_finite = counts >= 0.5 * widths_px
     with np.errstate(invalid="ignore", divide="ignore"):
