@@ -640,6 +640,22 @@ def _pipeline_each(scene: _Scene, folder: Path, *, n_frames: int, progress) -> d
 
     record = _rate_record("pipeline.extract_frames(each=True) (returns a list)", *_rates(runner, path, passes=1))
     record["frames"] = n_frames
+    # what the returned list holds per frame, extrapolated to an hour at 30 fps
+    short = folder / f"series_{scene.width}x{scene.height}_memory.avi"
+    count = max(2, n_frames // 3)
+    _write_video(scene.frames, short, count)
+    gc.collect()
+    tracemalloc.start()
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            held = pipeline.extract_frames(str(short), calibration, each=True)
+        per_frame = tracemalloc.get_traced_memory()[0] / max(len(held), 1)
+        del held
+    finally:
+        tracemalloc.stop()
+    record["memory_held_per_frame_kb"] = per_frame / 1e3
+    record["memory_one_hour_30fps_gb"] = per_frame * 30 * 3600 / 1e9
     return record
 
 
@@ -894,6 +910,9 @@ def format_report(result: dict) -> str:
                     f"  {record['each_fps']:6.0f} fps vs decode only {record['decode_only_fps']:4.0f} fps = "
                     f"{record['ratio']:.2f}x over {record['frames_reduced']} frames: {record['what']}"
                 )
+                if "memory_held_per_frame_kb" in record:
+                    out.append(f"    it holds {record['memory_held_per_frame_kb']:.0f} kB per frame: "
+                               f"{record['memory_one_hour_30fps_gb']:.1f} GB for an hour at 30 fps")
             out.append(
                 f"memory from frame {memory['from_frame']} to {memory['to_frame']}: resident "
                 f"{memory['rss_growth_mb']:+.1f} MB, Python heap {memory['traced_growth_mb']:+.2f} MB "
