@@ -254,7 +254,6 @@ def estimate_noise_model(stacked: StackedFrame, *, geometry: Geometry | None = N
     white = np.zeros(geometry.frame_shape, np.float32)
     white[y0:y1, x0:x1] = rng.standard_normal((y1 - y0, x1 - x0)).astype(np.float32)
     white_band = rectify(white, geometry, tables=tables)
-    a0, a1 = geometry.aperture_rows
     rows = _interior_rows(geometry)
     d = band.image.astype(np.float64)
     second = d[rows] - 0.5 * (d[rows - 1] + d[rows + 1])
@@ -271,7 +270,6 @@ def estimate_noise_model(stacked: StackedFrame, *, geometry: Geometry | None = N
     lv, mv, cnt = _binned(level, values, n_bins=25, statistic=np.median)
     mv = mv / (_CHI2_1_MEDIAN * scale)
     a, b = _fit_variance_curve(lv, mv, np.minimum(cnt, 2000) / np.maximum(mv, 1e-12) ** 2)
-    del a0, a1
     return NoiseModel(1.0 / b if b > 0 else math.inf, math.sqrt(max(a, 0.0)), 1.0, 1, "spatial")
 
 

@@ -75,7 +75,8 @@ __all__ = [
 ]
 
 GEOMETRY_SCHEMA = "benchspec-geometry/1"
-TILT_SIGN = 1.0
+# Turning the band axis by d (radians) turns the sampled slit images by -d: the tilt b gains +d.
+_TILT_SIGN = 1.0
 #: The band's rotation is searched within +-16 degrees (the issue asks for +-15).
 MAX_ROTATION_DEG = 16.0
 
@@ -584,7 +585,7 @@ def measure_geometry(
             # Turning the axis by d turns the sampled slit images by -d; keep lines straight by
             # adding d (radians) to the tilt b(s) the model already holds.
             if np.any(tilt) or np.any(curv):
-                tilt = np.polynomial.polynomial.polyadd(tilt, [TILT_SIGN * math.radians(theta - previous_theta)])
+                tilt = np.polynomial.polynomial.polyadd(tilt, [_TILT_SIGN * math.radians(theta - previous_theta)])
             if abs(theta) > 45:
                 break  # runaway: reported below
             if iteration == iterations:
@@ -612,7 +613,7 @@ def measure_geometry(
             # so their common tilt is the remaining rotation.
             d_rad = -math.atan(float(tilt[0]))
             theta += math.degrees(d_rad)
-            tilt = np.polynomial.polynomial.polyadd(tilt, [TILT_SIGN * d_rad])
+            tilt = np.polynomial.polynomial.polyadd(tilt, [_TILT_SIGN * d_rad])
             notes.append("rotation taken from the tilt of the slit images (the band is too short for its edges)")
         if abs(theta) > max_rotation_deg + 1:
             raise GeometryError(
