@@ -39,7 +39,7 @@ def register(subparsers) -> None:
     cal.add_argument("--with", dest="more", action="append", default=[], metavar="LAMP=FRAME[,FRAME]",
                      help="frames of another lamp from the same setup, combined into one solution; repeatable")
     cal.add_argument("--gamma", default="auto", choices=("auto", "2.2", "srgb", "1"),
-                     help="transfer curve of the frames (auto: 2.2 for 8-bit, 1 for 16-bit)")
+                     help="transfer curve of the frames (auto: sRGB for 8-bit, 1 for 16-bit)")
     cal.add_argument("--channel", default="mean", choices=("mean", "r", "g", "b", "luma"), help="colour channel combination")
     cal.add_argument("--stack", default="mean", choices=("mean", "median"), help="how frames are stacked")
     cal.add_argument("--extraction", default="optimal", choices=("optimal", "box"), help="extraction method")
