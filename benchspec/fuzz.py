@@ -442,22 +442,35 @@ def _optional_readers() -> list[Reader]:
 
 @functools.lru_cache(maxsize=1)
 def _calibration_sample() -> bytes:
-    """A real calibration file: an Hg spectrum (packaged NIST line list) calibrated by wavecal, on a 300-column band."""
-    from . import calfile, lines, wavecal
+    """A valid calibration file of an invented bench: a linear Hg solution on a 300-column band.
+
+    The solution is built directly (not searched for), so the sample does not depend on the
+    matcher's heuristics; calfile validates it like any file it reads.
+    """
+    from . import calfile
     from .geometry import Geometry
     from .refdata import load_lamp
-    from .spectrum import Spectrum
+    from .wavecal import MatchedLine, WavelengthCalibration, WavelengthSolution
 
     n = 300
-    pixel = np.arange(n, dtype=np.float64)
-    wavelength = 380.0 + 1.1 * pixel  # linear dispersion, 1.1 nm/px (invented bench)
-    signal = np.full(n, 20.0)
+    first_nm, step_nm = 380.0, 1.1  # linear dispersion (invented bench)
+    centre, scale = (n - 1) / 2.0, (n - 1) / 2.0
+    coefficients = (first_nm + step_nm * centre, step_nm * scale)
+    solution = WavelengthSolution(coefficients=coefficients, covariance=((1e-4, 0.0), (0.0, 1e-4)),
+                                  pixel_centre=centre, pixel_scale=scale, pixel_range=(0.0, float(n - 1)))
+    matches = []
     for line in load_lamp("hg").lines():
-        if 382.0 < line.wavelength_nm < 705.0:
-            signal += 3000.0 * line.relative_intensity * np.exp(-0.5 * ((wavelength - line.wavelength_nm) / 1.3) ** 2)
-    noisy = signal + np.random.default_rng(7).normal(0.0, 1.0, n) * np.sqrt(4.0 + signal)
-    spectrum = Spectrum(intensity=noisy, uncertainty=np.sqrt(4.0 + signal), pixel=pixel)
-    solution = wavecal.calibrate_lines(lines.find_lines(spectrum), lamp="hg")
+        if line.relative_intensity >= 200 and first_nm + 5 < line.wavelength_nm < first_nm + step_nm * (n - 6):
+            pixel = (line.wavelength_nm - first_nm) / step_nm
+            matches.append(MatchedLine(
+                pixel=pixel, pixel_uncertainty=0.05, reference_nm=line.wavelength_nm, reference_uncertainty_nm=0.005,
+                fitted_nm=line.wavelength_nm, residual_nm=0.0, residual_px=0.0, species="Hg",
+                members_nm=(line.wavelength_nm,), lamp="hg", used_in_fit=True, anchor=True, rejected=False,
+                blended=False, saturated=False, snr=50.0))
+    wavelength = WavelengthCalibration(
+        solution=solution, matches=tuple(matches), rms_px=0.05, rms_nm=0.055, max_uncertainty_nm=0.02,
+        verdict="good", verdict_reason=f"an invented sample ({_NOTE})", lamps=("hg",),
+        line_list_sources=("Hg: NIST ASD",), coverage_fraction=0.9, n_detected=len(matches))
     aperture = (16, 81)
     geometry = Geometry(
         frame_width_px=480, frame_height_px=320, rotation_deg=2.5, rotation_uncertainty_deg=0.01,
@@ -466,12 +479,15 @@ def _calibration_sample() -> bytes:
         tilt_coefficients=(0.0,), curvature_coefficients=(0.002,), curvature_known=True, curvature_rms_px=0.05,
         n_lines_traced=5, spatial_profile=tuple(np.full(65, 1 / 65)), notes=(_NOTE,),
     )
+    reference = 20.0 + 500.0 * np.exp(-0.5 * ((np.arange(n) - 150.0) / 2.0) ** 2)
     calibration = calfile.Calibration(
-        geometry=geometry, wavelength=solution, frames=({"path": f"{_NOTE}.png", "sha256": "0" * 64, "lamp": "hg"},),
-        settings={"gamma": "2.2", "marker": float(_MARKER)}, reference_spectrum=tuple(float(v) for v in noisy),
+        geometry=geometry, wavelength=wavelength, frames=({"path": f"{_NOTE}.png", "sha256": "0" * 64, "lamp": "hg"},),
+        settings={"gamma": "2.2", "marker": float(_MARKER)}, reference_spectrum=tuple(float(v) for v in reference),
         created_utc="2026-12-01T19:00:00Z",
     )
-    return json.dumps(calibration.to_dict(), ensure_ascii=False, indent=1).encode("utf-8")
+    data = calibration.to_dict()
+    calfile.calibration_from_dict(data)  # the sample is valid by the file's own schema
+    return json.dumps(data, ensure_ascii=False, indent=1).encode("utf-8")
 
 
 def _calibration_reader() -> Reader | None:
@@ -1103,7 +1119,7 @@ def _json_nested_cases(reader: Reader) -> list[BadInput]:
         for version in ("benchspec.calibration/2", "benchspec.calibration/0", "benchspec.calibration"):
             changed = json.loads(reader.valid)
             changed["schema"] = version
-            out.append(BadInput(r, f"schema-{version.replace('/', '-')}", dump(changed)))
+            out.append(BadInput(r, f"schema-version-{version.replace('/', '-')}", dump(changed)))
     return out
 
 

@@ -60,7 +60,7 @@ _KINDS = ("empty", "whitespace-only", "truncated-50pct", "random-bytes", "wrong-
           "huge-sparse-file-300MB", "png-claims-100000x100000", "jpeg-claims-60000x60000", "tiff-claims-100000x100000",
           "avi-frames-claim-12000x12000", "avi-header-only", "schema-version-2", "schema-version-99",
           "schema-schema_version-99", "schema-version-99", "unit-wavelength-um", "xunits-wavenumber", "no-end-label",
-          "deeply-nested", "source-number", "width-null", "nan-value", "schema-benchspec.calibration-2",
+          "deeply-nested", "source-number", "width-null", "nan-value", "schema-version-benchspec.calibration-2",
           "unit-medium-vacuum", "nested-geometry.centre_row-string", "schema-key-relative_response-string",
           "schema-key-title-list")
 
