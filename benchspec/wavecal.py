@@ -272,6 +272,9 @@ class WavelengthCalibration:
         Lines the matcher was given (after dropping broad bands).
     notes : tuple of str
         Things a user should know (blends excluded, lines rejected, ...).
+    evidence_nats : float
+        How far the matches are from what chance would give (see the module
+        notes); solutions below 12 are refused.
     """
 
     solution: WavelengthSolution
@@ -286,6 +289,7 @@ class WavelengthCalibration:
     coverage_fraction: float
     n_detected: int
     notes: tuple[str, ...] = ()
+    evidence_nats: float = 0.0
 
     @property
     def n_used(self) -> int:
@@ -333,6 +337,7 @@ class WavelengthCalibration:
             "coverage_fraction": self.coverage_fraction,
             "n_detected": self.n_detected,
             "notes": list(self.notes),
+            "evidence_nats": self.evidence_nats,
         }
 
     @classmethod
@@ -350,6 +355,7 @@ class WavelengthCalibration:
             coverage_fraction=float(data["coverage_fraction"]),
             n_detected=int(data["n_detected"]),
             notes=tuple(data.get("notes", ())),
+            evidence_nats=float(data.get("evidence_nats", 0.0)),
         )
 
 
@@ -625,27 +631,8 @@ def _weighted_polyfit(t, lam, sigma, order):
     return coeffs, cov, residual, chi2
 
 
-def _robust_fit(t, lam, sigma, *, max_order, monotonic_t):
-    """Weighted polynomial fit, outliers rejected at 4 robust sigma, order 1-3 by BIC.
-
-    Returns (coeffs, cov_scaled, keep_mask, chi2_reduced) or None.
-    """
-    n = t.size
-    if n < 2:
-        return None
-    keep = np.ones(n, dtype=bool)
-    base_order = 1 if n < 5 else 2
-    for _ in range(max(1, n // 3)):
-        if keep.sum() <= base_order + 2:
-            break
-        coeffs, _, residual, _ = _weighted_polyfit(t[keep], lam[keep], sigma[keep], base_order)
-        z = (lam - np.polynomial.polynomial.polyval(t, coeffs)) / sigma
-        spread = max(1.0, 1.4826 * float(np.median(np.abs(z[keep] - np.median(z[keep])))))
-        worst = int(np.argmax(np.where(keep, np.abs(z), -1)))
-        if abs(z[worst]) > 4.0 * spread and abs(z[worst]) > 4.0:
-            keep[worst] = False
-        else:
-            break
+def _select_order(t, lam, sigma, keep, *, max_order, monotonic_t):
+    """Best polynomial order on the kept lines by BIC (each order must gain > 2); None if nothing fits."""
     best = None
     m = int(keep.sum())
     # A flat sensor behind a grating always bends the dispersion (x = f tan(beta)), so with enough
@@ -660,12 +647,42 @@ def _robust_fit(t, lam, sigma, *, max_order, monotonic_t):
         if order > 1 and not (np.all(deriv > 0) or np.all(deriv < 0)):
             continue  # a fold inside the range is never physical
         bic = chi2 + (order + 1) * math.log(max(m, 2))
-        if best is None or bic < best[0] - 2.0:  # an order must earn its place (Delta BIC > 2)
+        if best is None or bic < best[0] - 2.0:
             best = (bic, coeffs, cov, chi2, order)
+    return best
+
+
+def _robust_fit(t, lam, sigma, *, max_order, monotonic_t):
+    """Weighted polynomial fit, order 1-3 by BIC, outliers rejected one at a time at 4 robust sigma.
+
+    The order is chosen again after each rejection, so a line that only a
+    higher order explains is not thrown out by a lower-order fit.
+    Returns (coeffs, cov_scaled, keep_mask, chi2_reduced) or None.
+    """
+    n = t.size
+    if n < 2:
+        return None
+    keep = np.ones(n, dtype=bool)
+    best = _select_order(t, lam, sigma, keep, max_order=max_order, monotonic_t=monotonic_t)
+    for _ in range(max(1, n // 3)):
+        if best is None or keep.sum() <= best[4] + 2:
+            break
+        coeffs = best[1]
+        z = (lam - np.polynomial.polynomial.polyval(t, coeffs)) / sigma
+        spread = max(1.0, 1.4826 * float(np.median(np.abs(z[keep] - np.median(z[keep])))))
+        worst = int(np.argmax(np.where(keep, np.abs(z), -1)))
+        if not (abs(z[worst]) > 4.0 * spread and abs(z[worst]) > 4.0):
+            break
+        trial = keep.copy()
+        trial[worst] = False
+        refit = _select_order(t, lam, sigma, trial, max_order=max_order, monotonic_t=monotonic_t)
+        if refit is None:
+            break
+        keep, best = trial, refit
     if best is None:
         return None
     _, coeffs, cov, chi2, order = best
-    dof = max(1, m - (order + 1))
+    dof = max(1, int(keep.sum()) - (order + 1))
     reduced = chi2 / dof
     return coeffs, cov * max(1.0, reduced), keep, reduced
 
@@ -811,6 +828,7 @@ def _final_score(c: _Candidate, peaks: _Peaks, *, centre, scale, t_ends, fwhm, n
     inside = np.isfinite(feature_px)
     range_px = (t_ends[1] - t_ends[0]) * scale
     score = 0.0
+    derivative = np.polynomial.polynomial.polyder(c.coefficients)
     for k, (pi, fi) in enumerate(zip(c.peak_index, c.feature_index)):
         if not c.used[k]:
             continue
@@ -818,6 +836,11 @@ def _final_score(c: _Candidate, peaks: _Peaks, *, centre, scale, t_ends, fwhm, n
         density = max(int(near.sum()), 1) / min(40 * fwhm, range_px)
         width = 2 * max(abs(c.resid_px[k]), peaks.sigma[pi], 0.1)
         score += -math.log(min(1.0, width * density))
+        # A true match misses by about its own uncertainty: charge misses of many sigma (Gaussian
+        # log-likelihood, capped at 3 sigma so one bad line cannot sink a good solution).
+        disp = abs(float(np.polynomial.polynomial.polyval((peaks.pixel[pi] - centre) / scale, derivative))) / scale
+        sigma_px = math.hypot(peaks.sigma[pi], f.sigma[fi] / max(disp, 1e-12), 0.15)  # 0.15 px: model and JPEG
+        score -= 0.5 * min((c.resid_px[k] / sigma_px) ** 2, 9.0)
     score -= 2.0 * max(0, c.coefficients.size - n_pairs)
     # Brightness should roughly follow the listed intensities (camera response and lamp-to-lamp
     # differences allow a factor 5 brighter or 30 fainter at 1 sigma): a bright line on a faint
@@ -838,6 +861,10 @@ def _final_score(c: _Candidate, peaks: _Peaks, *, centre, scale, t_ends, fwhm, n
                 continue
             if np.min(np.abs(peaks.pixel - feature_px[k])) > 2 * fwhm:
                 score -= 1.0
+    # Bright detected lines the solution leaves unexplained: a lamp's own frame is mostly its lines.
+    unexplained = np.ones(peaks.pixel.size, dtype=bool)
+    unexplained[c.peak_index] = False
+    score -= 1.0 * float(np.count_nonzero(unexplained & (peaks.snr >= 20.0)))
     score -= 3.0 * max(0.0, c.rms_px - 0.5)
     return score
 
@@ -936,8 +963,8 @@ def _explained(c: _Candidate, peaks: _Peaks):
 
 # Evidence (nats) a solution needs: chance matches over ~1e4 hypotheses stay well below it.
 _MIN_EVIDENCE = 12.0
-# A distinct runner-up within this many nats makes the match ambiguous (e^3 = 20 times less likely).
-_MIN_MARGIN = 3.0
+# A distinct runner-up within this many nats makes the match ambiguous (e^4 = 55 times less likely).
+_MIN_MARGIN = 4.0
 
 
 def _explained_top(c: _Candidate, peaks: _Peaks, k: int) -> float:
@@ -962,13 +989,13 @@ def _decide(candidates, peaks: _Peaks, *, lamp_label: str, pairs, context) -> _C
         )
     strong_fraction, flux_fraction = _explained(best, peaks)
     top3 = _explained_top(best, peaks, 3)
-    if not pairs and (strong_fraction < 0.8 or top3 < 2 / 3 - 1e-9 or flux_fraction < 0.5):
+    if not pairs and (top3 < 2 / 3 - 1e-9 or flux_fraction < 0.5 or (strong_fraction < 0.8 and flux_fraction < 0.85)):
         raise CalibrationError(
             f"the lines do not fit {lamp_label}: the best match explains {top3:.0%} of the 3 and {strong_fraction:.0%} of the 5 brightest lines "
             f"and {flux_fraction:.0%} of the line flux; check --lamp (or identify the source first)"
         )
     if not pairs:
-        brightest = np.argsort(-peaks.amplitude)[:3]
+        brightest = np.argsort(-peaks.amplitude)[:5]
         position = {int(p): k for k, p in enumerate(best.peak_index)}
         for p in brightest:
             k = position.get(int(p))
@@ -1092,6 +1119,7 @@ def _build_result(best: _Candidate, peaks: _Peaks, *, lamps: Sequence[Lamp], pai
         coverage_fraction=float(coverage),
         n_detected=int(peaks.pixel.size),
         notes=tuple(notes),
+        evidence_nats=float(best.score),
     )
 
 
@@ -1125,7 +1153,7 @@ def calibrate_lines(
     pairs: Sequence[ManualPair] = (),
     dispersion_range_nm_per_px: tuple[float, float] = (0.1, 3.0),
     max_order: int = 3,
-    suggest_lamps: bool = True,
+    suggest_lamps: bool = False,
 ) -> WavelengthCalibration:
     """Calibrate a line table against a lamp's reference lines, with no first guess.
 
@@ -1142,7 +1170,9 @@ def calibrate_lines(
     max_order : int
         Highest polynomial order considered (1-3); the data choose the order.
     suggest_lamps : bool
-        On failure, try the other lamps and name one that fits in the error message.
+        On failure, try the other lamps and name one that fits well (verdict
+        good and twice the evidence needed) in the error message. Off by
+        default: dense line lists (Ar, Ne, Xe) fit many spectra loosely.
 
     Returns
     -------
@@ -1199,7 +1229,7 @@ def _suggest_other_lamp(peaks, current, *, pixel_range, d_range, max_order):
                                      max_order=max_order, suggest_lamps=False)
         except CalibrationError:
             continue
-        if other.verdict == "good":
+        if other.verdict == "good" and other.evidence_nats >= 2 * _MIN_EVIDENCE:
             return name
     return None
 

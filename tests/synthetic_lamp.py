@@ -49,6 +49,7 @@ def render(
     full_well=None,
     continuum=None,
     extra_lines_nm=(),
+    extra_fraction=0.3,
 ):
     """A noisy spectrum of ``lines`` [(wavelength_nm, relative_intensity), ...].
 
@@ -64,7 +65,7 @@ def render(
     x = np.arange(n_pixels, dtype=float)
     wavelength = pixel_to_wavelength(x, **geometry)
     wl = np.array([w for w, _ in lines] + list(extra_lines_nm), dtype=float)
-    strength = np.array([s for _, s in lines] + [0.3 * max(s for _, s in lines)] * len(extra_lines_nm), dtype=float)
+    strength = np.array([s for _, s in lines] + [extra_fraction * max(s for _, s in lines)] * len(extra_lines_nm), dtype=float)
     inside = (wl > wavelength.min()) & (wl < wavelength.max())
     wl, strength = wl[inside], strength[inside]
     centres = wavelength_to_pixel(wl, **geometry)
