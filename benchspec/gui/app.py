@@ -363,6 +363,7 @@ class Viewer:
         # when the lines do (text is the costly part of a redraw); the trace is blitted.
         self._spec_marks = LineCollection([], linewidths=2.2)
         self._marks_spec = None
+        self._marks_time = 0.0
         self.spec_axes.add_collection(self._spec_marks)
         self._spec_labels = [self.spec_axes.text(0, 0, "", fontsize=7.5, rotation=90, ha="center", va="bottom",
                                                  color=p["ink"], visible=False) for _ in range(14)]
@@ -876,12 +877,17 @@ class Viewer:
     def _update_marks(self, result: LiveResult, ylim_top: float) -> bool:
         """Place the line marks and labels; True when they changed (a full redraw is due).
 
-        Marks that stay within 1% of the axis span and 8% of its height count
-        as unchanged, so noise does not force a redraw every frame.
+        Labels are part of the static plot, so changing them costs a full
+        render. Noise must not trigger one: only lines above 8% of the plot
+        height count, a line that moved less than 1% of the axis or 8% of the
+        height is the same line, and labels change at most every 2 seconds
+        (at once when the axis itself is redrawn).
         """
         x_span = float(np.ptp(result.axis)) or 1.0
         spec = []
         for line in result.lines[: len(self._spec_labels)]:
+            if line.height < 0.08 * ylim_top:
+                continue  # weak lines come and go with the noise
             if line.saturated:
                 colour = PALETTE["warning"]
             elif line.wavelength_nm is not None:
@@ -891,10 +897,14 @@ class Viewer:
             spec.append((line.label + (" clipped" if line.saturated else ""), line.position, line.height, colour,
                          line.species))
         old = self._marks_spec
-        if old is not None and len(old) == len(spec) and all(
-                a[4] == b[4] and a[3] == b[3] and abs(a[1] - b[1]) <= 0.01 * x_span and abs(a[2] - b[2]) <= 0.08 * ylim_top
-                for a, b in zip(old, spec)):
-            return False
+        if old is not None:
+            def same(a, b):
+                return a[4] == b[4] and a[3] == b[3] and abs(a[1] - b[1]) <= 0.01 * x_span \
+                    and abs(a[2] - b[2]) <= 0.08 * ylim_top
+            unchanged = len(old) == len(spec) and all(same(a, b) for a, b in zip(old, spec))
+            if unchanged or time.monotonic() - self._marks_time < 2.0:
+                return False
+        self._marks_time = time.monotonic()
         self._marks_spec = spec
         gap = 0.02 * ylim_top
         for text in self._spec_labels:
