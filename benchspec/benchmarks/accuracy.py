@@ -1,0 +1,397 @@
+"""Accuracy benchmark of the frame -> calibrated spectrum chain on virtual benches.
+
+``benchspec benchmark accuracy [--quick]``. Each bench is drawn (seeded) from:
+
+* rotation -12..+12 deg, smile 0..20 px at the band's edges (650 nm);
+* 0.2..3 nm/px at the sensor's centre, blue on either side (grating order +1 or -1);
+  at the finest dispersions part of the 380-720 nm range falls off the sensor;
+* PNG (lossless) or JPEG at quality 70-95, written gamma 1 or 2.2 (and read back
+  with the matching ``gamma``), 640-1920 px wide, RGB sensor with its IR-cut filter;
+* the brightest lines saturated (exposure 1.5-4 x full scale) or not (0.6-0.9).
+
+Figures
+-------
+calibration
+    On the CFL frame, with no first guess: success = a solution with weighted
+    RMS < 0.5 px and every matched line assigned to the reference line that is
+    really there (checked against the simulator's truth: the reference
+    wavelength must agree with the true wavelength at the measured pixel
+    within 3 sigma of the reference or 1.5 px); an explicit refusal
+    (CalibrationError) is counted apart; a solution with a wrong assignment
+    is a *wrong answer*. Also the true error of the solution (vs the truth
+    mapping) between the outermost tightly known lines.
+lines vs NIST
+    With that calibration, He, Ne, H, Hg and Na frames of the same bench are
+    extracted and their isolated lines (no listed neighbour of >= 5% of their
+    intensity within 2.5 FWHM) compared with the NIST wavelengths of the
+    packaged line lists, in px; inside the calibrated span and over all lines.
+curvature
+    On the benches with smile >= 10 px: the median FWHM of the lines after
+    rectification and after summing rows uncorrected, each over the slit
+    image's FWHM from the truth (target: rectified within 10%).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import time
+import warnings
+
+import numpy as np
+
+from ..errors import BenchspecError, CalibrationError, DegradedResultWarning
+from ..refdata import load_line_list
+
+__all__ = ["run", "format_report", "draw_bench", "truth_wavelength_at"]
+
+CHECK_SPECIES = ("He", "Ne", "H", "Hg", "Na")
+_LAMP_OF = {"He": "he", "Ne": "ne", "H": "h", "Hg": "hg", "Na": "na"}
+
+
+def draw_bench(rng: np.random.Generator):
+    """One random virtual bench within the benchmark's ranges, and what was drawn."""
+    from ..simulate import Bench
+
+    width = int(rng.choice([640, 1280, 1920]))
+    height = int(round(width * 9 / 16))
+    target = float(np.exp(rng.uniform(np.log(0.2), np.log(3.0))))
+    # A groove density and field of view giving that dispersion at 550 nm (d cos(beta) / f).
+    for _ in range(100):
+        lines_per_mm = float(rng.choice([300, 500, 600, 830, 1000, 1200]))
+        d_nm = 1e6 / lines_per_mm
+        if 550.0 / d_nm >= 0.95:
+            continue
+        cos_beta = math.sqrt(1 - (550.0 / d_nm) ** 2)
+        focal = d_nm * cos_beta / target
+        fov = math.degrees(2 * math.atan(width / (2 * focal)))
+        if 20.0 <= fov <= 110.0:
+            break
+    else:  # pragma: no cover - the choices always allow one
+        raise RuntimeError("no grating matches the dispersion")
+    order = int(rng.choice([1, -1]))
+    saturate = bool(rng.random() < 0.4)
+    jpeg = bool(rng.random() < 0.5)
+    drawn = {
+        "nm_per_px": target,
+        "lines_per_mm": lines_per_mm,
+        "order": order,
+        "width_px": width,
+        "fov_deg": fov,
+        "rotation_deg": float(rng.uniform(-12, 12)),
+        "smile_px": float(rng.uniform(0, 20)),
+        "jpeg_quality": int(rng.integers(70, 96)) if jpeg else None,
+        "gamma": str(rng.choice(["1", "2.2"])),
+        "exposure_level": float(rng.uniform(1.5, 4.0) if saturate else rng.uniform(0.6, 0.9)),
+        "slit_height_px": float(rng.uniform(0.12, 0.3) * height),
+        "lsf_sigma_px": float(rng.uniform(0.7, 1.6)),
+    }
+    bench = Bench().with_(
+        grating={"lines_per_mm": lines_per_mm, "order": order},
+        camera={"width_px": width, "height_px": height, "horizontal_fov_deg": fov, "rotation_deg": drawn["rotation_deg"]},
+        slit={"height_px": drawn["slit_height_px"], "smile_px": drawn["smile_px"]},
+        optics={"lsf_sigma_px": drawn["lsf_sigma_px"]},
+        exposure={"level": drawn["exposure_level"]},
+        output={"gamma": drawn["gamma"]},
+    )
+    return bench, drawn
+
+
+def _frame(bench, *, source=None, seed: int, jpeg_quality):
+    """Render a frame; JPEG benches go through an in-memory JPEG round trip at their quality."""
+    import cv2
+
+    from ..simulate import render
+
+    rendered = render(bench, seed=seed, source=source)
+    image = rendered.image
+    if jpeg_quality is not None:
+        bgr = image[..., ::-1] if image.ndim == 3 else image
+        ok, data = cv2.imencode(".jpg", np.ascontiguousarray(bgr), [cv2.IMWRITE_JPEG_QUALITY, int(jpeg_quality)])
+        decoded = cv2.imdecode(data, cv2.IMREAD_UNCHANGED)
+        image = decoded[..., ::-1] if decoded.ndim == 3 else decoded
+    return np.ascontiguousarray(image), rendered.truth
+
+
+def truth_wavelength_at(columns, geometry, truth) -> np.ndarray:
+    """True wavelength at rectified columns of ``geometry`` (centre row), from the simulator's truth mapping."""
+    u = np.asarray(columns, dtype=float)
+    x, y = geometry.frame_coordinates(u, np.full_like(u, geometry.centre_row, dtype=float))
+    g = truth["geometry"]
+    theta = math.radians(g["rotation_deg"])
+    px, py = g["pivot_px"]
+    column = px + math.cos(theta) * (x - px) + math.sin(theta) * (y - py)
+    mapping = truth["mapping"]
+    return np.interp(column, mapping["rectified_column_px"], mapping["wavelength_nm"], left=np.nan, right=np.nan)
+
+
+def _isolated_lines(species: str, fwhm_nm: float):
+    lines = load_line_list(species).lines
+    wl = np.array([l.wavelength_nm for l in lines])
+    inten = np.array([l.relative_intensity for l in lines])
+    keep = []
+    for i, l in enumerate(lines):
+        near = (np.abs(wl - wl[i]) < 2.5 * fwhm_nm) & (np.arange(wl.size) != i)
+        if np.any(inten[near] >= 0.05 * inten[i]):
+            continue
+        keep.append((l.wavelength_nm, l.relative_intensity))
+    return keep
+
+
+def _check_assignments(calibration, truth) -> tuple[bool, float, list]:
+    """(all correct, max true error in px over the anchored span, problems)."""
+    w = calibration.wavelength
+    geometry = calibration.geometry
+    problems = []
+    for m in w.matches:
+        true_nm = float(truth_wavelength_at([m.pixel], geometry, truth)[0])
+        disp = abs(float(w.solution.dispersion_nm_per_px(m.pixel)))
+        allowed = max(3 * math.hypot(m.reference_uncertainty_nm, m.pixel_uncertainty * disp), 1.5 * disp)
+        if not np.isfinite(true_nm) or abs(true_nm - m.reference_nm) > allowed:
+            problems.append(f"{m.pixel:.1f} px assigned {m.reference_nm:.2f} nm, truth {true_nm:.2f} nm")
+    anchors = [m.pixel for m in w.matches if m.anchor and m.used_in_fit] or [m.pixel for m in w.matches]
+    grid = np.linspace(min(anchors), max(anchors), 200)
+    true = truth_wavelength_at(grid, geometry, truth)
+    disp = np.abs(w.solution.dispersion_nm_per_px(grid))
+    error_px = np.abs(w.solution.wavelength_nm(grid) - true) / disp
+    return (not problems), float(np.nanmax(error_px)), problems
+
+
+def _lines_vs_nist(calibration, bench, drawn, seed):
+    """Residuals (px) of isolated NIST lines measured with the CFL calibration; per species."""
+    from ..lines import find_lines
+    from ..pipeline import extract_frames
+
+    w = calibration.wavelength
+    fitted = [m.pixel for m in w.matches if m.used_in_fit]
+    low_px, high_px = min(fitted), max(fitted)
+    out = {}
+    for k, species in enumerate(CHECK_SPECIES):
+        try:
+            image, truth = _frame(bench, source={"kind": "lamp", "name": _LAMP_OF[species]}, seed=seed + 101 + k,
+                                  jpeg_quality=drawn["jpeg_quality"])
+        except BenchspecError:
+            continue
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", DegradedResultWarning)
+            try:
+                spectrum = extract_frames([image], calibration)
+            except BenchspecError:
+                continue
+        table = find_lines(spectrum, min_snr=10.0)
+        if len(table) == 0:
+            continue
+        fwhm_nm = float(np.median([l.fwhm_nm for l in table]))
+        refs = _isolated_lines(species, fwhm_nm)
+        rows = []
+        for line in table:
+            if line.blended or line.saturated:
+                continue
+            near = [r for r in refs if abs(r[0] - line.centre_nm) < 1.0 * fwhm_nm]
+            if len(near) != 1:
+                continue
+            disp = abs(float(w.solution.dispersion_nm_per_px(line.centre_px)))
+            inside = low_px <= line.centre_px <= high_px
+            rows.append(((line.centre_nm - near[0][0]) / disp, inside, near[0][0]))
+        out[species] = rows
+    return out
+
+
+def _curvature(calibration, bench, drawn, seed, truth):
+    """(median FWHM rectified, median FWHM uncorrected) over the slit image FWHM, from the CFL frame."""
+    from ..extract import extract_stack
+    from ..frames import stack_frames
+    from ..lines import find_lines
+
+    image, _ = _frame(bench, seed=seed, jpeg_quality=drawn["jpeg_quality"])
+    stacked = stack_frames([image], gamma=drawn["gamma"])
+    geometry = calibration.geometry
+    if not geometry.curvature_known:
+        return None
+    straight = dataclasses.replace(geometry, curvature_coefficients=(0.0,), tilt_coefficients=(0.0,))
+    slit_fwhm = float(truth["geometry"]["slit_image_fwhm_px"])
+    widths = []
+    for g in (geometry, straight):
+        spectrum = extract_stack(stacked, g, method="box")
+        table = find_lines(spectrum, min_snr=20.0)
+        good = [l.fwhm_px for l in table if not l.blended and not l.saturated]
+        widths.append(float(np.median(good)) / slit_fwhm if good else float("nan"))
+    return widths[0], widths[1]
+
+
+def run(quick: bool = False, *, seed: int = 20261201, n_benches: int | None = None, verbose: bool = False) -> dict:
+    """Run the accuracy benchmark.
+
+    Parameters
+    ----------
+    quick : bool
+        12 benches (NIST-line check on 4 of them) instead of 60 (on every second one).
+    seed : int
+        Seed of the bench draws (results repeat).
+    n_benches : int, optional
+        Override the number of benches.
+    verbose : bool
+        Print one line per bench.
+
+    Returns
+    -------
+    dict
+        ``calibration`` (counts, rates, RMS and true-error statistics, refusals and wrong
+        answers with reasons), ``lines_vs_nist`` (RMS px per species, inside the calibrated
+        span and overall), ``curvature`` (FWHM ratios), ``benches`` (one record each),
+        ``targets`` and ``passed``.
+    """
+    from ..pipeline import calibrate_frames
+
+    rng = np.random.default_rng(seed)
+    count = n_benches or (12 if quick else 60)
+    nist_every = 3 if quick else 2
+    records = []
+    nist: dict[str, list] = {s: [] for s in CHECK_SPECIES}
+    curvature = []
+    started = time.process_time()
+    for index in range(count):
+        bench, drawn = draw_bench(rng)
+        bench_seed = seed + 1000 * index
+        record = {"index": index, **{k: (round(v, 3) if isinstance(v, float) else v) for k, v in drawn.items()}}
+        try:
+            image, truth = _frame(bench, seed=bench_seed, jpeg_quality=drawn["jpeg_quality"])
+        except BenchspecError as exc:
+            record.update(status="not rendered", reason=str(exc))
+            records.append(record)
+            continue
+        t0 = time.process_time()
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", DegradedResultWarning)
+                calibration = calibrate_frames([image], lamp="cfl", gamma=drawn["gamma"])
+        except CalibrationError as exc:
+            record.update(status="refused", reason=str(exc), cpu_s=time.process_time() - t0)
+            records.append(record)
+            if verbose:
+                print(f"bench {index}: refused: {exc}")
+            continue
+        except BenchspecError as exc:
+            record.update(status="failed before calibration", reason=str(exc), cpu_s=time.process_time() - t0)
+            records.append(record)
+            if verbose:
+                print(f"bench {index}: {type(exc).__name__}: {exc}")
+            continue
+        record["cpu_s"] = time.process_time() - t0
+        w = calibration.wavelength
+        correct, true_error_px, problems = _check_assignments(calibration, truth)
+        record.update(rms_px=w.rms_px, n_matched=len(w.matches), n_used=w.n_used, polynomial_order=w.solution.order,
+                      verdict=w.verdict, true_error_px=true_error_px,
+                      rotation_error_deg=calibration.geometry.rotation_deg - drawn["rotation_deg"])
+        if not correct:
+            record.update(status="wrong", reason="; ".join(problems))
+        elif w.rms_px >= 0.5:
+            record.update(status="rms too large")
+        else:
+            record.update(status="ok")
+        if verbose:
+            print(f"bench {index}: {record['status']} {drawn['nm_per_px']:.2f} nm/px rms {w.rms_px:.3f} px "
+                  f"true error {true_error_px:.2f} px {'; '.join(problems)}")
+        if record["status"] == "ok" and index % nist_every == 0:
+            for species, rows in _lines_vs_nist(calibration, bench, drawn, bench_seed).items():
+                nist[species].extend(rows)
+        if record["status"] == "ok" and drawn["smile_px"] >= 10.0:
+            ratios = _curvature(calibration, bench, drawn, bench_seed, truth)
+            if ratios is not None:
+                curvature.append(ratios)
+                record["fwhm_over_slit"] = {"rectified": ratios[0], "uncorrected": ratios[1]}
+        records.append(record)
+
+    statuses = [r["status"] for r in records]
+    calibrated = [r for r in records if "rms_px" in r]
+    ok = statuses.count("ok")
+    summary = {
+        "benches": count,
+        "ok": ok,
+        "refused": statuses.count("refused"),
+        "wrong": statuses.count("wrong"),
+        "rms_too_large": statuses.count("rms too large"),
+        "other_failures": count - ok - statuses.count("refused") - statuses.count("wrong") - statuses.count("rms too large"),
+        "success_rate": ok / count if count else float("nan"),
+        "rms_px_median": float(np.median([r["rms_px"] for r in calibrated])) if calibrated else float("nan"),
+        "rms_px_max": float(np.max([r["rms_px"] for r in calibrated])) if calibrated else float("nan"),
+        "true_error_px_median": float(np.median([r["true_error_px"] for r in calibrated])) if calibrated else float("nan"),
+        "true_error_px_max": float(np.max([r["true_error_px"] for r in calibrated])) if calibrated else float("nan"),
+        "rotation_error_deg_max": float(np.max(np.abs([r["rotation_error_deg"] for r in calibrated]))) if calibrated else float("nan"),
+        "cpu_s_median": float(np.median([r["cpu_s"] for r in records if "cpu_s" in r])) if records else float("nan"),
+    }
+    per_species = {}
+    inside_all, all_rows = [], []
+    for species, rows in nist.items():
+        inside = [r[0] for r in rows if r[1]]
+        every = [r[0] for r in rows]
+        inside_all += inside
+        all_rows += every
+        per_species[species] = {
+            "n_inside": len(inside),
+            "rms_px_inside": float(np.sqrt(np.mean(np.square(inside)))) if inside else float("nan"),
+            "n_all": len(every),
+            "rms_px_all": float(np.sqrt(np.mean(np.square(every)))) if every else float("nan"),
+        }
+    lines_summary = {
+        "per_species": per_species,
+        "rms_px_inside": float(np.sqrt(np.mean(np.square(inside_all)))) if inside_all else float("nan"),
+        "rms_px_all": float(np.sqrt(np.mean(np.square(all_rows)))) if all_rows else float("nan"),
+        "n_inside": len(inside_all),
+        "n_all": len(all_rows),
+    }
+    curvature_summary = {
+        "benches": len(curvature),
+        "fwhm_over_slit_rectified_median": float(np.nanmedian([c[0] for c in curvature])) if curvature else float("nan"),
+        "fwhm_over_slit_uncorrected_median": float(np.nanmedian([c[1] for c in curvature])) if curvature else float("nan"),
+        "fwhm_over_slit_rectified_max": float(np.nanmax([c[0] for c in curvature])) if curvature else float("nan"),
+    }
+    targets = {
+        "calibration succeeds on 100% (RMS < 0.5 px, every line correctly assigned)": summary["success_rate"] == 1.0,
+        "never a wrong answer (refusals allowed, no wrong assignment)": summary["wrong"] == 0,
+        "isolated He/Ne/H/Hg/Na lines within 0.2 px RMS of NIST (inside the calibrated span)": bool(
+            lines_summary["rms_px_inside"] <= 0.2),
+        "isolated He/Ne/H/Hg/Na lines within 0.2 px RMS of NIST (all, incl. extrapolated)": bool(
+            lines_summary["rms_px_all"] <= 0.2),
+        "rectified FWHM within 10% of the slit image (smile >= 10 px)": bool(
+            curvature_summary["fwhm_over_slit_rectified_median"] <= 1.10),
+    }
+    return {
+        "calibration": summary,
+        "lines_vs_nist": lines_summary,
+        "curvature": curvature_summary,
+        "targets": dict(targets),
+        "passed": {name: bool(v) for name, v in targets.items()},
+        "cpu_s_total": time.process_time() - started,
+        "benches": records,
+        "seed": seed,
+        "quick": quick,
+    }
+
+
+def format_report(figures: dict) -> str:
+    c = figures["calibration"]
+    lines = figures["lines_vs_nist"]
+    curv = figures["curvature"]
+    out = [
+        f"automatic calibration on {c['benches']} virtual benches (CFL, no first guess)",
+        f"  ok {c['ok']}  refused {c['refused']}  wrong {c['wrong']}  rms>=0.5px {c['rms_too_large']}  "
+        f"other {c['other_failures']}  -> success {c['success_rate']:.0%}",
+        f"  weighted RMS: median {c['rms_px_median']:.3f} px, max {c['rms_px_max']:.3f} px; true error within the "
+        f"anchored span: median {c['true_error_px_median']:.3f} px, max {c['true_error_px_max']:.3f} px",
+        f"  rotation error max {c['rotation_error_deg_max']:.3f} deg; CPU per calibration (median) {c['cpu_s_median']:.2f} s",
+        "isolated NIST lines measured with the CFL calibration (px RMS; n)",
+    ]
+    for species, s in lines["per_species"].items():
+        out.append(f"  {species:<3s} inside span {s['rms_px_inside']:.3f} ({s['n_inside']})   all {s['rms_px_all']:.3f} ({s['n_all']})")
+    out.append(f"  all species: inside span {lines['rms_px_inside']:.3f} px ({lines['n_inside']}), all {lines['rms_px_all']:.3f} px ({lines['n_all']})")
+    out.append(f"curvature (benches with smile >= 10 px: {curv['benches']}): FWHM / slit image FWHM "
+               f"rectified {curv['fwhm_over_slit_rectified_median']:.3f} (max {curv['fwhm_over_slit_rectified_max']:.3f}), "
+               f"rows summed uncorrected {curv['fwhm_over_slit_uncorrected_median']:.3f}")
+    for r in figures["benches"]:
+        if r["status"] != "ok":
+            out.append(f"  bench {r['index']} ({r['nm_per_px']:.2f} nm/px, order {r['order']}): {r['status']}: {r.get('reason', '')}")
+    out.append("targets:")
+    for name, passed in figures["passed"].items():
+        out.append(f"  [{'pass' if passed else 'FAIL'}] {name}")
+    return "\n".join(out)

@@ -1,0 +1,124 @@
+"""Frames -> calibrated spectra through the public API, on virtual-bench frames.
+
+Reference values: NIST ASD air wavelengths of the packaged line lists (Hg I 435.833 and
+546.075 nm, ...) and the CIE F-series fluorescent illuminants FL2 and FL11 (colour-science
+SDS_ILLUMINANTS, 5 nm steps).
+"""
+
+import warnings
+
+import numpy as np
+import pytest
+
+from benchspec import simulate
+from benchspec.benchmarks.accuracy import truth_wavelength_at
+from benchspec.calfile import Calibration
+from benchspec.errors import CalibrationError, DegradedResultWarning, FrameError
+from benchspec.lines import find_lines
+from benchspec.pipeline import apply_calibration, calibrate_frames, extract_frames
+
+BENCH = simulate.Bench().with_(
+    camera={"width_px": 960, "height_px": 540, "horizontal_fov_deg": 45.0, "rotation_deg": 6.0},
+    slit={"height_px": 120.0, "smile_px": 12.0},
+)
+
+
+@pytest.fixture(scope="module")
+def cfl():
+    return simulate.render(BENCH, seed=11)
+
+
+@pytest.fixture(scope="module")
+def calibration(cfl):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DegradedResultWarning)
+        return calibrate_frames([cfl.image], lamp="cfl")
+
+
+def test_calibration_from_one_cfl_frame(calibration, cfl):
+    assert isinstance(calibration, Calibration)
+    w = calibration.wavelength
+    assert w.rms_px < 0.5 and w.verdict in ("good", "fair")
+    assert calibration.geometry.rotation_deg == pytest.approx(6.0, abs=0.1)
+    # Every assignment is the line the simulator put there.
+    for m in w.matches:
+        true_nm = truth_wavelength_at([m.pixel], calibration.geometry, cfl.truth)[0]
+        disp = abs(float(w.solution.dispersion_nm_per_px(m.pixel)))
+        assert abs(true_nm - m.reference_nm) < max(3 * np.hypot(m.reference_uncertainty_nm, m.pixel_uncertainty * disp),
+                                                   1.5 * disp)
+    assert len(calibration.reference_spectrum) == calibration.geometry.n_columns
+    assert calibration.settings["gamma_requested"] == "auto" and calibration.settings["gamma"] in ("2.2", "srgb")
+
+
+def test_mercury_lines_of_a_later_frame_match_nist(calibration):
+    hg = simulate.render(BENCH.with_(source={"kind": "lamp", "name": "hg"}), seed=12)
+    spectrum = extract_frames([hg.image], calibration)
+    assert spectrum.is_calibrated and np.all(np.diff(spectrum.wavelength_nm) > 0)
+    assert spectrum.wavelength_uncertainty_nm is not None and np.all(spectrum.wavelength_uncertainty_nm > 0)
+    centres = np.array([l.centre_nm for l in find_lines(spectrum, min_snr=10)])
+    disp = float(np.median(np.abs(np.diff(spectrum.wavelength_nm))))
+    for nist in (435.833, 546.075):  # Hg I, NIST ASD air wavelengths
+        assert np.min(np.abs(centres - nist)) < 0.5 * disp
+    assert spectrum.provenance["calibration"]["rms_px"] == calibration.wavelength.rms_px
+
+
+def test_each_gives_a_time_series_and_a_moved_band_warns(calibration):
+    frames = [simulate.render(BENCH, seed=s).image for s in (21, 22)]
+    series = extract_frames(frames, calibration, each=True)
+    assert len(series) == 2 and all(s.is_calibrated for s in series)
+    bumped = simulate.render(BENCH.with_(slit={"centre_row_px": 300.0}), seed=23).image
+    with pytest.warns(DegradedResultWarning, match="moved"):
+        extract_frames([bumped], calibration)
+
+
+def test_frames_of_another_resolution_are_refused(calibration):
+    small = simulate.render(BENCH.with_(camera={"width_px": 640, "height_px": 360}), seed=24).image
+    with pytest.raises(FrameError, match="640x360"):
+        extract_frames([small], calibration)
+
+
+def test_wrong_lamp_is_refused(cfl):
+    with pytest.raises(CalibrationError):
+        calibrate_frames([cfl.image], lamp="ne")
+
+
+def test_apply_calibration_reverses_blue_on_the_right(calibration):
+    from benchspec.spectrum import Spectrum
+
+    n = calibration.geometry.n_columns
+    spectrum = Spectrum(intensity=np.ones(n), uncertainty=np.ones(n), pixel=np.arange(n, dtype=float))
+    out = apply_calibration(spectrum, calibration)
+    assert np.all(np.diff(out.wavelength_nm) > 0)
+    assert out.size <= n
+
+
+def _fluorescent_source(monkeypatch, name):
+    """Make the virtual bench emit a CIE F-series spectrum (colour-science SDS_ILLUMINANTS, 5 nm steps)."""
+    colour = pytest.importorskip("colour")
+    sd = colour.SDS_ILLUMINANTS[name]
+    wl = np.asarray(sd.wavelengths, float)
+    values = np.asarray(sd.values, float)
+    grid = np.arange(340.0, 1050.0, 0.05)
+    spd = np.interp(grid, wl, values, left=0.0, right=0.0)
+    model = simulate._SourceModel(np.zeros(0), np.zeros(0), np.zeros(0), (), grid, spd / spd.max())
+    monkeypatch.setattr(simulate, "source_spectrum", lambda source: model)
+
+
+@pytest.mark.xfail(reason="known limitation: the 5 nm CIE tables give 4-5 broad features, too few for the "
+                   "matcher's evidence threshold, so calibration refuses (an explicit refusal, not a wrong answer)",
+                   raises=CalibrationError, strict=False)
+@pytest.mark.parametrize("name, features", [("FL2", (435.8, 546.1)), ("FL11", (435.8, 546.1, 611.6))])
+def test_cie_fluorescent_spectra_through_the_bench(monkeypatch, name, features):
+    # CIE FL2 (halophosphate) and FL11 (triphosphor): Hg lines at 435.8 and 546.1 nm, and FL11's
+    # Eu3+ 611.6 nm line, must appear within their 5 nm sampling (+-2.5 nm) after calibration.
+    _fluorescent_source(monkeypatch, name)
+    bench = BENCH.with_(exposure={"level": 0.9})
+    frame = simulate.render(bench, seed=31).image
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DegradedResultWarning)
+        # The user knows the grating (1000 lines/mm): the hint narrows the dispersion search.
+        cal = calibrate_frames([frame], lamp="cfl", hint_lines_per_mm=1000)
+        spectrum = extract_frames([frame], cal)
+    centres = np.array([l.centre_nm for l in find_lines(spectrum, min_snr=10)])
+    for feature in features:
+        assert np.min(np.abs(centres - feature)) <= 2.5, (feature, centres)
