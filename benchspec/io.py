@@ -480,6 +480,8 @@ def _read_bytes(path: Path, what: str) -> bytes:
     try:
         if path.is_dir():
             raise FileFormatError(f"{path} is a folder, not a {what}")
+        if path.exists() and not path.is_file():  # a pipe or a device would block or never end
+            raise FileFormatError(f"{path} is not a regular file (a pipe, socket or device), not a {what}")
         size = path.stat().st_size
         if size > MAX_TEXT_FILE_BYTES:
             raise FileFormatError(f"{path} is {size / 2**20:.0f} MB, above the {MAX_TEXT_FILE_BYTES // 2**20} MB limit for a {what}")

@@ -971,6 +971,8 @@ def load_bench(path: str | os.PathLike) -> Bench:
     """
     path = Path(path)
     try:
+        if path.exists() and not path.is_dir() and not path.is_file():  # a pipe or a device would block or never end
+            raise BenchFileError(f"bench file {str(path)!r} is not a regular file (a pipe, socket or device); check the path")
         size = path.stat().st_size
         if size > _MAX_BENCH_FILE_BYTES:  # a bench file is a few kB; do not read a huge file into memory
             raise BenchFileError(
