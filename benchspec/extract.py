@@ -15,7 +15,8 @@ Optimal extraction (Horne 1986)
     ``f = sum(M P (D - B) / V) / sum(M P² / V)`` with variance
     ``sum(M P) / sum(M P² / V)``, where ``P`` is the spatial profile
     (fitted from the data by a signal-weighted running mean along the
-    dispersion, normalised per column), ``V`` the per-pixel variance from the
+    dispersion, shrunk towards the frame's mean profile where the signal is
+    weak, normalised per column), ``V`` the per-pixel variance from the
     noise model evaluated at the model ``f P + B``, and ``M`` masks pixels
     outside the frame and cosmic-ray-like outliers (Horne's iterative
     rejection, one worst pixel per column per pass). For pure photon plus
@@ -469,6 +470,23 @@ def background(band: RectifiedBand, *, noise_model: NoiseModel | None = None,
 # --------------------------------------------------------------------------- extraction
 
 
+def _frame_profile(net: np.ndarray, variance: np.ndarray, flux: np.ndarray, valid: np.ndarray) -> np.ndarray | None:
+    """The frame's own spatial profile, one for all columns (least squares over every lit column).
+
+    It is the prior towards which each column's local profile is shrunk: it
+    follows the band as it is now (refocused, widened), unlike the profile
+    stored with the geometry. None when its signal-to-noise is below 20.
+    """
+    f = np.clip(flux, 0, None)
+    inv = np.where(valid, 1.0 / variance, 0.0)
+    information = (f[None, :] ** 2 * inv).sum(axis=1)
+    if not np.all(information > 0) or math.sqrt(float(information.mean())) < 20:
+        return None
+    profile = np.clip((f[None, :] * net * inv).sum(axis=1) / information, 0, None)
+    total = profile.sum()
+    return profile / total if total > 0 else None
+
+
 def _fit_profile(net: np.ndarray, variance: np.ndarray, flux: np.ndarray, mask: np.ndarray, fallback: np.ndarray,
                  *, window: int, prior_fraction: float = 0.1) -> np.ndarray:
     """Spatial profile P (rows, columns) from the data, shrunk towards ``fallback`` where the data say little.
@@ -476,7 +494,8 @@ def _fit_profile(net: np.ndarray, variance: np.ndarray, flux: np.ndarray, mask: 
     The data estimate is the least-squares profile that is constant over
     ``window`` columns, ``P = sum(f (D - B) / V) / sum(f² / V)``, whose
     variance is ``1 / sum(f² / V)``. It is combined per pixel with the
-    fallback (the geometry's stored profile), given an uncertainty of
+    fallback (the frame's own mean profile, or the geometry's stored one
+    when the frame is faint), given an uncertainty of
     ``prior_fraction`` times the fallback's peak, by inverse-variance
     weighting; the result is clipped at zero and normalised per column.
     A noisy profile would otherwise make Horne's variance too small.
@@ -563,9 +582,14 @@ def extract(band: RectifiedBand, *, noise_model: NoiseModel, method: str = "opti
     if method == "box":
         flux, var = box, box_var
     else:
-        fallback = np.asarray(g.spatial_profile, dtype=np.float64)
-        if fallback.size != a1 - a0 or not fallback.sum() > 0:
-            fallback = np.full(a1 - a0, 1.0 / (a1 - a0))
+        fallback = _frame_profile(net, np.maximum(pixel_var, 1e-12), box, valid)
+        if fallback is None:  # too little signal in the whole frame: the profile stored with the geometry
+            fallback = np.asarray(g.spatial_profile, dtype=np.float64)
+            if fallback.size != a1 - a0 or not fallback.sum() > 0:
+                fallback = np.full(a1 - a0, 1.0 / (a1 - a0))
+            details["profile_prior"] = "geometry"
+        else:
+            details["profile_prior"] = "frame"
         mask = valid.copy()
         flux = box.copy()
         profile = _fit_profile(net, np.maximum(pixel_var, 1e-12), flux, mask, fallback, window=int(profile_window_px))

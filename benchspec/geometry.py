@@ -961,6 +961,10 @@ def _measure_trace(band: np.ndarray, *, s0: float, t0: float, half_height: float
         "half_height": max(1.5, half),
         "lit_middle_s": lit_middle,
         "n_chunks": int(keep.sum()),
+        "mids": mids[keep],
+        "widths": np.asarray(widths)[keep],
+        "mid_s": centres_s[keep],
+        "s_span": float(np.ptp(centres_s[keep])) if keep.sum() > 1 else 0.0,
     }
 
 
@@ -1169,8 +1173,9 @@ def _measure_curvature(band, sat_band, *, centre_index, half_height, s0, min_snr
         line_wc.append(1.0 / max(cov[2, 2], 1e-16))
         residuals.append(rms)
         traces.append((t[keep], x[keep] + s0))
-    if not line_s:
-        unknown["reason"] = "curvature unknown: no line could be traced across the band"
+    if len(line_s) < 2:
+        # one traced feature on a continuum is as likely an edge or a dip as a slit image
+        unknown["reason"] = "curvature unknown: fewer than two lines could be traced across the band"
         return unknown
     line_s = np.array(line_s)
     span = line_s.max() - line_s.min()
@@ -1389,8 +1394,26 @@ def measure_band_shift(image, geometry: Geometry, *, reference=None, across_tole
             trace = _measure_trace(band, s0=geometry.first_column_s_px, t0=t0 - extra, half_height=half)
     except GeometryError as exc:
         return BandShift(0.0, None, 0.0, False, False, f"band shift not measured: {exc}")
-    across = trace["intercept"]
-    rotation_change = math.degrees(math.atan(trace["slope"]))
+    # Only chunks whose band has the calibrated height count: a frame without the band (dark,
+    # stray light, a bloomed laser spot) must not read as a moved band.
+    height = geometry.band_height_px
+    same = (trace["widths"] > 0.75 * height) & (trace["widths"] < 1.3 * height)
+    mids, mid_s = trace["mids"][same], trace["mid_s"][same]
+    if mids.size >= 4 and np.ptp(mid_s) >= 100 and same.mean() > 0.6:
+        slope, intercept = np.polyfit(mid_s, mids, 1)
+        resid = mids - (intercept + slope * mid_s)
+        good = np.abs(resid) < max(3 * _robust_sigma(resid), 0.5)
+        slope, intercept = np.polyfit(mid_s[good], mids[good], 1) if good.sum() >= 3 else (slope, intercept)
+        across = float(intercept)
+        rotation_change = math.degrees(math.atan(slope))
+    elif mids.size >= 1:
+        # Too little of the band is lit (a laser, an LED, a few lines) to measure a rotation:
+        # only the shift across is measured, where the band is lit, assuming the angle is unchanged.
+        across = float(np.median(mids))
+        rotation_change = 0.0
+    else:
+        return BandShift(0.0, None, 0.0, False, False,
+                         "band shift not measured: no part of the band with the calibrated height was found")
     along = None
     if reference is not None:
         ref = np.asarray(reference, dtype=np.float64)
