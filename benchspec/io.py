@@ -572,7 +572,7 @@ def _check_increasing(wavelength: np.ndarray, *, path: Path, where: str = "sampl
         i = int(bad[0])
         raise FileFormatError(
             f"{path}: wavelengths are not strictly increasing at {where} {i + 1} "
-            f"({wavelength[i + 1]!r} nm after {wavelength[i]!r} nm); sort the rows and drop repeats"
+            f"({float(wavelength[i + 1]):g} nm after {float(wavelength[i]):g} nm); sort the rows and drop repeats"
         )
 
 
@@ -1037,7 +1037,7 @@ def _read_csv_spectrum(path: Path) -> Spectrum:
             i = int(steps[0])
             raise FileFormatError(
                 f"{path} line {rows[i + 1][0]}: wavelengths are not strictly increasing "
-                f"({wavelength[i + 1]!r} nm after {wavelength[i]!r} nm); sort the rows and drop repeats"
+                f"({float(wavelength[i + 1]):g} nm after {float(wavelength[i]):g} nm); sort the rows and drop repeats"
             )
     provenance = dict(table.provenance)
     if value_name != "intensity" and not provenance:

@@ -84,4 +84,15 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
 
 
 def run() -> None:  # pragma: no cover - console entry point
-    sys.exit(main())
+    try:
+        code = main()
+        sys.stdout.flush()
+    except BrokenPipeError:
+        # The reader of our output went away (e.g. `benchspec identify --json | head`):
+        # not an error of ours. Point stdout at devnull so the interpreter's final flush is quiet.
+        import os
+
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        code = 0
+    sys.exit(code)
