@@ -878,7 +878,7 @@ class Viewer:
         """Place the line marks and labels; True when they changed (a full redraw is due).
 
         Labels are part of the static plot, so changing them costs a full
-        render. Noise must not trigger one: only lines above 8% of the plot
+        render. Noise must not trigger one: only lines above 5% of the plot
         height count, a line that moved less than 1% of the axis or 8% of the
         height is the same line, and labels change at most every 2 seconds
         (at once when the axis itself is redrawn).
@@ -886,7 +886,7 @@ class Viewer:
         x_span = float(np.ptp(result.axis)) or 1.0
         spec = []
         for line in result.lines[: len(self._spec_labels)]:
-            if line.height < 0.08 * ylim_top:
+            if line.height < 0.05 * ylim_top:
                 continue  # weak lines come and go with the noise
             if line.saturated:
                 colour = PALETTE["warning"]
@@ -956,7 +956,7 @@ class Viewer:
             rate = self.stats.rate_hz()
             recent = list(worker.recent_process_s)
             cost = float(np.median(recent)) * 1000 if recent else 0.0
-            self.rate_label.configure(text=f"{rate:4.1f} fps · {cost:.0f} ms · {worker.frames.dropped} dropped")
+            self.rate_label.configure(text=f"{rate:4.1f} frames/s · {cost:.0f} ms")
         self._status_after = self.root.after(500, self._update_status)
 
     # ================================================================== messages
@@ -1237,7 +1237,8 @@ class Viewer:
             found = [f"{l.get('observed_nm', l.get('wavelength_nm', 0.0)):.1f}" for l in match.get("lines", ())]
             if found:
                 lines.append(f"{match['symbol']} explains: " + ", ".join(found) + " nm")
-            absent = missing.get(match["symbol"]) or ()
+            seen = [l.get("observed_nm", 0.0) for l in match.get("lines", ())]
+            absent = [w for w in (missing.get(match["symbol"]) or ()) if not any(abs(w - o) < 1.0 for o in seen)]
             if absent:
                 lines.append(f"   {match['symbol']} lines expected but not seen: "
                              + ", ".join(f"{w:.1f}" for w in absent[:5]) + " nm")
