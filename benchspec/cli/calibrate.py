@@ -57,6 +57,8 @@ def register(subparsers) -> None:
     ext.add_argument("--dark", nargs="+", metavar="FRAME", help="dark frames")
     ext.add_argument("--each", action="store_true", help="one spectrum per frame (time series) instead of stacking")
     ext.add_argument("--extraction", choices=("optimal", "box"), help="override the calibration's extraction method")
+    ext.add_argument("--response", metavar="RESP.json",
+                     help="divide by the instrument response (from `benchspec response`): relative spectral power")
     ext.add_argument("--out", required=True, metavar="SPEC.csv", help="output spectrum (.csv, .json or .jdx)")
     ext.add_argument("--force", action="store_true", help="overwrite existing output files")
     ext.set_defaults(handler=_extract)
@@ -130,7 +132,14 @@ def _extract(args) -> int:
         raise ExportError(f"cannot tell the format of {out}: use one of {', '.join(SPECTRUM_EXTENSIONS)}")
     if not args.each and out.exists() and not args.force:
         raise ExportError(f"{out} already exists; pass --force to overwrite it, or choose another name")
+    response = None
+    if args.response:
+        from ..analysis.response import apply_response, load_response
+
+        response = load_response(args.response)  # checked before any frame is read
     result = extract_frames(args.frames, args.calibration, dark=args.dark, each=args.each, extraction=args.extraction)
+    if response is not None:
+        result = [apply_response(s, response) for s in result] if args.each else apply_response(result, response)
     if not args.each:
         path = _write(result, out, force=args.force)
         print(f"wrote {path} ({result.size} columns, {result.wavelength_nm[0]:.1f}-{result.wavelength_nm[-1]:.1f} nm)")
