@@ -299,6 +299,8 @@ def jsonable(value: Any, *, name: str = "value") -> Any:
 def hash_file(path, *, algorithm: str = "sha256") -> str:
     """Hex digest of a file's bytes (SHA-256 by default)."""
     digest = hashlib.new(algorithm)
+    if Path(path).exists() and not Path(path).is_file():  # a pipe would block, a device never end
+        raise FileFormatError(f"cannot hash {path}: it is not a regular file (a pipe, socket or device)")
     try:
         with open(path, "rb") as handle:
             for block in iter(lambda: handle.read(1 << 20), b""):

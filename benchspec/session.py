@@ -220,6 +220,8 @@ def _encode_frame(frame) -> tuple[bytes, str]:
 
 
 def _decode_frame(path: Path):
+    if path.exists() and not path.is_file():  # a pipe would block, a device never end
+        raise FileFormatError(f"{path} is not a regular file (a pipe, socket or device); the capture is damaged")
     if path.suffix.lower() == ".npy":
         try:
             with open(path, "rb") as handle:
