@@ -549,7 +549,9 @@ def _session_copy_with(path: Path, relative: str) -> Path:
     shutil.copytree(_session_template(), folder)
     target = folder / relative.format(capture=_session_samples()["capture_id"])
     target.unlink()
-    if path.stat().st_size > 4 * 2**20:
+    if not path.is_file():  # a pipe or a device: put the same thing in the session
+        os.symlink(os.path.realpath(path), target)
+    elif path.stat().st_size > 4 * 2**20:
         os.link(path, target)  # keeps a sparse file sparse
     else:
         target.write_bytes(path.read_bytes())

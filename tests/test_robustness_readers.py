@@ -159,3 +159,46 @@ def test_nan_never_reaches_a_spectrum(tmp_path):
         for name in ("intensity", "uncertainty", "pixel", "wavelength_nm"):
             values = getattr(spectrum, name)
             assert values is None or np.all(np.isfinite(values)), (case.id, name)
+
+
+# --------------------------------------------------------------------------- pipes and devices
+
+
+def _read_in_thread(reader, path, *, timeout_s=20.0):
+    """Run the reader in a thread; return its outcome, or 'hung' if it is still blocked after the timeout."""
+    import threading
+
+    result = {}
+
+    def target():
+        result["outcome"] = fuzz.classify(reader, path)
+
+    thread = threading.Thread(target=target, daemon=True)
+    thread.start()
+    thread.join(timeout_s)
+    if thread.is_alive():
+        return None
+    return result["outcome"]
+
+
+@pytest.mark.parametrize("reader", list(READERS.values()), ids=list(READERS))
+def test_pipe_behind_a_file_name_is_refused_not_waited_on(tmp_path, reader):
+    """A named pipe with a spectrum's name must not block the program (nobody will ever write to it)."""
+    path = tmp_path / f"pipe{reader.suffix}"
+    os.mkfifo(path)
+    outcome = _read_in_thread(reader, path)
+    if outcome is None:  # unblock the reader before failing
+        with open(path, "wb"):
+            pass
+        pytest.fail(f"{reader.name} blocked on a named pipe")
+    assert outcome.kind == "refused", outcome
+
+
+@pytest.mark.parametrize("reader", [r for r in READERS.values() if r.text], ids=[n for n, r in READERS.items() if r.text])
+def test_endless_device_is_refused(tmp_path, reader):
+    """/dev/zero behind a file name: refused, never read to the end (it has none)."""
+    path = tmp_path / f"zeros{reader.suffix}"
+    path.symlink_to("/dev/zero")
+    outcome = _read_in_thread(reader, path)
+    assert outcome is not None, f"{reader.name} kept reading /dev/zero"
+    assert outcome.kind == "refused", outcome
