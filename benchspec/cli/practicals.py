@@ -145,6 +145,7 @@ def register(subparsers) -> None:
     source.add_argument("--temperature", type=float, metavar="K", help="lamp colour temperature in kelvin (halogen ~2800-3200)")
     source.add_argument("--daylight", action="store_true", help="the lamp is daylight from a white card (rough; CIE D65 reference)")
     p.add_argument("--calibration", metavar="CAL.json", help="wavelength calibration for frames")
+    p.add_argument("--dark", nargs="+", metavar="DARK", help="dark frames, subtracted before extraction (with frames)")
     p.add_argument("--smoothing", type=float, metavar="NM", help="smoothing window in nm (default 10, daylight 30)")
     p.add_argument("--min-signal", type=float, default=0.05, metavar="FRACTION",
                    help="samples below this fraction of the peak are invalid (default 0.05)")
@@ -268,7 +269,7 @@ def _run_response(args) -> int:
     from ..analysis.response import compute_response, save_response
 
     _caution("daylight" if args.daylight else "halogen")
-    lamp = _load_inputs(args.lamp, calibration=args.calibration, what="lamp")
+    lamp = _load_inputs(args.lamp, calibration=args.calibration, what="lamp", dark_frames=args.dark)
     response = compute_response(
         lamp,
         reference="daylight" if args.daylight else "planck",
