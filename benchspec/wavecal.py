@@ -667,11 +667,17 @@ def _robust_fit(t, lam, sigma, *, max_order, monotonic_t):
     for _ in range(max(1, n // 3)):
         if best is None or keep.sum() <= best[4] + 2:
             break
-        coeffs = best[1]
+        coeffs, order = best[1], best[4]
         z = (lam - np.polynomial.polynomial.polyval(t, coeffs)) / sigma
+        # Leave-one-out residuals r / (1 - h): a line the polynomial bends to reach (typically an
+        # end line assigned to the wrong reference) stands out although its own residual is small.
+        vander = np.stack([t**k for k in range(order + 1)], axis=-1) / sigma[:, None]
+        inverse = np.linalg.pinv(vander[keep].T @ vander[keep])
+        leverage = np.clip(np.einsum("ij,jk,ik->i", vander, inverse, vander), 0.0, 0.99)
+        z_loo = np.where(keep, z / (1.0 - leverage), z)
         spread = max(1.0, 1.4826 * float(np.median(np.abs(z[keep] - np.median(z[keep])))))
-        worst = int(np.argmax(np.where(keep, np.abs(z), -1)))
-        if not (abs(z[worst]) > 4.0 * spread and abs(z[worst]) > 4.0):
+        worst = int(np.argmax(np.where(keep, np.abs(z_loo), -1)))
+        if not (abs(z_loo[worst]) > 5.0 * spread and abs(z_loo[worst]) > 5.0):
             break
         trial = keep.copy()
         trial[worst] = False
