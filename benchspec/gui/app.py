@@ -779,6 +779,8 @@ class Viewer:
         self._show_clipping(result)
         self.stats.draw_time_s += time.perf_counter() - started
         self.stats.note_shown(time.perf_counter())
+        if self.stats.frames_shown == 30:
+            _freeze_heap()  # what the first frames created (geometry, extractor, plot) lives on too
         if self.worker is not None and self.worker.last_frame is not None:
             self.last_frame_image = self.worker.last_frame.image
 
