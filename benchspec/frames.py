@@ -416,11 +416,26 @@ def iter_frames(sources, *, max_frames: int | None = None, max_pixels: int = MAX
     Only one decoded frame is alive at a time. See :func:`expand_sources`
     for what ``sources`` accepts and :func:`read_image` for the frames.
     """
-    for _, frame in _iter_frames_with_files(expand_sources(sources), max_frames=max_frames, max_pixels=max_pixels):
+    for _, frame in _iter_frames_unchecked(expand_sources(sources), max_frames=max_frames, max_pixels=max_pixels):
         yield frame
 
 
 def _iter_frames_with_files(files: Sequence[Path], *, max_frames, max_pixels, hashes: dict | None = None):
+    first: list = []  # (path, shape, dtype) of the first frame, to name the file that differs
+
+    for path, frame in _iter_frames_unchecked(files, max_frames=max_frames, max_pixels=max_pixels, hashes=hashes):
+        if not first:
+            first.append((path, frame.shape[:2], frame.dtype))
+        elif frame.shape[:2] != first[0][1] or frame.dtype != first[0][2]:
+            (h0, w0), (h, w) = first[0][1], frame.shape[:2]
+            raise FrameError(
+                f"{_display(path)} is {w}x{h} px, {frame.dtype}, but {_display(first[0][0])} is {w0}x{h0} px, "
+                f"{first[0][2]}; stack frames from one camera setting only"
+            )
+        yield path, frame
+
+
+def _iter_frames_unchecked(files: Sequence[Path], *, max_frames, max_pixels, hashes: dict | None = None):
     count = 0
     for path in files:
         if max_frames is not None and count >= max_frames:
