@@ -202,3 +202,37 @@ def test_endless_device_is_refused(tmp_path, reader):
     outcome = _read_in_thread(reader, path)
     assert outcome is not None, f"{reader.name} kept reading /dev/zero"
     assert outcome.kind == "refused", outcome
+
+
+# --------------------------------------------------------------------------- folders with one bad file
+
+
+def test_folder_with_one_bad_frame_names_it(tmp_path):
+    import cv2
+
+    folder = tmp_path / "séance 2"
+    folder.mkdir()
+    good = cv2.imencode(".png", fuzz._test_frame()[:, :, ::-1])[1].tobytes()
+    for name in ("frame 1.png", "frame 2.png", "frame 4.png"):
+        (folder / name).write_bytes(good)
+    (folder / "frame 3.png").write_bytes(good[: len(good) // 2])  # copied while still being written
+    with pytest.raises(FileFormatError, match="frame 3.png"):
+        frames.load_stack(folder)
+    # the live folder source skips it, says so, and plays the others
+    source = sources.FolderSource(folder)
+    shapes = [f.image.shape for f in source]
+    assert len(shapes) == 3
+    assert any("frame 3.png" in note for note in source.info.notes)
+
+
+def test_folder_with_frames_of_two_sizes_names_both(tmp_path):
+    import cv2
+
+    folder = tmp_path / "mixed"
+    folder.mkdir()
+    (folder / "a.png").write_bytes(cv2.imencode(".png", fuzz._test_frame())[1].tobytes())
+    (folder / "b.png").write_bytes(cv2.imencode(".png", fuzz._test_frame(width=128))[1].tobytes())
+    with pytest.raises(FrameError) as info:
+        frames.load_stack(folder)
+    message = str(info.value)
+    assert "b.png is 128x64" in message and "a.png is 96x64" in message
