@@ -50,6 +50,7 @@ COMMANDS = [
     ("simulate", "bench-json", ["simulate", "--bench", "{bad}", "--out", "{out}/frame.png"]),
     ("metrics", "response-json", ["metrics", "{spectrum}", "--response", "{bad}", "--plot", "{out}/metrics.png"]),
     ("session", "session-manifest", ["session", "list", "{session}"]),
+    ("extract", "response-json", ["extract", "{frame}", "--calibration", "{cal}", "--response", "{bad}", "--out", "{out}/spectrum.csv"]),
     ("report", "calibration-json", ["report", "{spectrum}", "--calibration", "{bad}", "--out", "{out}/report.pdf"]),
     ("session", "calibration-json", ["session", "add", "{out}/log", "--spectrum", "{spectrum}", "--calibration", "{bad}"]),
 ]
