@@ -441,3 +441,13 @@ def test_lens_cap_on_says_no_band_and_keeps_running(make_viewer, rng):
     viewer.buttons["calibrate"].invoke()
     _wait(viewer.root, lambda: "calibrate:" in _log(viewer), timeout=20, what="calibration refused")
     assert viewer.calibration is None and viewer.worker.running
+
+
+def test_perf_measurement_runs(xdisplay, tmp_path):
+    # a smoke run of the shipped measurement: it must work; its figures are reported, not asserted
+    from benchspec.gui.perf import measure_viewer, write_test_video
+
+    video = write_test_video(tmp_path / "clip.avi", frames=12)
+    result = measure_viewer(video, seconds=0.5, calibrate=False, settle_s=0.0)
+    assert result["frame_size"] == "1280x720" and result["frames_read"] > 0
+    assert {"frames_shown_per_s", "worst_block_ms", "p99_block_ms", "median_processing_ms"} <= set(result)

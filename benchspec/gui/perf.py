@@ -77,7 +77,7 @@ def _ensure_display() -> subprocess.Popen | None:
 
 
 def measure_viewer(video=None, *, seconds: float = 10.0, calibrate: bool = True, lamp: str = "cfl",
-                   size: str = "1024x768", screenshot: str | None = None) -> dict:
+                   size: str = "1024x768", screenshot: str | None = None, settle_s: float = 1.0) -> dict:
     """Run the viewer on a looped, paced video and measure it (see the module notes).
 
     Returns
@@ -121,7 +121,7 @@ def measure_viewer(video=None, *, seconds: float = 10.0, calibrate: bool = True,
             calibrated = pump_until(lambda: viewer.calibration is not None or "calibrate:" in " ".join(viewer.log_lines), 20.0)
             calibrated = calibrated and viewer.calibration is not None
             pump_until(lambda: viewer.last_result is not None and viewer.last_result.axis_is_wavelength, 5.0)
-        pump_until(lambda: False, 1.0)  # settle
+        pump_until(lambda: False, settle_s)  # let start-up work finish before counting
 
         gaps: list[float] = []
         beat = {"last": None}
