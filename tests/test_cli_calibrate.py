@@ -1,0 +1,130 @@
+"""``benchspec calibrate``, ``extract`` and ``lines``: outputs, formats and bad inputs (exit 2, one line, no file)."""
+
+import csv
+import json
+
+import cv2
+import numpy as np
+import pytest
+
+from benchspec import simulate
+from benchspec.cli import main
+
+BENCH = simulate.Bench().with_(
+    camera={"width_px": 960, "height_px": 540, "horizontal_fov_deg": 45.0, "rotation_deg": -5.0},
+    slit={"height_px": 120.0},
+)
+
+
+@pytest.fixture(scope="module")
+def frames(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("frames")
+    for name, seed in (("cfl", 1), ("hg", 2), ("ne", 3)):
+        rendered = simulate.render(BENCH.with_(source={"kind": "lamp", "name": name}), seed=seed)
+        simulate.write_frame(rendered, folder / f"{name}.png")
+    small = simulate.render(BENCH.with_(camera={"width_px": 640, "height_px": 360}), seed=4)
+    simulate.write_frame(small, folder / "small.png")
+    cv2.imwrite(str(folder / "black.png"), np.zeros((540, 960), np.uint8))
+    (folder / "truncated.png").write_bytes((folder / "cfl.png").read_bytes()[:2000])
+    (folder / "broken.mp4").write_bytes(b"\x00\x00\x00\x18ftypmp42 not really a video")
+    return folder
+
+
+@pytest.fixture(scope="module")
+def cal_file(frames, tmp_path_factory):
+    out = tmp_path_factory.mktemp("cal") / "bench.json"
+    assert main(["calibrate", str(frames / "cfl.png"), "--lamp", "cfl", "--out", str(out)]) == 0
+    return out
+
+
+def run(capsys, *argv):
+    code = main(list(argv))
+    captured = capsys.readouterr()
+    return code, captured.out, captured.err
+
+
+def test_calibrate_prints_table_rms_and_verdict(cal_file):
+    data = json.loads(cal_file.read_text())
+    assert data["schema"] == "benchspec.calibration/1"
+    assert data["frames"][0]["sha256"] and data["frames"][0]["lamp"] == "cfl"
+
+
+def test_calibrate_output(capsys, frames, tmp_path):
+    out = tmp_path / "again.json"
+    code, stdout, _ = run(capsys, "calibrate", str(frames / "cfl.png"), "--out", str(out), "--hint-lines-per-mm", "1000")
+    assert code == 0
+    assert "reference_nm" in stdout and "RMS" in stdout and "verdict:" in stdout and "435.833" in stdout
+    assert out.exists()
+
+
+def test_extract_writes_the_contract_csv(capsys, frames, cal_file, tmp_path):
+    out = tmp_path / "hg.csv"
+    code, stdout, _ = run(capsys, "extract", str(frames / "hg.png"), "--calibration", str(cal_file), "--out", str(out))
+    assert code == 0
+    text = out.read_text().splitlines()
+    body = [line for line in text if not line.startswith("#")]
+    header = body[0].split(",")
+    assert header[:4] == ["wavelength_nm", "intensity", "uncertainty", "saturated"]
+    rows = list(csv.reader(body[1:]))
+    wavelength = np.array([float(r[0]) for r in rows])
+    assert np.all(np.diff(wavelength) > 0)
+    assert any("sha256" in line for line in text if line.startswith("#"))
+
+
+def test_extract_each_writes_a_series(capsys, frames, cal_file, tmp_path):
+    out = tmp_path / "series.csv"
+    code, stdout, _ = run(capsys, "extract", str(frames / "hg.png"), str(frames / "ne.png"), "--calibration",
+                          str(cal_file), "--each", "--out", str(out))
+    assert code == 0
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["series_0000.csv", "series_0001.csv"]
+
+
+def test_lines_table_and_json(capsys, frames, cal_file, tmp_path):
+    spec = tmp_path / "hg.csv"
+    assert main(["extract", str(frames / "hg.png"), "--calibration", str(cal_file), "--out", str(spec)]) == 0
+    capsys.readouterr()
+    code, stdout, _ = run(capsys, "lines", str(spec))
+    assert code == 0 and "centre_nm" in stdout and "emission lines" in stdout
+    code, stdout, _ = run(capsys, "lines", str(spec), "--json")
+    lines = json.loads(stdout)["lines"]
+    centres = np.array([l["centre_nm"] for l in lines])
+    assert np.min(np.abs(centres - 546.075)) < 1.0  # Hg I green line, NIST ASD air wavelength
+    code, stdout, _ = run(capsys, "lines", str(spec), "--absorption")
+    assert code == 0 and "absorption lines" in stdout
+
+
+@pytest.mark.parametrize(
+    "args, message",
+    [
+        (["calibrate", "{f}/black.png", "--out", "{t}/x.json"], "black"),
+        (["calibrate", "{f}/truncated.png", "--out", "{t}/x.json"], "truncated"),
+        (["calibrate", "{f}/broken.mp4", "--out", "{t}/x.json"], "video|read|open"),
+        (["calibrate", "{f}/cfl.png", "--lamp", "zz", "--out", "{t}/x.json"], "unknown lamp 'zz'"),
+        (["calibrate", "{f}/ne.png", "--lamp", "hg", "--out", "{t}/x.json"], "lamp 'hg'"),
+        (["calibrate", "{f}/cfl.png", "--pair", "12", "--out", "{t}/x.json"], "PIXEL=NM"),
+        (["calibrate", "{f}/missing.png", "--out", "{t}/x.json"], "does not exist|missing"),
+        (["extract", "{f}/small.png", "--calibration", "{c}", "--out", "{t}/x.csv"], "640x360"),
+        (["extract", "{f}/hg.png", "--calibration", "{f}/cfl.png", "--out", "{t}/x.csv"], "calibration file|image"),
+        (["extract", "{f}/hg.png", "--calibration", "{c}", "--out", "{t}/x.xyz"], "format"),
+    ],
+)
+def test_bad_input_is_one_line_exit_2_and_no_file(capsys, frames, cal_file, tmp_path, args, message):
+    argv = [a.format(f=frames, t=tmp_path, c=cal_file) for a in args]
+    code, stdout, stderr = run(capsys, *argv)
+    assert code == 2
+    assert len(stderr.strip().splitlines()) == 1 and "Traceback" not in stderr
+    import re
+
+    assert re.search(message, stderr), stderr
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_existing_output_is_not_overwritten(capsys, frames, cal_file, tmp_path):
+    out = tmp_path / "cal.json"
+    out.write_text("keep")
+    code, _, stderr = run(capsys, "calibrate", str(frames / "cfl.png"), "--out", str(out))
+    assert code == 2 and "--force" in stderr and out.read_text() == "keep"
+    spec = tmp_path / "s.csv"
+    spec.write_text("keep")
+    code, _, stderr = run(capsys, "extract", str(frames / "hg.png"), "--calibration", str(cal_file), "--out", str(spec))
+    assert code == 2 and spec.read_text() == "keep"
