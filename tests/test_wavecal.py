@@ -81,8 +81,8 @@ def test_missing_and_extra_lines(rng):
 
 
 def test_neon_dense_line_list(rng):
-    spectrum, truth = render(species_lines("Ne"), rng=rng, nm_per_px=0.25, centre_nm=620.0, peak_counts=5000,
-                             n_pixels=1280)
+    spectrum, truth = render(species_lines("Ne"), rng=rng, nm_per_px=0.4, centre_nm=620.0, peak_counts=5000,
+                             n_pixels=960)
     cal = calibrate_spectrum(spectrum, lamp="ne")
     check_solution(cal, truth, spectrum)
     assert cal.n_used >= 10
