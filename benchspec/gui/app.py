@@ -374,6 +374,9 @@ class Viewer:
         pages.add(self._build_fit_page(pages), text="Wavelength fit")
         pages.add(self._build_species_page(pages), text="Species")
         pages.add(self._build_log_page(pages), text="Log")
+        from .practicals import attach_to_viewer  # the lab practicals page (adds itself as the last tab)
+
+        self.practicals = attach_to_viewer(self, pages)
 
         # -- bench bar
         bar = ttk.Frame(root, padding=(6, 4))

@@ -1,0 +1,815 @@
+"""The viewer's Practicals page: response, absorbance, Rydberg, LED/laser figures, daylight lines.
+
+Layout (our own)::
+
+    +-----------------------------------------+
+    | ( ) Response  ( ) Absorbance ( ) Rydberg |  which practical
+    | ( ) LED/laser ( ) Daylight               |
+    | cautions of the light source involved    |
+    | controls of the chosen practical         |
+    | result text (numbers with uncertainties) |
+    | figure (benchspec.analysis.plots)        |
+    | one-line message                         |
+    +-----------------------------------------+
+
+:class:`PracticalsPanel` knows nothing of the window around it. It is given a
+callable that returns the current calibrated spectrum (or None), a callable
+that reports messages to the window and its log, and optionally a way to run
+jobs on the window's processing thread. Every number comes from one core call
+in :mod:`benchspec.analysis`; every figure from :mod:`benchspec.analysis.plots`.
+The Tk thread only draws: spectra are extracted, results computed and figures
+built in the job; figures are rendered by :class:`~benchspec.gui.canvas.ThreadedCanvas`.
+
+:func:`attach_to_viewer` adds the page to the bench viewer's notebook.
+"""
+
+from __future__ import annotations
+
+import itertools
+import logging
+import traceback
+import tkinter as tk
+import warnings
+from concurrent.futures import Future, ThreadPoolExecutor
+from dataclasses import dataclass, field
+from tkinter import ttk
+from typing import Any, Callable
+
+import numpy as np
+
+from matplotlib.backend_bases import FigureCanvasBase
+
+from ..errors import AnalysisError, BenchspecError, InputError
+from ..safety import GENERAL_CAUTION, cautions_for
+from ..spectrum import Spectrum
+from .canvas import ThreadedCanvas
+from .colours import PALETTE
+
+__all__ = [
+    "PRACTICALS",
+    "PracticalOutcome",
+    "PracticalsPanel",
+    "attach_to_viewer",
+    "absorbance_peak",
+    "parse_temperature_k",
+]
+
+log = logging.getLogger("benchspec.viewer")
+
+#: key -> (short name on the chooser, title, light-source type whose cautions apply)
+PRACTICALS: dict[str, tuple[str, str, str]] = {
+    "response": ("Response", "Instrument response from a halogen lamp", "halogen"),
+    "absorbance": ("Absorbance", "Absorbance of a sample against a blank", "halogen"),
+    "rydberg": ("Rydberg", "Rydberg constant from a hydrogen tube", "discharge"),
+    "source": ("LED / laser", "Figures of an LED, lamp or laser", "led"),
+    "daylight": ("Daylight", "Dark lines of daylight", "daylight"),
+}
+
+_NOT_A_LASER = "(not a laser)"
+_NO_SPECTRUM = ("no calibrated spectrum yet: point the camera at the source, calibrate (c) or load a "
+                "calibration, then try again")
+
+
+@dataclass(frozen=True)
+class PracticalOutcome:
+    """What one practical job hands back to the Tk thread."""
+
+    request: int
+    practical: str
+    action: str
+    ok: bool
+    text: str                          # the result, or the one-line error
+    figure: Any = None                 # matplotlib Figure, built off the Tk thread
+    value: Any = None                  # the core's own result
+    warnings: tuple[str, ...] = ()
+    keep: dict = field(default_factory=dict)   # state to keep: "response", "blank", ...
+    figure_factory: Callable[[], Any] | None = None   # builds the figure again (the larger window)
+
+
+# --------------------------------------------------------------------------- plain helpers (no Tk)
+
+
+def parse_temperature_k(text: str) -> float:
+    """The lamp colour temperature typed in the entry, in kelvin; InputError naming the value otherwise."""
+    try:
+        value = float(str(text).strip().replace(",", "."))
+    except ValueError:
+        raise InputError(f"the lamp temperature must be a number in kelvin (e.g. 2900), got {text!r}") from None
+    if not np.isfinite(value):
+        raise InputError(f"the lamp temperature must be a finite number of kelvin, got {text!r}")
+    return value
+
+
+def absorbance_peak(result) -> tuple[float, float, float, float] | None:
+    """(wavelength_nm, absorbance, uncertainty, largest measurable) at the highest measurable absorbance.
+
+    Only valid samples below the setup's measurable limit count; None when
+    there is none.
+    """
+    usable = result.valid & np.isfinite(result.absorbance) & ~result.beyond_measurable
+    if not np.any(usable):
+        return None
+    index = np.flatnonzero(usable)[int(np.argmax(result.absorbance[usable]))]
+    return (float(result.wavelength_nm[index]), float(result.absorbance[index]),
+            float(result.absorbance_uncertainty[index]), float(result.max_measurable_absorbance[index]))
+
+
+def _range_text(spectrum: Spectrum) -> str:
+    wl = spectrum.wavelength_nm
+    return f"{spectrum.size} samples, {wl[0]:.0f}-{wl[-1]:.0f} nm"
+
+
+def _or_na(value, fmt: str, unc=None, unit: str = "") -> str:
+    if value is None:
+        return "n/a"
+    text = format(value, fmt)
+    if unc is not None:
+        text += " ± " + format(unc, fmt)
+    return text + unit
+
+
+def describe_response(response) -> str:
+    low, high = response.valid_range_nm
+    ref = (f"Planck at {response.temperature_k:.0f} K" if response.reference == "planck"
+           else "daylight (CIE D65)")
+    valid = int(np.count_nonzero(response.valid))
+    return (f"Response from {ref}: valid {low:.0f}-{high:.0f} nm ({valid} samples), "
+            f"smoothed over {response.smoothing_nm:g} nm.\n"
+            "Apply it to spectra taken with the same camera settings.")
+
+
+def describe_corrected(corrected: Spectrum) -> str:
+    y = corrected.intensity
+    peak = int(np.nanargmax(y))
+    return (f"Corrected spectrum: {_range_text(corrected)}; relative spectral power peaks at "
+            f"{corrected.wavelength_nm[peak]:.1f} nm.")
+
+
+def describe_blank(blank: Spectrum) -> str:
+    y = blank.intensity
+    peak = int(np.nanargmax(y))
+    return (f"Blank kept: {_range_text(blank)}, brightest at {blank.wavelength_nm[peak]:.0f} nm.\n"
+            "Now put the sample in the same place and press Measure sample.")
+
+
+def describe_absorbance(result) -> str:
+    lines = []
+    peak = absorbance_peak(result)
+    if peak is None:
+        lines.append("No measurable absorbance: every valid sample is beyond what this setup can measure.")
+    else:
+        wl, a, da, limit = peak
+        lines.append(f"Absorbance peak A = {a:.3f} ± {da:.3f} at {wl:.1f} nm "
+                     f"(T = {10 ** -a:.3f}; this setup measures up to A ≈ {limit:.1f} there).")
+    lines.append(f"Stray light {100 * result.stray_light_fraction:.3g}% of the blank's peak "
+                 f"({result.stray_light_source}).")
+    beyond = result.beyond_measurable
+    if np.any(beyond):
+        wl = result.wavelength_nm[beyond]
+        lines.append(f"STRAY-LIGHT WARNING: at {int(np.count_nonzero(beyond))} samples ({wl.min():.0f}-{wl.max():.0f} nm) "
+                     "the absorbance is beyond what this setup can measure; dilute the sample or use a shorter path.")
+    return "\n".join(lines)
+
+
+def describe_rydberg(result) -> str:
+    lines = [f"R_H = {result.rydberg_per_m:.6e} ± {result.uncertainty_per_m:.1e} /m"
+             + (" (scaled by the Birge ratio)" if result.scaled else ""),
+             f"CODATA R_inf/(1+m_e/m_p) = {result.codata_rydberg_per_m:.6e} /m: "
+             f"{result.difference_sigma:+.1f} sigma ({100 * result.relative_difference:+.3f}%)",
+             f"{len(result.lines)} Balmer lines (air -> vacuum by {result.air_to_vacuum}):"]
+    for line in result.lines:
+        lines.append(f"  {line.name:8s} {line.upper_level}->2  {line.air_wavelength_nm:.2f} air  "
+                     f"{line.vacuum_wavelength_nm:.2f} vac  {line.residual_nm:+.2f} nm")
+    return "\n".join(lines)
+
+
+def describe_metrics(m) -> str:
+    lines = [f"Peak {m.peak_nm:.2f} ± {m.peak_uncertainty_nm:.2f} nm; centroid {m.centroid_nm:.2f} ± "
+             f"{m.centroid_uncertainty_nm:.2f} nm",
+             "FWHM " + _or_na(m.fwhm_nm, ".2f", m.fwhm_uncertainty_nm, " nm")
+             + (" (resolution-limited)" if m.fwhm_resolution_limited else ""),
+             "Dominant wavelength " + _or_na(m.dominant_wavelength_nm, ".1f", None, " nm")
+             + (" (complementary)" if m.complementary_wavelength else "") + " against white E",
+             f"CIE 1931 x = {m.cie_x:.4f} ± {m.cie_x_uncertainty:.4f}, y = {m.cie_y:.4f} ± {m.cie_y_uncertainty:.4f}",
+             ("CCT " + _or_na(m.cct_k, ".0f", m.cct_uncertainty_k, " K") + ", Duv " + _or_na(m.duv, "+.4f", m.duv_uncertainty)
+              + (f" ({m.cct_method})" if m.cct_method else "")) if m.is_white else "CCT, Duv: n/a (not a white source)"]
+    if m.laser is not None:
+        check = m.laser
+        verdict = "within" if check.within_tolerance else "OUTSIDE"
+        lines.append(f"Laser {check.label}: {check.measured_nm:.2f} ± {check.measured_uncertainty_nm:.2f} nm, "
+                     f"{check.offset_nm:+.2f} nm from nominal {check.nominal_nm:g} nm ({verdict} ±{check.tolerance_nm:g} nm)")
+    return "\n".join(lines)
+
+
+def describe_daylight(result) -> str:
+    found = result.identified
+    lines = [f"{len(found)} dark lines labelled, {len(result.lines) - len(found)} dips unlabelled:"]
+    for line in found:
+        where = "our atmosphere" if line.atmospheric else "the Sun"
+        lines.append(f"  {line.label:6s} {line.wavelength_nm:7.2f} ± {line.uncertainty_nm:.2f} nm  "
+                     f"{line.species} ({where})")
+    if result.missing_labels:
+        lines.append("Not found: " + ", ".join(result.missing_labels))
+    return "\n".join(lines)
+
+
+def _without_colour_fill(figure):
+    """The viewer shows no colour fill under a curve: drop the image a figure clipped to its curve."""
+    for ax in figure.axes:
+        for image in list(ax.images):
+            image.remove()
+    return figure
+
+
+# --------------------------------------------------------------------------- the panel
+
+
+class PracticalsPanel(ttk.Frame):
+    """A Tk page with the lab practicals on the current calibrated spectrum.
+
+    Parameters
+    ----------
+    parent : tk widget
+    current_spectrum : callable
+        ``current_spectrum() -> Spectrum or None``: the calibrated spectrum on
+        screen. It is called inside the job, off the Tk thread (it may
+        extract a spectrum from frames), and must not touch Tk widgets.
+    report : callable, optional
+        ``report(text, level="info"|"warning"|"error")``, called on the Tk
+        thread: the window's message strip and log.
+    submit : callable, optional
+        ``submit(job) -> bool`` runs ``job()`` on the window's processing
+        thread and, when it returns True, the window later passes the job's
+        return value to :meth:`deliver` on the Tk thread. Without it (or when
+        it returns False) the panel runs the job on a thread of its own.
+    ask_save_path, ask_open_path : callable, optional
+        File dialogs for saving and loading a response, replaceable in tests:
+        ``ask_save_path(parent, title, default_name, filetypes)`` and
+        ``ask_open_path(parent, title, filetypes, folder=False)``, each
+        returning a path or None.
+    lasers : sequence of benchspec.refdata.Laser, optional
+        The lasers offered for the laser check (default
+        :func:`benchspec.refdata.load_lasers`).
+    """
+
+    def __init__(self, parent, *, current_spectrum: Callable[[], Spectrum | None],
+                 report: Callable[..., None] | None = None, submit: Callable[[Callable[[], Any]], bool] | None = None,
+                 ask_save_path: Callable | None = None, ask_open_path: Callable | None = None,
+                 lasers=None, poll_ms: int = 40):
+        super().__init__(parent, padding=4)
+        self.current_spectrum = current_spectrum
+        self._report = report
+        self._submit = submit
+        self.ask_save_path = ask_save_path or _ask_save_path
+        self.ask_open_path = ask_open_path or _ask_open_path
+        if lasers is None:
+            from ..refdata import load_lasers
+
+            lasers = load_lasers()
+        self.lasers = {f"{l.name} ({l.nominal_nm:g} ± {l.tolerance_nm:g} nm)": l for l in lasers}
+        self.poll_ms = int(poll_ms)
+        self._executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="benchspec-practicals")
+        self._render_executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="benchspec-practicals-plot")
+        self._own_jobs: list[Future] = []
+        self._requests = itertools.count(1)
+        self._latest: dict[str, int] = {}       # practical -> newest request id (older answers are dropped)
+        self.pending: set[int] = set()
+        self.response = None                     # SpectralResponse in use
+        self.blank: Spectrum | None = None
+        self.results: dict[str, Any] = {}        # practical -> the core result shown
+        self.last_outcome: PracticalOutcome | None = None
+        self.messages: list[str] = []
+        self.canvas: ThreadedCanvas | None = None
+        self.large_canvas: ThreadedCanvas | None = None
+        self.large_window: tk.Toplevel | None = None
+        self._figure_factory = None
+        self._after = None
+        self._closed = False
+        self.buttons: dict[str, ttk.Button] = {}
+        self._build()
+        self.choose("response", announce=False)
+        self.bind("<Destroy>", self._on_destroy, add="+")
+        self._after = self.after(self.poll_ms, self._poll)
+
+    # ------------------------------------------------------------------ building
+    def _build(self) -> None:
+        p = PALETTE
+        style = ttk.Style(self)
+        style.configure("PracticalCaution.TLabel", background=p["warning_light"], foreground=p["ink"],
+                        font=("TkDefaultFont", 8), padding=(5, 3))
+        style.configure("PracticalNote.TLabel", foreground=p["muted"], font=("TkDefaultFont", 9))
+        style.configure("PracticalHint.TLabel", font=("TkDefaultFont", 9))
+        style.configure("PracticalRadio.TRadiobutton", font=("TkDefaultFont", 9))
+        self.columnconfigure(0, weight=1)
+        self.rowconfigure(4, weight=1)
+
+        chooser = ttk.Frame(self)
+        chooser.grid(row=0, column=0, sticky="ew")
+        self.practical = tk.StringVar(value="response")
+        self.radios: dict[str, ttk.Radiobutton] = {}
+        for index, (key, (short, _title, _light)) in enumerate(PRACTICALS.items()):
+            radio = ttk.Radiobutton(chooser, text=short, value=key, variable=self.practical,
+                                    style="PracticalRadio.TRadiobutton", command=lambda k=key: self.choose(k))
+            radio.grid(row=index // 3, column=index % 3, sticky="w", padx=(0, 6))
+            self.radios[key] = radio
+
+        self._wrapped: list[ttk.Label] = []
+        self.caution = ttk.Label(self, text="", style="PracticalCaution.TLabel", wraplength=285, justify="left")
+        self._wrapped.append(self.caution)
+        self.caution.grid(row=1, column=0, sticky="ew", pady=(3, 3))
+
+        self.controls = ttk.Frame(self)
+        self.controls.grid(row=2, column=0, sticky="ew")
+        self.controls.columnconfigure(0, weight=1)
+        self.pages = {key: builder(self.controls) for key, builder in (
+            ("response", self._build_response), ("absorbance", self._build_absorbance),
+            ("rydberg", self._build_rydberg), ("source", self._build_source), ("daylight", self._build_daylight))}
+
+        self.result_text = tk.Text(self, height=6, wrap="word", background="#fbfaf6", foreground=p["ink"],
+                                   relief="flat", font=("TkDefaultFont", 9), width=36)
+        self.result_text.grid(row=3, column=0, sticky="ew", pady=(3, 2))
+        self.result_text.configure(state="disabled")
+
+        self.figure_box = ttk.Frame(self)
+        self.figure_box.grid(row=4, column=0, sticky="nsew")
+        self.figure_box.columnconfigure(0, weight=1)
+        self.figure_box.rowconfigure(0, weight=1)
+        self.figure_note = ttk.Label(self.figure_box, text="the figure of a result appears here",
+                                     style="PracticalNote.TLabel")
+        self.figure_note.grid(row=0, column=0)
+
+        self.figure_buttons = ttk.Frame(self)
+        self.figure_buttons.grid(row=5, column=0, sticky="ew")
+        self.message = ttk.Label(self.figure_buttons, text="", style="PracticalNote.TLabel", wraplength=200,
+                                 justify="left")
+        self.message.grid(row=0, column=0, sticky="w")
+        self.figure_buttons.columnconfigure(0, weight=1)
+        self.buttons["larger"] = ttk.Button(self.figure_buttons, text="Larger figure", command=self.show_larger_figure,
+                                            state="disabled")
+        self.buttons["larger"].grid(row=0, column=1, sticky="e")
+        self.bind("<Configure>", self._on_resize, add="+")
+
+    def _page(self, parent, hint: str) -> ttk.Frame:
+        page = ttk.Frame(parent)
+        page.columnconfigure(3, weight=1)
+        label = ttk.Label(page, text=hint, style="PracticalHint.TLabel", wraplength=285, justify="left")
+        label.grid(row=0, column=0, columnspan=4, sticky="w", pady=(0, 2))
+        self._wrapped.append(label)
+        return page
+
+    def _button(self, page, name: str, text: str, command, row: int, column: int) -> ttk.Button:
+        button = ttk.Button(page, text=text, command=command)
+        button.grid(row=row, column=column, sticky="w", padx=(0, 3), pady=1)
+        self.buttons[name] = button
+        return button
+
+    def _build_response(self, parent) -> ttk.Frame:
+        page = self._page(parent, "Point the camera at a halogen or filament lamp of known colour temperature.")
+        ttk.Label(page, text="Lamp (K)").grid(row=1, column=0, sticky="w")
+        self.temperature = tk.StringVar(value="2900")
+        self.temperature_entry = ttk.Entry(page, textvariable=self.temperature, width=6)
+        self.temperature_entry.grid(row=1, column=1, sticky="w", padx=(2, 4))
+        self._button(page, "response", "Response from this frame", self.measure_response, 1, 2)
+        self._button(page, "apply_response", "Apply response", self.apply_response, 2, 0).grid(columnspan=2)
+        self._button(page, "save_response", "Save…", self.save_response, 2, 2)
+        self._button(page, "load_response", "Load…", self.load_response, 2, 3)
+        self.correct_sources = tk.BooleanVar(value=True)
+        ttk.Checkbutton(page, text="correct LED/laser and daylight spectra with it",
+                        variable=self.correct_sources).grid(row=3, column=0, columnspan=4, sticky="w")
+        return page
+
+    def _build_absorbance(self, parent) -> ttk.Frame:
+        page = self._page(parent, "Blank (solvent) first, then the sample in the same cuvette and place, same exposure. "
+                                  "Take a dark (Dark) before both.")
+        self._button(page, "blank", "Take as blank", self.take_blank, 1, 0)
+        self._button(page, "sample", "Measure sample", self.measure_sample, 1, 1)
+        return page
+
+    def _build_rydberg(self, parent) -> ttk.Frame:
+        page = self._page(parent, "A hydrogen discharge tube in view: the Balmer lines give the Rydberg constant.")
+        self._button(page, "rydberg", "Fit the Rydberg constant", self.measure_rydberg, 1, 0)
+        return page
+
+    def _build_source(self, parent) -> ttk.Frame:
+        page = self._page(parent, "An LED, white lamp or a laser spot on a matte card.")
+        ttk.Label(page, text="Laser").grid(row=1, column=0, sticky="w")
+        self.laser = tk.StringVar(value=_NOT_A_LASER)
+        self.laser_box = ttk.Combobox(page, textvariable=self.laser, state="readonly", width=30,
+                                      values=[_NOT_A_LASER, *self.lasers])
+        self.laser_box.grid(row=1, column=1, columnspan=3, sticky="w", padx=(2, 0))
+        self.laser_box.bind("<<ComboboxSelected>>", lambda event: self._show_cautions(), add="+")
+        self._button(page, "source", "Measure the source", self.measure_source, 2, 0).grid(columnspan=2)
+        return page
+
+    def _build_daylight(self, parent) -> ttk.Frame:
+        page = self._page(parent, "Daylight scattered from a white card or the sky.")
+        self._button(page, "daylight", "Find the dark lines", self.measure_daylight, 1, 0)
+        return page
+
+    # ------------------------------------------------------------------ choosing and cautions
+    def choose(self, key: str, *, announce: bool = True) -> None:
+        """Show the controls of practical ``key`` and the cautions of its light source."""
+        if key not in PRACTICALS:
+            raise InputError(f"unknown practical {key!r}; choose one of: {', '.join(PRACTICALS)}")
+        self.practical.set(key)
+        for name, page in self.pages.items():
+            if name == key:
+                page.grid(row=0, column=0, sticky="ew")
+            else:
+                page.grid_remove()
+        title = self._show_cautions()
+        if announce:
+            self.tell(f"practical: {PRACTICALS[key][1]}; cautions for {title.lower()} shown")
+
+    def light_source(self) -> str:
+        """The light-source type (benchspec.safety) of the chosen practical."""
+        key = self.practical.get()
+        if key == "source" and self.laser.get() in self.lasers:
+            return "laser"
+        return PRACTICALS[key][2]
+
+    def _show_cautions(self) -> str:
+        title, items = cautions_for(self.light_source())
+        self.caution.configure(text=f"Cautions: {title}\n" + "\n".join(f"•  {item}" for item in items)
+                               + "\n" + GENERAL_CAUTION)
+        return title
+
+    def cautions_shown(self) -> str:
+        return self.caution.cget("text")
+
+    # ------------------------------------------------------------------ messages
+    def tell(self, text: str, *, level: str = "info") -> None:
+        """A one-line message in the panel and in the window's log."""
+        self.messages.append(f"{level}: {text}")
+        self.message.configure(text=text, foreground=PALETTE["warning"] if level != "info" else PALETTE["muted"])
+        if self._report is not None:
+            self._report(text, level=level)
+        else:
+            getattr(log, "info" if level == "info" else level)(text)
+
+    # ------------------------------------------------------------------ actions (Tk thread)
+    def measure_response(self) -> None:
+        try:
+            temperature = parse_temperature_k(self.temperature.get())
+        except InputError as exc:
+            self.tell(f"response: {exc}", level="error")
+            return
+
+        def compute(spectrum):
+            from ..analysis.plots import response_figure
+            from ..analysis.response import compute_response
+
+            response = compute_response(spectrum, temperature_k=temperature)
+            return describe_response(response), lambda: response_figure(response), response, {"response": response}
+
+        self._start("response", "response", compute, f"computing the response (Planck, {temperature:g} K)…")
+
+    def apply_response(self) -> None:
+        response = self.response
+        if response is None:
+            self.tell("apply response: no response yet; measure one from a halogen lamp or load a file", level="error")
+            return
+
+        def compute(spectrum):
+            from ..analysis.response import apply_response
+            from ..plots import spectrum_figure
+
+            corrected = apply_response(spectrum, response)
+            return (describe_corrected(corrected), lambda: spectrum_figure(corrected, title="response-corrected"),
+                    corrected, {})
+
+        self._start("response", "apply", compute, "applying the response to the current spectrum…")
+
+    def save_response(self) -> None:
+        response = self.response
+        if response is None:
+            self.tell("save response: no response yet; measure one first", level="error")
+            return
+        path = self.ask_save_path(self.winfo_toplevel(), "Save the response", "response.json", [("Response", "*.json")])
+        if not path:
+            return
+
+        def job():
+            from ..analysis.response import save_response
+
+            written = save_response(response, path, force=True)
+            return f"response saved to {written}"
+
+        self._start_plain("response", "save", job, f"saving the response to {path}…")
+
+    def load_response(self) -> None:
+        path = self.ask_open_path(self.winfo_toplevel(), "Load a response", [("Response", "*.json"), ("All", "*")])
+        if not path:
+            return
+
+        def job():
+            from ..analysis.plots import response_figure
+            from ..analysis.response import load_response
+
+            response = load_response(path)
+            return describe_response(response), lambda: response_figure(response), response, {"response": response}
+
+        self._start_plain("response", "load", job, f"loading the response {path}…", with_result=True)
+
+    def take_blank(self) -> None:
+        def compute(spectrum):
+            from ..plots import spectrum_figure
+
+            return describe_blank(spectrum), lambda: spectrum_figure(spectrum, title="blank"), spectrum, {"blank": spectrum}
+
+        self._start("absorbance", "blank", compute, "taking the current spectrum as the blank…")
+
+    def measure_sample(self) -> None:
+        blank = self.blank
+        if blank is None:
+            self.tell("absorbance: take a blank first (solvent in the cuvette, then Take as blank)", level="error")
+            return
+
+        def compute(sample):
+            from ..analysis.absorbance import absorbance_spectrum
+            from ..analysis.plots import absorbance_figure
+
+            result = absorbance_spectrum(sample, blank=blank)
+            return describe_absorbance(result), lambda: absorbance_figure(result), result, {}
+
+        self._start("absorbance", "sample", compute, "measuring the sample against the blank…")
+
+    def measure_rydberg(self) -> None:
+        def compute(spectrum):
+            from ..analysis.plots import rydberg_figure
+            from ..analysis.rydberg import rydberg_from_spectrum
+
+            result = rydberg_from_spectrum(spectrum)
+            return describe_rydberg(result), lambda: rydberg_figure(result), result, {}
+
+        self._start("rydberg", "rydberg", compute, "finding the Balmer lines…")
+
+    def _correction(self):
+        return self.response if (self.response is not None and self.correct_sources.get()) else None
+
+    def measure_source(self) -> None:
+        laser = self.lasers.get(self.laser.get())
+        response = self._correction()
+
+        def compute(spectrum):
+            from ..analysis.metrics import source_metrics
+            from ..analysis.plots import metrics_figure
+
+            if response is not None:
+                from ..analysis.response import apply_response
+
+                spectrum = apply_response(spectrum, response)
+            options = {}
+            if laser is not None:
+                options = dict(laser_nominal_nm=laser.nominal_nm, laser_tolerance_nm=laser.tolerance_nm,
+                               laser_label=laser.name)
+            metrics = source_metrics(spectrum, **options)
+            text = describe_metrics(metrics)
+            text += "\n(response-corrected)" if response is not None else "\n(not response-corrected: colour figures are approximate)"
+            return text, lambda: _without_colour_fill(metrics_figure(metrics, spectrum)), metrics, {}
+
+        self._start("source", "source", compute, "measuring the source…")
+
+    def measure_daylight(self) -> None:
+        response = self._correction()
+
+        def compute(spectrum):
+            from ..analysis.daylight import identify_daylight_lines
+            from ..analysis.plots import daylight_figure
+
+            if response is not None:
+                from ..analysis.response import apply_response
+
+                spectrum = apply_response(spectrum, response)
+            result = identify_daylight_lines(spectrum)
+            return describe_daylight(result), lambda: daylight_figure(result), result, {}
+
+        self._start("daylight", "daylight", compute, "finding the dark lines of daylight…")
+
+    # ------------------------------------------------------------------ jobs
+    def _start(self, practical: str, action: str, compute, message: str) -> None:
+        """Run ``compute(current spectrum) -> (text, figure, value, keep)`` off the Tk thread."""
+        spectrum_of = self.current_spectrum
+
+        def job():
+            spectrum = spectrum_of()
+            if spectrum is None:
+                raise AnalysisError(_NO_SPECTRUM)
+            if not isinstance(spectrum, Spectrum) or not spectrum.is_calibrated:
+                raise AnalysisError("the spectrum on screen has no wavelength axis: calibrate first (c)")
+            return compute(spectrum)
+
+        self._start_plain(practical, action, job, message, with_result=True)
+
+    def _start_plain(self, practical: str, action: str, work, message: str, *, with_result: bool = False) -> None:
+        request = next(self._requests)
+        self._latest[practical] = request
+        self.pending.add(request)
+
+        def job() -> PracticalOutcome:
+            return _run(request, practical, action, work, with_result)
+
+        self.tell(message)
+        if self._submit is not None and self._submit(job):
+            return
+        self._own_jobs.append(self._executor.submit(job))
+
+    def deliver(self, outcome: PracticalOutcome) -> None:
+        """Show a finished job's outcome (Tk thread)."""
+        if self._closed or not isinstance(outcome, PracticalOutcome):
+            return
+        self.pending.discard(outcome.request)
+        for text in outcome.warnings:
+            self.tell(f"{PRACTICALS[outcome.practical][0].lower()}: {text}", level="warning")
+        if not outcome.ok:
+            self.tell(f"{PRACTICALS[outcome.practical][0].lower()}: {outcome.text}", level="error")
+            return
+        if self._latest.get(outcome.practical) != outcome.request:
+            return  # a newer request of the same practical supersedes this one
+        if "response" in outcome.keep:
+            self.response = outcome.keep["response"]
+        if "blank" in outcome.keep:
+            self.blank = outcome.keep["blank"]
+        self.last_outcome = outcome
+        if outcome.value is None:  # a plain job (saving): its text is the message
+            self.tell(outcome.text)
+            return
+        self.results[outcome.action if outcome.action in ("apply", "blank") else outcome.practical] = outcome.value
+        self._show_text(outcome.text)
+        if outcome.figure is not None:
+            self._show_figure(outcome.figure)
+            self._figure_factory = outcome.figure_factory
+            self.buttons["larger"].configure(state="normal" if outcome.figure_factory else "disabled")
+        self.tell(outcome.text.splitlines()[0])
+
+    def _show_text(self, text: str) -> None:
+        self.result_text.configure(state="normal")
+        self.result_text.delete("1.0", "end")
+        self.result_text.insert("end", text)
+        self.result_text.configure(state="disabled")
+
+    def shown_text(self) -> str:
+        return self.result_text.get("1.0", "end").strip()
+
+    def _show_figure(self, figure) -> None:
+        """Put ``figure`` on the page; rendered off the Tk thread.
+
+        One canvas serves every figure (its Tk photo image lives as long as
+        the page): a canvas thrown away could be collected on a worker thread,
+        where Tk cannot free its image.
+        """
+        figure.set_dpi(62)  # the page is narrow: smaller type keeps the labels apart
+        figure._original_dpi = figure.dpi
+        figure.set_facecolor(PALETTE["paper"])
+        canvas = self.canvas
+        if canvas is None:
+            self.figure_note.grid_remove()
+            canvas = ThreadedCanvas(figure, self.figure_box, self._render_executor)
+            widget = canvas.get_tk_widget()
+            widget.configure(width=280, height=200, highlightthickness=0, background=PALETTE["paper"])
+            widget.grid(row=0, column=0, sticky="nsew")
+            self.canvas = canvas
+        else:
+            _swap_figure(canvas, figure)
+        canvas.render_async()
+
+    def _on_resize(self, event) -> None:
+        if event.widget is self:
+            for label in self._wrapped:
+                label.configure(wraplength=max(200, event.width - 18))
+            self.message.configure(wraplength=max(150, event.width - 120))
+
+    def show_larger_figure(self) -> None:
+        """The figure of the last result in a window of its own (for a projector); one window, reused."""
+        factory = self._figure_factory
+        if factory is None:
+            self.tell("no figure yet: run a practical first", level="warning")
+            return
+        figure = factory()
+        figure.set_facecolor(PALETTE["paper"])
+        if self.large_window is None:
+            window = tk.Toplevel(self)
+            window.title("benchspec practical figure")
+            window.geometry("820x560")
+            window.protocol("WM_DELETE_WINDOW", window.withdraw)  # kept for the next figure
+            window.columnconfigure(0, weight=1)
+            window.rowconfigure(0, weight=1)
+            canvas = ThreadedCanvas(figure, window, self._render_executor)
+            canvas.get_tk_widget().grid(row=0, column=0, sticky="nsew")
+            self.large_window, self.large_canvas = window, canvas
+        else:
+            canvas = self.large_canvas
+            _swap_figure(canvas, figure)
+            self.large_window.deiconify()
+            self.large_window.lift()
+        canvas.render_async()
+
+    def _poll(self) -> None:
+        if self._closed:
+            return
+        try:
+            for canvas in (self.canvas, self.large_canvas):
+                if canvas is not None:
+                    canvas.poll()
+            done = [f for f in self._own_jobs if f.done()]
+            for future in done:
+                self._own_jobs.remove(future)
+                self.deliver(future.result())
+        finally:
+            if not self._closed:
+                self._after = self.after(self.poll_ms, self._poll)
+
+    @property
+    def busy(self) -> bool:
+        """True while a job or a figure render is still running."""
+        return bool(self.pending) or (self.canvas is not None and self.canvas.rendering)
+
+    def _on_destroy(self, event) -> None:
+        if event.widget is not self or self._closed:
+            return
+        self._closed = True
+        if self._after is not None:
+            try:
+                self.after_cancel(self._after)
+            except tk.TclError:
+                pass
+        self._executor.shutdown(wait=True)
+        self._render_executor.shutdown(wait=True)
+
+
+def _swap_figure(canvas: ThreadedCanvas, figure) -> None:
+    """Show ``figure`` on ``canvas`` in place of its figure, at the canvas's size (Tk thread)."""
+    canvas.wait()
+    width, height = canvas.get_width_height(physical=True)
+    FigureCanvasBase(canvas.figure)  # the old figure lets go of the canvas
+    figure.set_canvas(canvas)
+    canvas.figure = figure
+    figure.set_size_inches(width / figure.dpi, height / figure.dpi, forward=False)
+
+
+def _run(request: int, practical: str, action: str, work, with_result: bool) -> PracticalOutcome:
+    """Run one job; every failure becomes an outcome with a one-line message (the window stays usable)."""
+    from ..errors import DegradedResultWarning
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", DegradedResultWarning)
+        try:
+            if with_result:
+                text, factory, value, keep = work()
+                figure = factory() if factory is not None else None
+            else:
+                text, factory, figure, value, keep = work(), None, None, None, {}
+        except BenchspecError as exc:
+            return PracticalOutcome(request, practical, action, False, str(exc))
+        except Exception as exc:  # a fault in the code, not in the input: say so, keep the window alive
+            log.debug(traceback.format_exc())
+            return PracticalOutcome(request, practical, action, False, f"failed unexpectedly ({type(exc).__name__}: {exc})")
+    notes = tuple(dict.fromkeys(str(w.message) for w in caught if issubclass(w.category, DegradedResultWarning)))
+    return PracticalOutcome(request, practical, action, True, text, figure, value, notes, dict(keep), factory)
+
+
+def _ask_save_path(parent, title: str, default: str, types) -> str | None:
+    from tkinter import filedialog
+
+    return filedialog.asksaveasfilename(parent=parent, title=title, initialfile=default, filetypes=types) or None
+
+
+def _ask_open_path(parent, title: str, types, *, folder: bool = False) -> str | None:
+    from tkinter import filedialog
+
+    return filedialog.askopenfilename(parent=parent, title=title, filetypes=types) or None
+
+
+# --------------------------------------------------------------------------- the viewer's page
+
+
+def attach_to_viewer(viewer, notebook) -> PracticalsPanel:
+    """Add the Practicals page to the bench viewer's ``notebook``; returns the panel.
+
+    The current spectrum is that of the frames on screen (the held stack, else
+    the newest frame) through the viewer's calibration, cut to the viewer's
+    300-1100 nm; jobs run on the viewer's processing thread, in turn with
+    live frames, and come back as its "practical" job events.
+    """
+    from .processing import _within
+
+    processor = viewer.processor
+
+    def current_spectrum() -> Spectrum | None:
+        frames = viewer._frames_now()  # plain attributes, safe to read here
+        if not frames or processor.calibration_file is None:
+            return None
+        return _within(processor.spectrum_of(frames), 300.0, 1100.0)
+
+    def submit(job) -> bool:
+        worker = viewer.worker
+        if worker is None:
+            return False
+        worker.submit("practical", job)
+        return True
+
+    panel = PracticalsPanel(notebook, current_spectrum=current_spectrum, report=viewer.report, submit=submit,
+                            ask_save_path=viewer.ask_save_path, ask_open_path=viewer.ask_open_path)
+    viewer._done_practical = panel.deliver  # the viewer hands each finished "practical" job to _done_<name>
+    notebook.add(panel, text="Practicals")
+    return panel
