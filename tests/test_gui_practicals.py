@@ -144,6 +144,11 @@ def test_each_practical_matches_the_core(panel_on, demo_spectra):
     assert panel.results["rydberg"].rydberg_per_m == core.rydberg_per_m
     assert f"R_H = {core.rydberg_per_m:.6e} ± {core.uncertainty_per_m:.1e} /m" in panel.shown_text()
     assert len(panel.results["rydberg"].lines) == len(core.lines) >= 2
+    # and the value itself: within 3 sigma of CODATA R_inf/(1+m_e/m_p) (scipy.constants, CODATA 2018)
+    from scipy import constants
+
+    codata = constants.Rydberg / (1 + constants.m_e / constants.m_p)
+    assert abs(panel.results["rydberg"].rydberg_per_m - codata) < 3 * core.uncertainty_per_m
 
     # -- the red LED (no response correction: untick it, so the core call is the plain one)
     panel.radios["source"].invoke()
@@ -194,6 +199,8 @@ def test_each_practical_matches_the_core(panel_on, demo_spectra):
 
 
 def test_bad_input_gets_one_line_and_the_page_stays_usable(panel_on, demo_spectra):
+    from benchspec.gui.practicals import absorbance_peak
+
     _, spectra = demo_spectra
     panel = panel_on()
     # nothing calibrated on screen yet
@@ -213,6 +220,15 @@ def test_bad_input_gets_one_line_and_the_page_stays_usable(panel_on, demo_spectr
     (error,) = [m for m in messages if m.startswith("error:")]
     assert "brighter than the blank" in error and "\n" not in error
     assert ("error", error[len("error: "):]) in panel.reports  # the window's log hears it too
+    # a sample too dark for this setup in 540-600 nm (an invented transmittance of 0.2%): the stray-light warning
+    _press(panel, "blank", spectra["blank"])
+    wl = spectra["blank"].wavelength_nm
+    dense = spectra["blank"].with_(intensity=spectra["blank"].intensity * np.where((wl > 540) & (wl < 600), 0.002, 0.6))
+    messages = _press(panel, "sample", dense)
+    assert "STRAY-LIGHT WARNING" in panel.shown_text()
+    assert any(m.startswith("warning:") and "exceeds what this setup can measure" in m for m in messages)
+    _, peak, _, limit = absorbance_peak(panel.results["absorbance"])
+    assert peak <= limit  # the reported peak is one the setup can measure
     # no Balmer lines in an LED
     panel.radios["rydberg"].invoke()
     messages = _press(panel, "rydberg", spectra["led"], ok=False)

@@ -603,6 +603,7 @@ class PracticalsPanel(ttk.Frame):
 
     def _start_plain(self, practical: str, action: str, work, message: str, *, with_result: bool = False) -> None:
         request = next(self._requests)
+        self.pending.discard(self._latest.get(practical))  # superseded (or lost with a closed source)
         self._latest[practical] = request
         self.pending.add(request)
 
