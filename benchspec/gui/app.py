@@ -214,6 +214,10 @@ class Viewer:
         cv2.setNumThreads(1)
         # Full plot redraws run here, off the Tk thread (see canvas.ThreadedCanvas).
         self._plot_executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="benchspec-plot")
+        # Wavelength colours need colour-science, slow to import: load it now, off the Tk thread.
+        from .colours import warm_up
+
+        threading.Thread(target=warm_up, name="benchspec-colours", daemon=True).start()
         self._build_style()
         self._build_window()
         self._bind_keys()

@@ -11,7 +11,7 @@ import functools
 
 import numpy as np
 
-__all__ = ["PALETTE", "wavelength_hex"]
+__all__ = ["PALETTE", "wavelength_hex", "warm_up"]
 
 # The viewer's own look: paper-coloured panels, slate ink, a teal accent and
 # a brick-red warning colour. Nothing here stands for a wavelength.
@@ -57,15 +57,32 @@ def _srgb(wavelength_nm) -> np.ndarray:
     return np.asarray(wavelength_to_srgb(wavelength_nm))
 
 
-@functools.lru_cache(maxsize=2048)
-def _hex_at_tenth_nm(tenths: int) -> str:
-    rgb = _srgb(np.array([tenths / 10.0]))[0]
+_TABLE: dict[int, str] = {}   # tenths of a nm -> "#rrggbb", filled by warm_up()
+_TABLE_RANGE = (3000, 11000)   # 300.0-1100.0 nm
+
+
+def _hex(rgb) -> str:
     # Very dark colours (the ends of the visible range) would vanish on the
     # dark frame view and are hard to see on paper: keep a floor of grey.
-    rgb = np.maximum(rgb, 0.25)
+    rgb = np.maximum(np.asarray(rgb, dtype=float), 0.25)
     return "#%02x%02x%02x" % tuple(int(round(255 * c)) for c in rgb)
+
+
+def warm_up() -> None:
+    """Compute the colours of 300-1100 nm in 0.1 nm steps at once (slow the first time: it imports
+    colour-science). The viewer calls it on a helper thread at start so no click waits for it."""
+    tenths = np.arange(*_TABLE_RANGE)
+    rgb = _srgb(tenths / 10.0)
+    _TABLE.update({int(t): _hex(c) for t, c in zip(tenths, rgb)})
+
+
+@functools.lru_cache(maxsize=2048)
+def _hex_at_tenth_nm(tenths: int) -> str:
+    return _hex(_srgb(np.array([tenths / 10.0]))[0])
 
 
 def wavelength_hex(wavelength_nm: float) -> str:
     """``#rrggbb`` display colour of light at ``wavelength_nm`` (CIE 1931, 0.1 nm steps)."""
-    return _hex_at_tenth_nm(int(round(float(wavelength_nm) * 10)))
+    tenths = int(round(float(wavelength_nm) * 10))
+    found = _TABLE.get(tenths)
+    return found if found is not None else _hex_at_tenth_nm(tenths)
