@@ -382,13 +382,13 @@ def fit_beer_lambert(
     dof = c.size - n_params
     if through_origin:
         sxx = float(np.sum(c * c))
-        slope = float(np.sum(c * a) / sxx)
+        slope = float(np.sum(c * a) / sxx) if sxx > 0 else float("nan")
         intercept = 0.0
         residuals = a - slope * c
     else:
         c_mean, a_mean = c.mean(), a.mean()
         sxx = float(np.sum((c - c_mean) ** 2))
-        slope = float(np.sum((c - c_mean) * (a - a_mean)) / sxx)
+        slope = float(np.sum((c - c_mean) * (a - a_mean)) / sxx) if sxx > 0 else float("nan")
         intercept = float(a_mean - slope * c_mean)
         residuals = a - (intercept + slope * c)
     scatter = float(np.sqrt(np.sum(residuals**2) / dof)) if dof > 0 else float("nan")
@@ -404,6 +404,10 @@ def fit_beer_lambert(
             f"{c.size} standards leave no degrees of freedom to estimate the scatter; "
             "measure at least 3 standards, or give the absorbance uncertainties"
         )
+    if not (sxx > 0 and np.isfinite(slope)):  # concentrations so small their squares underflow
+        raise AnalysisError("the concentrations are too small or too close together to fit a line; give them in a larger unit")
+    if not slope * float(np.ptp(c)) > 1e-9 * max(float(np.max(np.abs(a))), 1e-300):  # a slope that is only rounding noise
+        slope = 0.0
     if not slope > 0:
         raise AnalysisError(
             f"the calibration slope is {slope:.3g} A per unit (not positive): absorbance does not rise with concentration; "
@@ -474,9 +478,15 @@ def predict_concentration(
         raise InputError(f"absorbance of the unknown must be finite, was {absorbance}")
     scatter = fit.residual_sd / np.sqrt(replicates)
     sigma0 = scatter if absorbance_uncertainty is None else max(float(absorbance_uncertainty), scatter)
-    b, a = fit.slope_per_concentration, fit.intercept
-    c0 = (a0 - a) / b
-    variance = (sigma0**2 + fit.intercept_uncertainty**2 + c0**2 * fit.slope_uncertainty**2 + 2 * c0 * fit.slope_intercept_covariance) / b**2
+    b, a = np.float64(fit.slope_per_concentration), np.float64(fit.intercept)
+    with np.errstate(over="ignore", invalid="ignore"):  # numpy floats overflow to inf instead of raising
+        c0 = (a0 - a) / b
+        variance = (sigma0**2 + fit.intercept_uncertainty**2 + c0**2 * fit.slope_uncertainty**2 + 2 * c0 * fit.slope_intercept_covariance) / b**2
+    if not (np.isfinite(c0) and np.isfinite(variance)):
+        raise AnalysisError(
+            f"absorbance {a0:.3g} lies so far outside the calibration that no concentration can be computed; "
+            "check the value, dilute the sample or add standards"
+        )
     low, high = float(fit.concentrations.min()), float(fit.concentrations.max())
     span = high - low
     outside = bool(c0 < low - 0.05 * span or c0 > high + 0.05 * span)

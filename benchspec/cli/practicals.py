@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import AnalysisError, InputError
+from ..errors import AnalysisError, FileFormatError, InputError
 from ..safety import cautions_for
 
 _FRAME_EXTENSIONS = (".png", ".jpg", ".jpeg", ".tif", ".tiff", ".bmp", ".webp", ".avi", ".mp4", ".mov", ".mkv")
@@ -400,6 +400,9 @@ def _run_concentration(args) -> int:
         from ..io import read_table
 
         table = read_table(args.table, required=("concentration", "absorbance"))
+        for name in ("concentration", "absorbance", "uncertainty"):
+            if name in table.columns and table[name].dtype.kind != "f":
+                raise FileFormatError(f"{args.table}: column `{name}` holds text; it must hold numbers only")
         concentrations += [float(v) for v in table["concentration"]]
         absorbances += [float(v) for v in table["absorbance"]]
         if "uncertainty" in table.columns:
