@@ -161,7 +161,7 @@ def test_each_practical_matches_the_core(panel_on, demo_spectra):
         assert getattr(shown, name) == getattr(core, name), name
     text = panel.shown_text()
     assert f"Peak {core.peak_nm:.2f} ± {core.peak_uncertainty_nm:.2f} nm" in text
-    assert f"Dominant wavelength {core.dominant_wavelength_nm:.1f} nm" in text
+    assert f"dominant wavelength {core.dominant_wavelength_nm:.1f} nm" in text
     assert f"x = {core.cie_x:.4f}" in text and f"y = {core.cie_y:.4f}" in text
     assert "CCT, Duv: n/a" in text  # a red LED is not white
     assert not panel.canvas.figure.axes[0].images  # no colour fill under the curve in the viewer

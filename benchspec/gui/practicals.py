@@ -187,16 +187,16 @@ def describe_metrics(m) -> str:
     lines = [f"Peak {m.peak_nm:.2f} ± {m.peak_uncertainty_nm:.2f} nm; centroid {m.centroid_nm:.2f} ± "
              f"{m.centroid_uncertainty_nm:.2f} nm",
              "FWHM " + _or_na(m.fwhm_nm, ".2f", m.fwhm_uncertainty_nm, " nm")
-             + (" (resolution-limited)" if m.fwhm_resolution_limited else ""),
-             "Dominant wavelength " + _or_na(m.dominant_wavelength_nm, ".1f", None, " nm")
-             + (" (complementary)" if m.complementary_wavelength else "") + " against white E",
+             + (" (resolution-limited)" if m.fwhm_resolution_limited else "")
+             + "; dominant wavelength " + _or_na(m.dominant_wavelength_nm, ".1f", None, " nm")
+             + (" (complementary)" if m.complementary_wavelength else "") + " (white E)",
              f"CIE 1931 x = {m.cie_x:.4f} ± {m.cie_x_uncertainty:.4f}, y = {m.cie_y:.4f} ± {m.cie_y_uncertainty:.4f}",
              ("CCT " + _or_na(m.cct_k, ".0f", m.cct_uncertainty_k, " K") + ", Duv " + _or_na(m.duv, "+.4f", m.duv_uncertainty)
               + (f" ({m.cct_method})" if m.cct_method else "")) if m.is_white else "CCT, Duv: n/a (not a white source)"]
     if m.laser is not None:
         check = m.laser
         verdict = "within" if check.within_tolerance else "OUTSIDE"
-        lines.append(f"Laser {check.label}: {check.measured_nm:.2f} ± {check.measured_uncertainty_nm:.2f} nm, "
+        lines.append(f"Laser: {check.measured_nm:.2f} ± {check.measured_uncertainty_nm:.2f} nm, "
                      f"{check.offset_nm:+.2f} nm from nominal {check.nominal_nm:g} nm ({verdict} ±{check.tolerance_nm:g} nm)")
     return "\n".join(lines)
 
@@ -325,7 +325,7 @@ class PracticalsPanel(ttk.Frame):
             ("response", self._build_response), ("absorbance", self._build_absorbance),
             ("rydberg", self._build_rydberg), ("source", self._build_source), ("daylight", self._build_daylight))}
 
-        self.result_text = tk.Text(self, height=6, wrap="word", background="#fbfaf6", foreground=p["ink"],
+        self.result_text = tk.Text(self, height=7, wrap="word", background="#fbfaf6", foreground=p["ink"],
                                    relief="flat", font=("TkDefaultFont", 9), width=36)
         self.result_text.grid(row=3, column=0, sticky="ew", pady=(3, 2))
         self.result_text.configure(state="disabled")
@@ -370,12 +370,14 @@ class PracticalsPanel(ttk.Frame):
         self.temperature_entry = ttk.Entry(page, textvariable=self.temperature, width=6)
         self.temperature_entry.grid(row=1, column=1, sticky="w", padx=(2, 4))
         self._button(page, "response", "Response from this frame", self.measure_response, 1, 2)
-        self._button(page, "apply_response", "Apply response", self.apply_response, 2, 0).grid(columnspan=2)
-        self._button(page, "save_response", "Save…", self.save_response, 2, 2)
-        self._button(page, "load_response", "Load…", self.load_response, 2, 3)
+        row = ttk.Frame(page)
+        row.grid(row=2, column=0, columnspan=4, sticky="w")
+        self._button(row, "apply_response", "Apply response", self.apply_response, 0, 0)
+        self._button(row, "save_response", "Save…", self.save_response, 0, 1)
+        self._button(row, "load_response", "Load…", self.load_response, 0, 2)
         self.correct_sources = tk.BooleanVar(value=True)
-        ttk.Checkbutton(page, text="correct LED/laser and daylight spectra with it",
-                        variable=self.correct_sources).grid(row=3, column=0, columnspan=4, sticky="w")
+        ttk.Checkbutton(page, text="use it for LED/laser and daylight", variable=self.correct_sources).grid(
+            row=3, column=0, columnspan=4, sticky="w")
         return page
 
     def _build_absorbance(self, parent) -> ttk.Frame:
@@ -394,7 +396,7 @@ class PracticalsPanel(ttk.Frame):
         page = self._page(parent, "An LED, white lamp or a laser spot on a matte card.")
         ttk.Label(page, text="Laser").grid(row=1, column=0, sticky="w")
         self.laser = tk.StringVar(value=_NOT_A_LASER)
-        self.laser_box = ttk.Combobox(page, textvariable=self.laser, state="readonly", width=30,
+        self.laser_box = ttk.Combobox(page, textvariable=self.laser, state="readonly", width=27,
                                       values=[_NOT_A_LASER, *self.lasers])
         self.laser_box.grid(row=1, column=1, columnspan=3, sticky="w", padx=(2, 0))
         self.laser_box.bind("<<ComboboxSelected>>", lambda event: self._show_cautions(), add="+")
@@ -441,7 +443,10 @@ class PracticalsPanel(ttk.Frame):
     def tell(self, text: str, *, level: str = "info") -> None:
         """A one-line message in the panel and in the window's log."""
         self.messages.append(f"{level}: {text}")
-        self.message.configure(text=text, foreground=PALETTE["warning"] if level != "info" else PALETTE["muted"])
+        # Results are in the text above and the log: the strip keeps them to one short line;
+        # warnings and errors are shown whole (they say what to do).
+        shown = text if level != "info" or len(text) <= 60 else text[:58].rstrip() + "…"
+        self.message.configure(text=shown, foreground=PALETTE["warning"] if level != "info" else PALETTE["muted"])
         if self._report is not None:
             self._report(text, level=level)
         else:
