@@ -289,3 +289,44 @@ def test_pathological_frames_never_crash_calibrate(tmp_path, capsys, name):
     errors = [line for line in captured.err.splitlines() if ": error: " in line]
     assert len(errors) == 1 and errors[0].startswith("benchspec calibrate: error: ") and "Traceback" not in captured.err
     assert list(out.iterdir()) == []
+
+
+# --------------------------------------------------------------------------- standards tables (Beer-Lambert)
+
+STANDARDS_TABLES = {
+    "same-concentration": "concentration,absorbance\n0.1,0.2\n0.1,0.41\n0.1,0.6\n",
+    "one-standard": "concentration,absorbance\n0.1,0.2\n",
+    "flat-absorbance": "concentration,absorbance\n0.1,0.2\n0.2,0.2\n0.3,0.2\n",
+    "concentrations-1e300": "concentration,absorbance\n1e300,0.2\n2e300,0.4\n3e300,0.6\n",
+    "concentrations-1e-300": "concentration,absorbance\n1e-300,0.2\n2e-300,0.4\n3e-300,0.6\n",
+    "negative": "concentration,absorbance\n-0.1,-0.2\n-0.2,-0.4\n-0.3,-0.6\n",
+    "negative-uncertainty": "concentration,absorbance,uncertainty\n0.1,0.2,-1\n0.2,0.4,-1\n0.3,0.6,-1\n",
+    "text-cells": "concentration,absorbance\nlow,0.2\nhigh,0.4\n",
+    "wrong-columns": "c,a\n0.1,0.2\n0.2,0.4\n",
+    "nan": "concentration,absorbance\n0.1,nan\n0.2,0.4\n0.3,0.6\n",
+}
+
+
+@pytest.mark.parametrize("unknown", ["0.5", "1e308"])
+@pytest.mark.parametrize("name", list(STANDARDS_TABLES))
+def test_bad_standards_table_is_refused(tmp_path, capsys, name, unknown):
+    if "concentration" not in AVAILABLE:
+        pytest.skip("the `concentration` command is not registered yet")
+    path = tmp_path / f"standards {name}.csv"
+    path.write_text(STANDARDS_TABLES[name], encoding="utf-8")
+    code = main(["concentration", "--table", str(path), "--unknown-absorbance", unknown])  # an exception is a crash
+    captured = capsys.readouterr()
+    assert code == 2, captured
+    errors = [line for line in captured.err.splitlines() if ": error: " in line]
+    assert len(errors) == 1 and "Traceback" not in captured.err
+
+
+def test_unknown_far_outside_the_calibration_is_refused(tmp_path, capsys):
+    if "concentration" not in AVAILABLE:
+        pytest.skip("the `concentration` command is not registered yet")
+    path = tmp_path / "standards.csv"
+    path.write_text("concentration,absorbance\n0.1,0.21\n0.2,0.39\n0.3,0.62\n", encoding="utf-8")
+    assert main(["concentration", "--table", str(path), "--unknown-absorbance", "0.5"]) == 0
+    capsys.readouterr()
+    assert main(["concentration", "--table", str(path), "--unknown-absorbance", "1e308"]) == 2
+    assert "outside the calibration" in capsys.readouterr().err
