@@ -608,7 +608,7 @@ def measure_geometry(
             curv = np.polynomial.polynomial.polyadd(curv, residual["curvature"])
             curvature = residual
 
-        if trace["n_chunks"] < 4 and curvature is not None and curvature["known"] and abs(tilt[0]) > 0.005:
+        if trace["n_chunks"] < 3 and curvature is not None and curvature["known"] and abs(tilt[0]) > 0.005:
             # Too short a band for its edges: the slit images are perpendicular to the dispersion,
             # so their common tilt is the remaining rotation.
             d_rad = -math.atan(float(tilt[0]))
@@ -719,11 +719,11 @@ class _quiet_nan_warnings(warnings.catch_warnings):
 def _updated_axis(theta, cx, cy, trace, *, s_ref: float):
     """New angle and centre from a trace fit t_mid(s) = a + m s measured in the current band coordinates.
 
-    A slope from fewer than 4 chunks is not trusted (only the centre moves), and one step turns
+    A slope from fewer than 3 chunks is not trusted (only the centre moves), and one step turns
     the axis by at most 6 degrees, so a poor first measurement cannot run away.
     """
     a, m = trace["intercept"], trace["slope"]
-    if trace["n_chunks"] < 4:
+    if trace["n_chunks"] < 3:
         m = 0.0
     m = float(np.clip(m, -math.tan(math.radians(6.0)), math.tan(math.radians(6.0))))
     th = math.radians(theta)
@@ -896,17 +896,18 @@ def _measure_trace(band: np.ndarray, *, s0: float, t0: float, half_height: float
         top = (i_top_c - 1) + (level - smooth[idx, i_top_c - 1]) / (smooth[idx, i_top_c] - smooth[idx, i_top_c - 1])
         bottom = i_bot_c + (smooth[idx, i_bot_c] - level) / (smooth[idx, i_bot_c] - smooth[idx, i_bot_c + 1])
     ok &= np.isfinite(top) & np.isfinite(bottom)
-    # The chunks at the two ends of the lit band see the band's (tilted) end, not its edges: drop them.
+    # A chunk at either end of the lit band that is much fainter than the rest sees only part of
+    # the band's (tilted) end, not its edges: drop it. (A line spectrum's end chunks hold whole
+    # slit images and stay.)
     lit_index = np.flatnonzero(chunk_signal > 0.05 * max(chunk_signal.max(), 1e-12))
-    if lit_index.size >= 10:
-        drop = 2
-    elif lit_index.size >= 4:
-        drop = 1
-    else:
-        drop = 0
-    if drop:
-        ok[lit_index[:drop]] = False
-        ok[lit_index[-drop:]] = False
+    if lit_index.size >= 4:
+        typical = float(np.median(chunk_signal[lit_index]))
+        for end in (lit_index[:2], lit_index[::-1][:2]):
+            for k in end:
+                if chunk_signal[k] < 0.5 * typical:
+                    ok[k] = False
+                else:
+                    break
     mids = list(0.5 * (top[ok] + bottom[ok]) + t0)
     widths = list((bottom - top)[ok])
     snr = np.minimum(chunk_signal / noise, 50.0)  # capped: a few bright lines must not outvote the rest of the band
