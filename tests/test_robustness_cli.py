@@ -207,10 +207,12 @@ def _pathological_spectra() -> dict:
 
 PATHOLOGICAL = _pathological_spectra()
 CONTENT_COMMANDS = [["lines", "{f}"], ["lines", "{f}", "--absorption"], ["identify", "{f}"],
-                    ["convert", "{f}", "{o}/copy.jdx"], ["metrics", "{f}"]]
+                    ["convert", "{f}", "{o}/copy.jdx"], ["metrics", "{f}"], ["metrics", "{f}", "--white"],
+                    ["absorbance", "{f}", "--blank", "{f}"], ["rydberg", "{f}"], ["daylight", "{f}"],
+                    ["response", "{f}", "--temperature", "2900", "--out", "{o}/response.json"]]
 
 
-@pytest.mark.parametrize("argv", CONTENT_COMMANDS, ids=[" ".join(c[:2]).replace("{f}", "").strip() for c in CONTENT_COMMANDS])
+@pytest.mark.parametrize("argv", CONTENT_COMMANDS, ids=[" ".join(c[:1] + [x for x in c[2:3] if x.startswith("--")]) for c in CONTENT_COMMANDS])
 @pytest.mark.parametrize("name", list(PATHOLOGICAL))
 def test_pathological_content_never_crashes(tmp_path, capsys, name, argv):
     command = argv[0]
