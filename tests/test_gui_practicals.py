@@ -190,6 +190,21 @@ def test_each_practical_matches_the_core(panel_on, demo_spectra):
     for line in core.identified:
         assert f"{line.label:6s} {line.wavelength_nm:7.2f}" in panel.shown_text()
     assert any(l.label.startswith("D") for l in core.identified)  # Na D, a line every daylight spectrum shows
+    # -- the setup planner: the demo bench's 1000 lines/mm grating and 1280 px webcam
+    from benchspec.analysis.planner import plan_setup
+
+    panel.radios["planner"].invoke()
+    assert "No light source" in panel.cautions_shown()
+    panel.plan_entries["horizontal_fov_deg"].set("55")
+    _press(panel, "planner")
+    core = plan_setup(lines_per_mm=1000.0, image_width_px=1280, horizontal_fov_deg=55.0, slit_width_mm=0.1,
+                      slit_distance_mm=100.0)
+    shown = panel.results["planner"]
+    assert (shown.tilt_deg, shown.range_columns_px, shown.resolution_nm) == \
+        (core.tilt_deg, core.range_columns_px, core.resolution_nm)
+    assert f"resolution at 550 nm: {core.resolution_nm:.2f} nm".lower() in panel.shown_text().lower()
+    # the second order of 380 nm falls at 760 nm: the grating equation holds m*lambda, so 2 x 380 = 1 x 760 (issue 6's check)
+    assert "overlaps first from 760 nm" in panel.shown_text()
     # the same figure, larger, in a window of its own (for a projector)
     panel.buttons["larger"].invoke()
     _wait(panel, lambda: panel.large_canvas is not None and panel.large_canvas.render_count >= 1, what="larger figure")
@@ -229,6 +244,11 @@ def test_bad_input_gets_one_line_and_the_page_stays_usable(panel_on, demo_spectr
     assert any(m.startswith("warning:") and "exceeds what this setup can measure" in m for m in messages)
     _, peak, _, limit = absorbance_peak(panel.results["absorbance"])
     assert peak <= limit  # the reported peak is one the setup can measure
+    # a planner entry that is not a number
+    panel.radios["planner"].invoke()
+    panel.plan_entries["lines_per_mm"].set("many")
+    panel.buttons["planner"].invoke()
+    assert panel.messages[-1].startswith("error:") and "lines/mm must be a number, got 'many'" in panel.messages[-1]
     # no Balmer lines in an LED
     panel.radios["rydberg"].invoke()
     messages = _press(panel, "rydberg", spectra["led"], ok=False)

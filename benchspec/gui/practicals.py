@@ -4,8 +4,9 @@ Layout (our own)::
 
     +-----------------------------------------+
     | ( ) Response  ( ) Absorbance ( ) Rydberg |  which practical
-    | ( ) LED/laser ( ) Daylight               |
+    | ( ) LED/laser ( ) Daylight   ( ) Planner |
     | cautions of the light source involved    |
+    | (the planner involves none)              |
     | controls of the chosen practical         |
     | result text (numbers with uncertainties) |
     | figure (benchspec.analysis.plots)        |
@@ -52,6 +53,7 @@ __all__ = [
     "attach_to_viewer",
     "absorbance_peak",
     "parse_temperature_k",
+    "parse_number",
 ]
 
 log = logging.getLogger("benchspec.viewer")
@@ -63,6 +65,7 @@ PRACTICALS: dict[str, tuple[str, str, str]] = {
     "rydberg": ("Rydberg", "Rydberg constant from a hydrogen tube", "discharge"),
     "source": ("LED / laser", "Figures of an LED, lamp or laser", "led"),
     "daylight": ("Daylight", "Dark lines of daylight", "daylight"),
+    "planner": ("Planner", "Setup planner: grating and camera", ""),
 }
 
 _NOT_A_LASER = "(not a laser)"
@@ -97,6 +100,20 @@ def parse_temperature_k(text: str) -> float:
         raise InputError(f"the lamp temperature must be a number in kelvin (e.g. 2900), got {text!r}") from None
     if not np.isfinite(value):
         raise InputError(f"the lamp temperature must be a finite number of kelvin, got {text!r}")
+    return value
+
+
+def parse_number(name: str, text: str, *, blank_ok: bool = False) -> float | None:
+    """A number typed in an entry; None for a blank entry when ``blank_ok``; InputError naming the entry otherwise."""
+    text = str(text).strip().replace(",", ".")
+    if not text and blank_ok:
+        return None
+    try:
+        value = float(text)
+    except ValueError:
+        raise InputError(f"{name} must be a number, got {text!r}" + (" (or leave it blank)" if blank_ok else "")) from None
+    if not np.isfinite(value):
+        raise InputError(f"{name} must be a finite number, got {text!r}")
     return value
 
 
@@ -213,6 +230,29 @@ def describe_daylight(result) -> str:
     return "\n".join(lines)
 
 
+def describe_plan(plan) -> str:
+    def column(value):
+        return "off the sensor" if value is None else f"column {value:.0f}"
+
+    (low, high), (c_low, c_high) = plan.range_nm, plan.range_columns_px
+    lines = [f"{low:.0f} nm at {column(c_low)}, {high:.0f} nm at {column(c_high)} of {plan.image_width_px} px "
+             f"(tilt {plan.tilt_deg:.1f} deg)"]
+    if plan.visible_range_nm is not None:
+        lines.append(f"On the sensor: {plan.visible_range_nm[0]:.0f}-{plan.visible_range_nm[1]:.0f} nm")
+    if plan.dispersion_range_nm_per_px is not None:
+        lines.append(f"Dispersion {plan.dispersion_range_nm_per_px[0]:.3f}-{plan.dispersion_range_nm_per_px[1]:.3f} nm/px")
+    slit = "n/a" if plan.slit_resolution_nm is None else f"{plan.slit_resolution_nm:.2f}"
+    lines.append(f"Resolution at {plan.reference_nm:g} nm: {plan.resolution_nm:.2f} nm, limited by {plan.limited_by} "
+                 f"(slit {slit}, pixels {plan.pixel_resolution_nm:.2f}, grooves {plan.groove_resolution_nm:.2f} nm)")
+    overlap = f"Second order overlaps first from {plan.second_order_overlap_from_nm:.0f} nm"
+    if plan.second_order_on_sensor and plan.second_order_start_column_px is not None:
+        overlap += f" (column {plan.second_order_start_column_px:.0f})"
+    lines.append(overlap + ("" if plan.second_order_on_sensor else " (off the sensor)"))
+    lines.append(f"Tilt that centres {low:.0f}-{high:.0f} nm: {plan.centring_tilt_deg:.1f} deg"
+                 + ("" if plan.centred_range_fits else " (the range is wider than the sensor)"))
+    return "\n".join(lines)
+
+
 def _without_colour_fill(figure):
     """The viewer shows no colour fill under a curve: drop the image a figure clipped to its curve."""
     for ax in figure.axes:
@@ -323,7 +363,8 @@ class PracticalsPanel(ttk.Frame):
         self.controls.columnconfigure(0, weight=1)
         self.pages = {key: builder(self.controls) for key, builder in (
             ("response", self._build_response), ("absorbance", self._build_absorbance),
-            ("rydberg", self._build_rydberg), ("source", self._build_source), ("daylight", self._build_daylight))}
+            ("rydberg", self._build_rydberg), ("source", self._build_source), ("daylight", self._build_daylight),
+            ("planner", self._build_planner))}
 
         self.result_text = tk.Text(self, height=7, wrap="word", background="#fbfaf6", foreground=p["ink"],
                                    relief="flat", font=("TkDefaultFont", 9), width=36)
@@ -408,6 +449,22 @@ class PracticalsPanel(ttk.Frame):
         self._button(page, "daylight", "Find the dark lines", self.measure_daylight, 1, 0)
         return page
 
+    def _build_planner(self, parent) -> ttk.Frame:
+        page = self._page(parent, "Predict where 380-750 nm land on the sensor before building the setup. "
+                                  "Blank tilt: the tilt that centres the range.")
+        self.plan_entries: dict[str, tk.StringVar] = {}
+        fields = (("lines_per_mm", "lines/mm", "1000"), ("image_width_px", "width (px)", "1280"),
+                  ("horizontal_fov_deg", "HFOV (deg)", "60"), ("tilt_deg", "tilt (deg)", ""),
+                  ("slit_width_mm", "slit (mm)", "0.1"), ("slit_distance_mm", "slit dist. (mm)", "100"))
+        for index, (key, label, default) in enumerate(fields):
+            row, col = 1 + index // 2, (index % 2) * 2
+            ttk.Label(page, text=label).grid(row=row, column=col, sticky="w", padx=(0 if col == 0 else 6, 2))
+            variable = tk.StringVar(value=default)
+            ttk.Entry(page, textvariable=variable, width=6).grid(row=row, column=col + 1, sticky="w")
+            self.plan_entries[key] = variable
+        self._button(page, "planner", "Predict", self.plan, 4, 0)
+        return page
+
     # ------------------------------------------------------------------ choosing and cautions
     def choose(self, key: str, *, announce: bool = True) -> None:
         """Show the controls of practical ``key`` and the cautions of its light source."""
@@ -421,16 +478,20 @@ class PracticalsPanel(ttk.Frame):
                 page.grid_remove()
         title = self._show_cautions()
         if announce:
-            self.tell(f"practical: {PRACTICALS[key][1]}; cautions for {title.lower()} shown")
+            what = f"cautions for {title.lower()} shown" if self.light_source() else "no light source involved"
+            self.tell(f"practical: {PRACTICALS[key][1]}; {what}")
 
     def light_source(self) -> str:
-        """The light-source type (benchspec.safety) of the chosen practical."""
+        """The light-source type (benchspec.safety) of the chosen practical; "" when none is involved."""
         key = self.practical.get()
         if key == "source" and self.laser.get() in self.lasers:
             return "laser"
         return PRACTICALS[key][2]
 
     def _show_cautions(self) -> str:
+        if not self.light_source():
+            self.caution.configure(text="No light source is involved: the planner works from the numbers below.")
+            return "no light source"
         title, items = cautions_for(self.light_source())
         self.caution.configure(text=f"Cautions: {title}\n" + "\n".join(f"•  {item}" for item in items)
                                + "\n" + GENERAL_CAUTION)
@@ -590,6 +651,33 @@ class PracticalsPanel(ttk.Frame):
             return describe_daylight(result), lambda: daylight_figure(result), result, {}
 
         self._start("daylight", "daylight", compute, "finding the dark lines of daylight…")
+
+    def plan_options(self) -> dict:
+        """The planner's entries as keyword arguments of ``plan_setup``; InputError naming a bad entry."""
+        names = {"lines_per_mm": "lines/mm", "image_width_px": "the image width", "horizontal_fov_deg": "the HFOV",
+                 "tilt_deg": "the tilt", "slit_width_mm": "the slit width", "slit_distance_mm": "the slit distance"}
+        options = {}
+        for key, variable in self.plan_entries.items():
+            value = parse_number(names[key], variable.get(), blank_ok=key in ("tilt_deg", "slit_width_mm", "slit_distance_mm"))
+            if value is not None:
+                options[key] = int(value) if key == "image_width_px" and value == int(value) else value
+        return options
+
+    def plan(self) -> None:
+        try:
+            options = self.plan_options()
+        except InputError as exc:
+            self.tell(f"planner: {exc}", level="error")
+            return
+
+        def job():
+            from ..analysis.planner import plan_setup
+            from ..analysis.plots import plan_figure
+
+            result = plan_setup(**options)
+            return describe_plan(result), lambda: plan_figure(result), result, {}
+
+        self._start_plain("planner", "planner", job, "predicting the setup…", with_result=True)
 
     # ------------------------------------------------------------------ jobs
     def _start(self, practical: str, action: str, compute, message: str) -> None:
