@@ -254,3 +254,13 @@ def test_optimal_extraction_conserves_flux_when_the_band_has_widened():
         spectrum = extract_module.extract(band, noise_model=extract_module.NoiseModel(4.0, 2.0), method="optimal")
     truth = _flux_along(geometry.first_column_s_px + np.arange(geometry.n_columns), 100.0)
     assert abs(spectrum.intensity.sum() - truth.sum()) < 0.02 * truth.sum()
+
+
+def test_the_long_fuzzing_run_works_and_finds_nothing(tmp_path):
+    """`python -m benchspec.fuzz --minutes N` in miniature: a few seconds over two readers."""
+    totals = fuzz.run(minutes=0.04, seed=1, reader_names=["spectrum-jdx", "bench-json"], out_dir=tmp_path / "crashes",
+                      batch=40, log=lambda line: None)
+    assert totals["inputs"] > 20
+    assert totals["crashes"] == 0 and totals["bad_messages"] == 0
+    assert not (tmp_path / "crashes").exists()
+    assert fuzz.main(["--list"]) == 0
