@@ -141,6 +141,10 @@ def calibrate_frames(
     for _, other in more_lamps:
         load_lamp(other)
     stacked, records, dark_records = _stack(frames, dark=dark, gamma=gamma, channel=channel, method=stack)
+    if min(stacked.shape) < 16:  # name the file: the geometry only sees an array
+        names = ", ".join(Path(r["path"]).name for r in records if r.get("path"))[:120] or "the frames"
+        raise FrameError(f"{names}: {stacked.shape[1]}x{stacked.shape[0]} px is too small to hold a spectrum "
+                         "(frames must be at least 16x16 px); check the file is a camera frame")
     geometry = measure_geometry(stacked.image, saturated=stacked.saturated)
     spectrum = extract_stack(stacked, geometry, method=extraction)
     table = find_lines(spectrum, min_snr=min_snr)
