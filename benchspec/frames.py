@@ -779,6 +779,13 @@ def stack_frames(
         if n > 1:
             variance = (frame_var * factor).astype(np.float32)
         del cube
+    scatter_note = None
+    if variance is not None and not np.any(variance > 0):
+        # Identical frames (a still repeated, a camera returning one buffer) carry no
+        # scatter: a zero variance would claim infinite SNR. Fall back to the noise model,
+        # as for a single frame.
+        variance = None
+        scatter_note = "the stacked frames are identical (no frame-to-frame scatter); the noise model is used instead"
     if check:
         _check_usable(image, saturated, full=full, gamma=resolved_gamma, encoded_max=encoded_max)
     settings = {
@@ -792,6 +799,8 @@ def stack_frames(
         "variance_factor": factor,
         "dark": None,
     }
+    if scatter_note:
+        settings["variance_note"] = scatter_note
     if dark is not None:
         if dark.shape != image.shape:
             raise FrameError(

@@ -336,3 +336,11 @@ def test_load_stack_streams_a_video_and_hashes_it(tmp_path):
     assert st.n_frames == 4
     assert st.input_sha256 == (hashlib.sha256(path.read_bytes()).hexdigest(),)
     assert st.image[24].mean() > 5 * st.image[5].mean()
+
+
+def test_identical_frames_fall_back_to_the_noise_model(rng):
+    # A repeated still has no frame-to-frame scatter; a zero variance would claim infinite SNR.
+    frame = _band_frame(rng)
+    stacked = frames.stack_frames([frame, frame.copy(), frame.copy()])
+    assert stacked.variance is None
+    assert "identical" in stacked.settings["variance_note"]
