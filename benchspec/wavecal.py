@@ -491,6 +491,11 @@ def _reference_lines(lamp: Lamp, low_nm: float = 370.0, high_nm: float = 1000.0)
     peak = {}
     for l in lines:
         peak[l.species] = max(peak.get(l.species, 0.0), l.relative_intensity)
+    # Lines fainter than 1% of their species' strongest are too faint to anchor anything, and near
+    # the ends of a spectrum they invite off-by-one assignments; they are left out unless the
+    # species would keep fewer than 8 lines.
+    strong = {sp: sum(1 for l in lines if l.species == sp and l.relative_intensity >= 0.01 * peak[sp]) for sp in peak}
+    lines = [l for l in lines if strong[l.species] < 8 or l.relative_intensity >= 0.01 * peak[l.species]]
     wavelength = np.array([l.wavelength_nm for l in lines])
     intensity = np.array([l.relative_intensity / peak[l.species] for l in lines])
     tolerance = np.array([l.tolerance_nm for l in lines])
@@ -631,6 +636,31 @@ def _weighted_polyfit(t, lam, sigma, order):
     return coeffs, cov, residual, chi2
 
 
+def _loo_residuals(t, lam, sigma, keep, order):
+    """Leave-one-out residuals (nm) of the kept lines: each line against the fit of the others.
+
+    r / (1 - h) from the hat matrix, except for lines of high leverage (h > 0.8, e.g. an end line
+    that alone sets the curvature), which are refitted without them: there r / (1 - h) is 0 / 0.
+    """
+    out = np.zeros(t.size)
+    index = np.flatnonzero(keep)
+    if index.size <= order + 1:
+        return out
+    vander = np.stack([t**k for k in range(order + 1)], axis=-1) / sigma[:, None]
+    coeffs, *_ = np.linalg.lstsq(vander[index], lam[index] / sigma[index], rcond=None)
+    residual = lam - np.polynomial.polynomial.polyval(t, coeffs)
+    inverse = np.linalg.pinv(vander[index].T @ vander[index])
+    leverage = np.einsum("ij,jk,ik->i", vander, inverse, vander)
+    for i in index:
+        if leverage[i] <= 0.8:
+            out[i] = residual[i] / (1.0 - leverage[i])
+            continue
+        others = index[index != i]
+        refit, *_ = np.linalg.lstsq(vander[others], lam[others] / sigma[others], rcond=None)
+        out[i] = lam[i] - np.polynomial.polynomial.polyval(t[i], refit)
+    return out
+
+
 def _select_order(t, lam, sigma, keep, *, max_order, monotonic_t):
     """Best polynomial order on the kept lines by BIC (each order must gain > 2); None if nothing fits."""
     best = None
@@ -671,10 +701,7 @@ def _robust_fit(t, lam, sigma, *, max_order, monotonic_t):
         z = (lam - np.polynomial.polynomial.polyval(t, coeffs)) / sigma
         # Leave-one-out residuals r / (1 - h): a line the polynomial bends to reach (typically an
         # end line assigned to the wrong reference) stands out although its own residual is small.
-        vander = np.stack([t**k for k in range(order + 1)], axis=-1) / sigma[:, None]
-        inverse = np.linalg.pinv(vander[keep].T @ vander[keep])
-        leverage = np.clip(np.einsum("ij,jk,ik->i", vander, inverse, vander), 0.0, 0.99)
-        z_loo = np.where(keep, z / (1.0 - leverage), z)
+        z_loo = np.where(keep, _loo_residuals(t, lam, sigma, keep, order) / sigma, z)
         spread = max(1.0, 1.4826 * float(np.median(np.abs(z[keep] - np.median(z[keep])))))
         worst = int(np.argmax(np.where(keep, np.abs(z_loo), -1)))
         if not (abs(z_loo[worst]) > 5.0 * spread and abs(z_loo[worst]) > 5.0):
@@ -795,18 +822,35 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
     lam = np.polynomial.polynomial.polyval(t[p_idx], coeffs)
     disp = np.abs(np.polynomial.polynomial.polyval(t[p_idx], np.polynomial.polynomial.polyder(coeffs))) / scale
     resid_px = (features.wavelength[f_idx] - lam) / disp
-    # Leave-one-out residuals r / (1 - h_ii) from the hat matrix of the weighted fit: a line the
-    # polynomial merely bends to pass through is not evidence for the solution.
-    vander = np.stack([tt[keep] ** k for k in range(coeffs.size)], axis=-1) / ss[keep][:, None]
-    try:
-        hat = np.einsum("ij,jk,ik->i", vander, np.linalg.pinv(vander.T @ vander), vander)
-    except np.linalg.LinAlgError:
-        hat = np.ones(int(keep.sum()))
-    leverage = np.zeros(tt.size)
-    leverage[keep] = np.clip(hat, 0.0, 0.98)
-    loo_px = resid_px / (1.0 - leverage[:n_lines])
-    anchor = used & (features.sigma[f_idx] / disp <= _FEATURE_FIT_LIMIT_PX)
+    # Leave-one-out residuals: a line the polynomial merely bends to pass through is not evidence.
+    loo_nm = _loo_residuals(tt, np.r_[features.wavelength[f_idx], [m.wavelength_nm for m in pairs]], ss, keep,
+                            coeffs.size - 1)
+    loo_px = np.where(keep[:n_lines], loo_nm[:n_lines] / disp, resid_px)
     sigma_px = ss[:n_lines] / disp
+    # Lines the others place far from their reference are not part of this solution: refit without them.
+    inconsistent = used & (np.abs(loo_px) > np.maximum(2.0, 6.0 * np.hypot(sigma_px, 0.15)))
+    if inconsistent.any() and (keep.sum() - inconsistent.sum()) >= 3:
+        keep = keep.copy()
+        keep[:n_lines][inconsistent] = False
+        margin = 0.15 * (tt[keep].max() - tt[keep].min())
+        monotonic_t = np.linspace(max(t_ends[0], tt[keep].min() - margin), min(t_ends[1], tt[keep].max() + margin), 33)
+        refit = _select_order(tt, np.r_[features.wavelength[f_idx], [m.wavelength_nm for m in pairs]], ss, keep,
+                              max_order=min(max_order, max(1, int(keep.sum()) - 2)), monotonic_t=monotonic_t)
+        if refit is None:
+            return None
+        _, coeffs, cov, chi2, order = refit
+        reduced = chi2 / max(1, int(keep.sum()) - (order + 1))
+        cov = cov * max(1.0, reduced)
+        used = keep[:n_lines].copy()
+        rejected = ~used
+        lam = np.polynomial.polynomial.polyval(t[p_idx], coeffs)
+        disp = np.abs(np.polynomial.polynomial.polyval(t[p_idx], np.polynomial.polynomial.polyder(coeffs))) / scale
+        resid_px = (features.wavelength[f_idx] - lam) / disp
+        loo_nm = _loo_residuals(tt, np.r_[features.wavelength[f_idx], [m.wavelength_nm for m in pairs]], ss, keep,
+                                coeffs.size - 1)
+        loo_px = np.where(used, loo_nm[:n_lines] / disp, resid_px)
+        sigma_px = ss[:n_lines] / disp
+    anchor = used & (features.sigma[f_idx] / disp <= _FEATURE_FIT_LIMIT_PX)
     if used.any():
         weights = 1.0 / sigma_px[used] ** 2
         rms = float(np.sqrt(np.sum(weights * resid_px[used] ** 2) / np.sum(weights)))
@@ -847,6 +891,8 @@ def _final_score(c: _Candidate, peaks: _Peaks, *, centre, scale, t_ends, fwhm, n
         disp = abs(float(np.polynomial.polynomial.polyval((peaks.pixel[pi] - centre) / scale, derivative))) / scale
         sigma_px = math.hypot(peaks.sigma[pi], f.sigma[fi] / max(disp, 1e-12), 0.15)  # 0.15 px: model and JPEG
         score -= 0.5 * min((c.resid_px[k] / sigma_px) ** 2, 9.0)
+        if abs(c.resid_px[k]) > max(2.0, 6.0 * sigma_px):
+            score -= 10.0  # the other lines put it far from its reference: the assignment is not consistent
     score -= 2.0 * max(0, c.coefficients.size - n_pairs)
     # Brightness should roughly follow the listed intensities (camera response and lamp-to-lamp
     # differences allow a factor 5 brighter or 30 fainter at 1 sigma): a bright line on a faint
@@ -871,6 +917,8 @@ def _final_score(c: _Candidate, peaks: _Peaks, *, centre, scale, t_ends, fwhm, n
     unexplained = np.ones(peaks.pixel.size, dtype=bool)
     unexplained[c.peak_index] = False
     score -= 1.0 * float(np.count_nonzero(unexplained & (peaks.snr >= 20.0)))
+    # ... and above all the brightest three: a lamp's brightest lines are its listed lines.
+    score -= 4.0 * float(np.count_nonzero(unexplained[np.argsort(-peaks.amplitude)[:3]]))
     score -= 3.0 * max(0.0, c.rms_px - 0.5)
     return score
 
