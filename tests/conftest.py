@@ -6,9 +6,6 @@ External references used across the suite are named beside each check.
 from __future__ import annotations
 
 import os
-import shutil
-import subprocess
-import time
 
 import numpy as np
 import pytest
@@ -26,17 +23,12 @@ def xdisplay():
     if os.environ.get("DISPLAY"):
         yield os.environ["DISPLAY"]
         return
-    xvfb = shutil.which("Xvfb")
-    if xvfb is None:
+    from benchspec.gui.display import start_virtual_display
+
+    started = start_virtual_display(base=90)
+    if started is None:
         pytest.skip("GUI tests need Xvfb (Debian package xvfb); .ci/run installs it")
-    display = ":%d" % (90 + os.getpid() % 100)
-    proc = subprocess.Popen([xvfb, display, "-screen", "0", "1280x900x24", "-nolisten", "tcp"],
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    for _ in range(50):
-        if os.path.exists(f"/tmp/.X11-unix/X{display[1:]}"):
-            break
-        time.sleep(0.1)
-    os.environ["DISPLAY"] = display
+    display, proc = started
     try:
         yield display
     finally:

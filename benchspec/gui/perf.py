@@ -30,6 +30,8 @@ import tempfile
 import time
 from pathlib import Path
 
+from .display import start_virtual_display
+
 import numpy as np
 
 __all__ = ["write_test_video", "measure_viewer"]
@@ -62,18 +64,10 @@ def write_test_video(path, *, frames: int = 90, fps: float = 30.0, seed: int = 1
 def _ensure_display() -> subprocess.Popen | None:
     if os.environ.get("DISPLAY"):
         return None
-    xvfb = shutil.which("Xvfb")
-    if xvfb is None:
+    started = start_virtual_display(base=150)
+    if started is None:
         raise RuntimeError("no DISPLAY and no Xvfb; install the Debian package xvfb")
-    display = ":%d" % (150 + os.getpid() % 100)
-    proc = subprocess.Popen([xvfb, display, "-screen", "0", "1280x900x24", "-nolisten", "tcp"],
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    for _ in range(50):
-        if os.path.exists(f"/tmp/.X11-unix/X{display[1:]}"):
-            break
-        time.sleep(0.1)
-    os.environ["DISPLAY"] = display
-    return proc
+    return started[1]
 
 
 def measure_viewer(video=None, *, seconds: float = 10.0, calibrate: bool = True, lamp: str = "cfl",
