@@ -72,8 +72,13 @@ def panel_on(xdisplay):
         return panel
 
     yield make
+    import gc
+
     for root in roots:
         root.destroy()
+    # Collect the page's Tk objects now, on the Tk thread (as the viewer does when it closes): left to
+    # chance, a later test's worker thread would run their clean-up, and Tk cannot answer there.
+    gc.collect()
 
 
 def _press(panel, button: str, spectrum=None, *, ok: bool = True):
@@ -211,6 +216,47 @@ def test_each_practical_matches_the_core(panel_on, demo_spectra):
     assert panel.large_window.winfo_viewable()
     # every result and warning also went to the window's log
     assert any("R_H =" in text for _, text in panel.reports)
+
+
+def test_beer_lambert_standards_and_an_unknown(panel_on, demo_spectra):
+    """A simulated dilution series of the demo dye recovers the dye's concentration (issue 6's check)."""
+    from benchspec.analysis.absorbance import (absorbance_spectrum, band_absorbance, fit_beer_lambert,
+                                               predict_concentration)
+
+    _, spectra = demo_spectra
+    blank, dye = spectra["blank"], spectra["dye"]
+    panel = panel_on()
+    panel.radios["absorbance"].invoke()
+    _press(panel, "blank", blank)
+    # fewer than 2 standards: a clear refusal, no invented line
+    messages = _press(panel, "fit_standards", ok=False)
+    assert any(m.startswith("error:") and "standard" in m for m in messages)
+    # standards: the blank dimmed by the dye's own absorbance shape, scaled to c / 2 (invented units: c = 2 is the dye)
+    shape = np.nan_to_num(absorbance_spectrum(dye, blank=blank).absorbance, nan=0.0)
+    panel.concentration_unit.set("units")
+    for c in (0.5, 1.0, 2.0, 3.0):
+        _press(panel, "sample", blank.with_(intensity=blank.intensity * 10 ** (-shape * c / 2)))
+        panel.standard_concentration.set(f"{c:g}")
+        panel.buttons["add_standard"].invoke()
+        assert panel.messages[-1].startswith("info: standard")
+    wavelength = float(panel.standard_wavelength.get())  # the first standard's peak, kept for the rest
+    _press(panel, "fit_standards")
+    readings = [band_absorbance(absorbance_spectrum(blank.with_(intensity=blank.intensity * 10 ** (-shape * c / 2)),
+                                                    blank=blank), wavelength_nm=wavelength) for c in (0.5, 1.0, 2.0, 3.0)]
+    core = fit_beer_lambert([0.5, 1.0, 2.0, 3.0], [r.absorbance for r in readings],
+                            absorbance_uncertainties=[r.absorbance_uncertainty for r in readings], concentration_unit="units")
+    assert panel.fit.slope_per_concentration == core.slope_per_concentration
+    assert f"R^2 = {core.r_squared:.4f}" in panel.shown_text()
+    # the real dye frame as the unknown
+    _press(panel, "sample", dye)
+    _press(panel, "unknown")
+    reading = band_absorbance(absorbance_spectrum(dye, blank=blank), wavelength_nm=wavelength)
+    expected = predict_concentration(core, reading.absorbance, absorbance_uncertainty=reading.absorbance_uncertainty,
+                                     label="unknown")
+    shown = panel.results["unknown"]
+    assert shown.concentration == expected.concentration
+    assert f"c = {expected.concentration:.4g} ± {expected.concentration_uncertainty:.2g} units" in panel.shown_text()
+    assert abs(shown.concentration - 2.0) <= 3 * shown.concentration_uncertainty  # recovered within its uncertainty
 
 
 def test_bad_input_gets_one_line_and_the_page_stays_usable(panel_on, demo_spectra):

@@ -188,6 +188,28 @@ def describe_absorbance(result) -> str:
     return "\n".join(lines)
 
 
+def describe_fit(fit, *, wavelength_nm: float | None = None) -> str:
+    unit = f" {fit.concentration_unit}" if fit.concentration_unit else ""
+    where = f" at {wavelength_nm:g} nm" if wavelength_nm is not None else ""
+    return (f"Beer-Lambert{where}, {fit.concentrations.size} standards: A = ({fit.slope_per_concentration:.4g} ± "
+            f"{fit.slope_uncertainty:.2g}) c + ({fit.intercept:.4f} ± {fit.intercept_uncertainty:.4f})\n"
+            f"R^2 = {fit.r_squared:.4f}; limit of detection {fit.limit_of_detection:.3g}{unit}, "
+            f"of quantitation {fit.limit_of_quantitation:.3g}{unit}\n"
+            "Now measure an unknown against the same blank and press Read unknown.")
+
+
+def describe_estimate(estimate, *, wavelength_nm: float | None = None) -> str:
+    unit = f" {estimate.concentration_unit}" if estimate.concentration_unit else ""
+    lines = [f"Unknown: c = {estimate.concentration:.4g} ± {estimate.concentration_uncertainty:.2g}{unit} "
+             f"(A = {estimate.absorbance:.4f} ± {estimate.absorbance_uncertainty:.4f}"
+             + (f" at {wavelength_nm:g} nm)" if wavelength_nm is not None else ")")]
+    if estimate.below_limit_of_detection:
+        lines.append("Below the limit of detection: report it as 'not detected'.")
+    if estimate.outside_calibration_range:
+        lines.append("Outside the standards' range: dilute it or add a standard.")
+    return "\n".join(lines)
+
+
 def describe_rydberg(result) -> str:
     lines = [f"R_H = {result.rydberg_per_m:.6e} ± {result.uncertainty_per_m:.1e} /m"
              + (" (scaled by the Birge ratio)" if result.scaled else ""),
@@ -290,6 +312,13 @@ class PracticalsPanel(ttk.Frame):
     lasers : sequence of benchspec.refdata.Laser, optional
         The lasers offered for the laser check (default
         :func:`benchspec.refdata.load_lasers`).
+
+    Notes
+    -----
+    Whoever destroys the page should run ``gc.collect()`` on the Tk thread
+    afterwards (the viewer does when it closes): Tk variables and images
+    left in reference cycles would otherwise be freed by whichever thread
+    the collector next runs on, and Tk cannot answer there.
     """
 
     def __init__(self, parent, *, current_spectrum: Callable[[], Spectrum | None],
@@ -316,6 +345,8 @@ class PracticalsPanel(ttk.Frame):
         self.pending: set[int] = set()
         self.response = None                     # SpectralResponse in use
         self.blank: Spectrum | None = None
+        self.standards: list[tuple[float, float, float, float]] = []   # c, A, sigma_A, wavelength_nm
+        self.fit = None                          # BeerLambertFit of the standards
         self.results: dict[str, Any] = {}        # practical -> the core result shown
         self.last_outcome: PracticalOutcome | None = None
         self.messages: list[str] = []
@@ -426,6 +457,21 @@ class PracticalsPanel(ttk.Frame):
                                   "Take a dark (Dark) before both.")
         self._button(page, "blank", "Take as blank", self.take_blank, 1, 0)
         self._button(page, "sample", "Measure sample", self.measure_sample, 1, 1)
+        # Beer-Lambert: each measured sample can be a standard of known concentration, or an unknown
+        beer = ttk.Frame(page)
+        beer.grid(row=2, column=0, columnspan=4, sticky="w", pady=(2, 0))
+        ttk.Label(beer, text="at nm").grid(row=0, column=0, sticky="w")
+        self.standard_wavelength = tk.StringVar(value="")
+        ttk.Entry(beer, textvariable=self.standard_wavelength, width=6).grid(row=0, column=1, padx=(2, 4))
+        ttk.Label(beer, text="c").grid(row=0, column=2, sticky="w")
+        self.standard_concentration = tk.StringVar(value="")
+        ttk.Entry(beer, textvariable=self.standard_concentration, width=6).grid(row=0, column=3, padx=(2, 2))
+        self.concentration_unit = tk.StringVar(value="mg/L")
+        ttk.Entry(beer, textvariable=self.concentration_unit, width=6).grid(row=0, column=4, padx=(0, 4))
+        self._button(beer, "add_standard", "Add standard", self.add_standard, 0, 5)
+        self._button(beer, "fit_standards", "Fit standards", self.fit_standards, 1, 0).grid(columnspan=2)
+        self._button(beer, "unknown", "Read unknown", self.read_unknown, 1, 2).grid(columnspan=2)
+        self._button(beer, "clear_standards", "Clear", self.clear_standards, 1, 5)
         return page
 
     def _build_rydberg(self, parent) -> ttk.Frame:
@@ -600,6 +646,100 @@ class PracticalsPanel(ttk.Frame):
 
         self._start("absorbance", "sample", compute, "measuring the sample against the blank…")
 
+    def _last_absorbance(self, what: str):
+        result = self.results.get("absorbance")
+        if result is None:
+            self.tell(f"{what}: measure a sample against the blank first", level="error")
+        return result
+
+    def _standard_wavelength(self, result) -> float:
+        """The wavelength of the Beer-Lambert reading: the entry, else the measured sample's peak (then kept)."""
+        value = parse_number("the wavelength", self.standard_wavelength.get(), blank_ok=True)
+        if value is None:
+            peak = absorbance_peak(result)
+            if peak is None:
+                raise AnalysisError("no measurable absorbance peak to read at: type a wavelength in 'at nm'")
+            value = round(peak[0], 1)
+            self.standard_wavelength.set(f"{value:g}")
+        return value
+
+    def add_standard(self) -> None:
+        """Keep the last measured sample as a standard of the concentration typed in 'c'."""
+        from ..analysis.absorbance import band_absorbance
+
+        result = self._last_absorbance("add standard")
+        if result is None:
+            return
+        try:
+            concentration = parse_number("the concentration", self.standard_concentration.get())
+            wavelength = self._standard_wavelength(result)
+            reading = band_absorbance(result, wavelength_nm=wavelength)
+        except BenchspecError as exc:
+            self.tell(f"add standard: {exc}", level="error")
+            return
+        self.standards.append((concentration, reading.absorbance, reading.absorbance_uncertainty, wavelength))
+        self.tell(f"standard {len(self.standards)}: c = {concentration:g} {self.concentration_unit.get()}, "
+                  f"A = {reading.absorbance:.4f} ± {reading.absorbance_uncertainty:.4f} at {wavelength:g} nm")
+
+    def clear_standards(self) -> None:
+        self.standards.clear()
+        self.fit = None
+        self.tell("standards cleared")
+
+    def fit_standards(self) -> None:
+        standards = list(self.standards)
+        if len({s[3] for s in standards}) > 1:
+            self.tell("fit standards: the standards were read at different wavelengths; Clear and add them again",
+                      level="error")
+            return
+        unit = self.concentration_unit.get().strip()
+
+        def job():
+            from ..analysis.absorbance import fit_beer_lambert
+            from ..analysis.plots import beer_lambert_figure
+
+            c, a, sa = (np.array([s[k] for s in standards], dtype=float) for k in range(3))
+            fit = fit_beer_lambert(c, a, absorbance_uncertainties=sa, concentration_unit=unit)
+            text = describe_fit(fit, wavelength_nm=standards[0][3] if standards else None)
+            return text, lambda: beer_lambert_figure(fit, absorbance_uncertainties=sa), fit, {"fit": fit}
+
+        self._start_plain("absorbance", "fit", job, f"fitting Beer-Lambert to {len(standards)} standard(s)…",
+                          with_result=True)
+
+    def read_unknown(self) -> None:
+        """The concentration of the last measured sample, read off the Beer-Lambert fit."""
+        from ..analysis.absorbance import band_absorbance
+
+        fit = self.fit
+        if fit is None:
+            self.tell("read unknown: fit the standards first (at least 2)", level="error")
+            return
+        result = self._last_absorbance("read unknown")
+        if result is None:
+            return
+        wavelength = self.standards[0][3] if self.standards else None
+        try:
+            if wavelength is None:
+                wavelength = self._standard_wavelength(result)
+            reading = band_absorbance(result, wavelength_nm=wavelength)
+        except BenchspecError as exc:
+            self.tell(f"read unknown: {exc}", level="error")
+            return
+        uncertainties = np.array([s[2] for s in self.standards], dtype=float) if self.standards else None
+
+        def job():
+            from ..analysis.absorbance import predict_concentration
+            from ..analysis.plots import beer_lambert_figure
+
+            estimate = predict_concentration(fit, reading.absorbance, absorbance_uncertainty=reading.absorbance_uncertainty,
+                                             label="unknown")
+            def figure():
+                return beer_lambert_figure(fit, unknowns=[estimate], absorbance_uncertainties=uncertainties)
+
+            return describe_estimate(estimate, wavelength_nm=wavelength), figure, estimate, {}
+
+        self._start_plain("absorbance", "unknown", job, "reading the unknown off the fit…", with_result=True)
+
     def measure_rydberg(self) -> None:
         def compute(spectrum):
             from ..analysis.plots import rydberg_figure
@@ -724,11 +864,14 @@ class PracticalsPanel(ttk.Frame):
             self.response = outcome.keep["response"]
         if "blank" in outcome.keep:
             self.blank = outcome.keep["blank"]
+        if "fit" in outcome.keep:
+            self.fit = outcome.keep["fit"]
         self.last_outcome = outcome
         if outcome.value is None:  # a plain job (saving): its text is the message
             self.tell(outcome.text)
             return
-        self.results[outcome.action if outcome.action in ("apply", "blank") else outcome.practical] = outcome.value
+        keyed_by_action = ("apply", "blank", "fit", "unknown")
+        self.results[outcome.action if outcome.action in keyed_by_action else outcome.practical] = outcome.value
         self._show_text(outcome.text)
         if outcome.figure is not None:
             self._show_figure(outcome.figure)
