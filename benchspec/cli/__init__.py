@@ -73,6 +73,17 @@ def main(argv: list[str] | None = None) -> int:
         except KeyboardInterrupt:
             print("benchspec: interrupted", file=sys.stderr)
             return 130
+        except (MemoryError, RecursionError, OSError, ValueError, TypeError, ArithmeticError, LookupError, RuntimeError) as exc:
+            # Not a message we wrote: a bug of ours. Still one line, and a different exit code
+            # from bad input (2), so scripts can tell them apart.
+            if args.debug:
+                raise
+            print(
+                f"benchspec {args.command}: internal error: {type(exc).__name__}: {' '.join(str(exc).split())[:300]}; "
+                "this is a bug in benchspec: rerun with --debug for the traceback and report it",
+                file=sys.stderr,
+            )
+            return 1
 
 
 def _show_warning(message, category, filename, lineno, file=None, line=None):
