@@ -45,6 +45,7 @@ __all__ = [
     "Calibration",
     "calibrate_frames",
     "extract_frames",
+    "iter_extract_frames",
     "apply_calibration",
     "read_calibration",
     "write_calibration",
@@ -349,7 +350,60 @@ def extract_frames(
         )
         return apply_calibration(spectrum.with_(provenance=provenance), calibration)
 
-    # One spectrum per frame: the dark is stacked once, every frame is linearised alike.
+    spectra = list(iter_extract_frames(frames, calibration, dark=dark, extraction=extraction, _calibration_path=cal_path))
+    if not spectra:
+        raise FrameError("no frames to extract; pass image files, a folder, a glob pattern or a video")
+    return spectra
+
+
+def iter_extract_frames(
+    frames,
+    calibration: Calibration | str | os.PathLike,
+    *,
+    dark=None,
+    extraction: str | None = None,
+    band_check_every: int = 30,
+    interpolation: str = "linear",
+    _calibration_path=None,
+):
+    """One calibrated spectrum per frame, streamed: a time series of any length in bounded memory.
+
+    Frames are decoded on a second thread, a few ahead (a bounded queue), and
+    go through one :class:`~benchspec.extract.LiveExtractor` built from the
+    calibration's geometry (remap tables and aperture weights computed once).
+    The default bilinear resampling is about three times faster than the
+    bicubic one used for stacked frames; lines come out about 7% wider, their
+    centres and fluxes are unchanged (``interpolation="cubic"`` to match the
+    stacked path). The noise model is estimated once, from the first frame.
+    The band's position is checked on the first frame and every
+    ``band_check_every`` frames after it.
+
+    Yields
+    ------
+    Spectrum
+        As :func:`extract_frames` with ``each=True`` returns them; the
+        provenance gives the frame's file and index and the series index.
+    """
+    from .extract import LiveExtractor, estimate_noise_model
+    from .frames import FramePreparer
+    from .io import build_provenance
+
+    if band_check_every < 1:
+        raise InputError(f"`band_check_every` must be at least 1, was {band_check_every}")
+    cal_path = _calibration_path
+    if isinstance(calibration, (str, os.PathLike)):
+        cal_path = Path(calibration)
+        calibration = read_calibration(cal_path)
+    if not isinstance(calibration, Calibration):
+        raise InputError(f"`calibration` must be a Calibration or a calibration file path, got {type(calibration).__name__}")
+    settings = calibration.settings
+    gamma = str(settings.get("gamma_requested", settings.get("gamma", "auto")))
+    channel = str(settings.get("channel", "mean"))
+    extraction = extraction or str(settings.get("extraction", "optimal"))
+    cal_record = _calibration_mapping(calibration, cal_path)
+    run_settings = {"gamma": gamma, "channel": channel, "stack": "none (one spectrum per frame)", "extraction": extraction}
+
+    # The dark is stacked once; every frame is linearised alike.
     dark_stack = None
     dark_records: list[dict] = []
     if dark is not None:
@@ -363,27 +417,73 @@ def extract_frames(
             dark_records = [{"path": str(p), "sha256": file_sha256(p)} for p in expand_sources(dark)]
     if _is_array_input(frames):
         arrays = [frames] if isinstance(frames, np.ndarray) else list(frames)
-        sources = [(None, k, a) for k, a in enumerate(arrays)]
+        sources = ((None, k, a) for k, a in enumerate(arrays))
     else:
-        sources = _iter_labelled(frames)
-    spectra = []
-    for path, index, frame in sources:
-        stacked = stack_frames([frame], gamma=gamma, channel=channel, dark=dark_stack)
+        sources = _decoded_ahead(_iter_labelled(frames))
+    extractor = None
+    band: dict = {}
+    gamma_resolved = None
+    for series_index, (path, index, frame) in enumerate(sources):
         label = f"{path or 'array'} frame {index}"
-        _check_frame_size(stacked.shape, calibration, cal_path, label)
-        band = _check_band(stacked.image, calibration, label)
-        spectrum = extract_stack(stacked, calibration.geometry, method=extraction)
+        if extractor is None or series_index % band_check_every == 0:
+            stacked = stack_frames([frame], gamma=gamma, channel=channel, dark=dark_stack)
+            _check_frame_size(stacked.shape, calibration, cal_path, label)
+            band = _check_band(stacked.image, calibration, label)
+            gamma_resolved = stacked.settings.get("gamma")
+            if extractor is None:
+                noise = estimate_noise_model(stacked, geometry=calibration.geometry)
+                preparer = FramePreparer(gamma=gamma, channel=channel,
+                                         dark=None if dark_stack is None else dark_stack.image)
+                extractor = LiveExtractor(calibration.geometry, noise_model=noise, method=extraction,
+                                          preparer=preparer, interpolation=interpolation)
+        spectrum = extractor.process_raw(frame)
         provenance = build_provenance(
             frames=[{"path": None if path is None else str(path), "frame_index": index, "sha256": None}],
             dark_frames=[r for r in dark_records if r["path"]],
             calibration=cal_record,
-            settings=dict(run_settings, gamma_resolved=stacked.settings.get("gamma"), n_frames=1),
-            extra={"band_check": band, "time_series_index": len(spectra)},
+            settings=dict(run_settings, gamma_resolved=gamma_resolved, n_frames=1),
+            extra={"band_check": band, "time_series_index": series_index},
         )
-        spectra.append(apply_calibration(spectrum.with_(provenance=provenance), calibration))
-    if not spectra:
-        raise FrameError("no frames to extract; pass image files, a folder, a glob pattern or a video")
-    return spectra
+        yield apply_calibration(spectrum.with_(provenance=provenance), calibration)
+
+
+def _decoded_ahead(items, *, depth: int = 4):
+    """The same items, produced by a second thread at most ``depth`` ahead (OpenCV decodes without the GIL)."""
+    import queue
+    import threading
+
+    mailbox: queue.Queue = queue.Queue(maxsize=depth)  # bounded: memory stays flat whatever the length
+    stop = threading.Event()
+    done = object()
+
+    def produce():
+        try:
+            for item in items:
+                while not stop.is_set():
+                    try:
+                        mailbox.put(item, timeout=0.1)
+                        break
+                    except queue.Full:
+                        continue
+                if stop.is_set():
+                    return
+            mailbox.put(done)
+        except BaseException as exc:  # handed to the consumer, raised there
+            mailbox.put(exc)
+
+    worker = threading.Thread(target=produce, name="benchspec-decode", daemon=True)
+    worker.start()
+    try:
+        while True:
+            item = mailbox.get()
+            if item is done:
+                return
+            if isinstance(item, BaseException):
+                raise item
+            yield item
+    finally:
+        stop.set()
+        worker.join(timeout=5)
 
 
 def _check_frame_size(shape, calibration: Calibration, cal_path, what: str) -> None:

@@ -124,6 +124,7 @@ def _write(spectrum, path: Path, *, force: bool):
 
 
 def _extract(args) -> int:
+    from ..analysis.response import apply_response, load_response
     from ..io import SPECTRUM_EXTENSIONS
     from ..pipeline import extract_frames
 
@@ -134,23 +135,42 @@ def _extract(args) -> int:
         raise ExportError(f"{out} already exists; pass --force to overwrite it, or choose another name")
     response = None
     if args.response:
-        from ..analysis.response import apply_response, load_response
-
         response = load_response(args.response)  # checked before any frame is read
-    result = extract_frames(args.frames, args.calibration, dark=args.dark, each=args.each, extraction=args.extraction)
+    if args.each:
+        return _extract_series(args, out, response)
+    result = extract_frames(args.frames, args.calibration, dark=args.dark, each=False, extraction=args.extraction)
     if response is not None:
-        result = [apply_response(s, response) for s in result] if args.each else apply_response(result, response)
-    if not args.each:
-        path = _write(result, out, force=args.force)
-        print(f"wrote {path} ({result.size} columns, {result.wavelength_nm[0]:.1f}-{result.wavelength_nm[-1]:.1f} nm)")
-        return 0
-    targets = [out.with_name(f"{out.stem}_{k:04d}{out.suffix}") for k in range(len(result))]
-    clash = [t for t in targets if t.exists()]
+        result = apply_response(result, response)
+    path = _write(result, out, force=args.force)
+    print(f"wrote {path} ({result.size} columns, {result.wavelength_nm[0]:.1f}-{result.wavelength_nm[-1]:.1f} nm)")
+    return 0
+
+
+def _extract_series(args, out: Path, response) -> int:
+    """--each: stream one spectrum per frame to SPEC_0000.csv, SPEC_0001.csv, ... as they are made."""
+    import re
+
+    from ..analysis.response import apply_response
+    from ..pipeline import iter_extract_frames
+
+    pattern = re.compile(re.escape(out.stem) + r"_\d{4,}" + re.escape(out.suffix) + "$")
+    folder = out.parent if str(out.parent) else Path(".")
+    clash = sorted(p for p in folder.glob(f"{out.stem}_*{out.suffix}") if pattern.match(p.name))
     if clash and not args.force:
         raise ExportError(f"{clash[0]} already exists; pass --force to overwrite the series, or choose another name")
-    for spectrum, target in zip(result, targets):
+    first = last = None
+    count = 0
+    for spectrum in iter_extract_frames(args.frames, args.calibration, dark=args.dark, extraction=args.extraction):
+        if response is not None:
+            spectrum = apply_response(spectrum, response)
+        target = out.with_name(f"{out.stem}_{count:04d}{out.suffix}")
         _write(spectrum, target, force=args.force)
-    print(f"wrote {len(targets)} spectra: {targets[0].name} ... {targets[-1].name}")
+        first = first or target
+        last = target
+        count += 1
+    if count == 0:
+        raise ExportError("no frames to extract; pass image files, a folder, a glob pattern or a video")
+    print(f"wrote {count} spectra: {first.name} ... {last.name}")
     return 0
 
 
