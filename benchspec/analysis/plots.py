@@ -164,18 +164,16 @@ def rydberg_figure(result, *, spectrum=None, title: str | None = None):
 
 
 def metrics_figure(metrics, spectrum, *, title: str | None = None):
-    """The source spectrum filled with its wavelength colours, peak/centroid/FWHM marked."""
+    """The source spectrum with peak/centroid/FWHM marked and a thin strip of wavelength colours below it."""
     with _style():
         figure, axes = _figure(1)
         ax = axes[0]
         wl, y = spectrum.wavelength_nm, spectrum.intensity
-        # The area under the curve shows each wavelength's own colour: one image, clipped by the curve.
+        # A thin strip of each wavelength's CIE colour under the axis, nothing filled under the curve.
         grid = np.linspace(wl[0], wl[-1], 800)
         top = float(np.nanmax(y)) * 1.05
-        image = ax.imshow(_colours(grid)[None, :, :], aspect="auto", extent=(wl[0], wl[-1], 0, top), origin="lower",
-                          interpolation="bilinear", zorder=1)
-        area = ax.fill_between(wl, 0, np.clip(np.nan_to_num(y), 0, None), facecolor="none", edgecolor="none")
-        image.set_clip_path(area.get_paths()[0], transform=ax.transData)
+        ax.imshow(_colours(grid)[None, :, :], aspect="auto", extent=(wl[0], wl[-1], -0.04 * top, -0.01 * top),
+                  origin="lower", interpolation="bilinear", zorder=1)
         ax.plot(wl, y, color="0.1", linewidth=0.9, zorder=3)
         ax.axvline(metrics.peak_nm, color="0.2", linewidth=0.7, linestyle="--", label=f"peak {metrics.peak_nm:.2f} nm")
         ax.axvline(metrics.centroid_nm, color="0.5", linewidth=0.7, linestyle=":", label=f"centroid {metrics.centroid_nm:.2f} nm")
@@ -192,7 +190,7 @@ def metrics_figure(metrics, spectrum, *, title: str | None = None):
             parts.append(f"dominant {metrics.dominant_wavelength_nm:.1f} nm")
         ax.set_title(title or "; ".join(parts))
         ax.set_xlim(wl[0], wl[-1])
-        ax.set_ylim(bottom=0)
+        ax.set_ylim(-0.05 * top, top)
         ax.set_xlabel("wavelength in air (nm)")
         ax.set_ylabel("relative spectral power")
         ax.legend(loc="upper right", fontsize=7)

@@ -275,14 +275,6 @@ def describe_plan(plan) -> str:
     return "\n".join(lines)
 
 
-def _without_colour_fill(figure):
-    """The viewer shows no colour fill under a curve: drop the image a figure clipped to its curve."""
-    for ax in figure.axes:
-        for image in list(ax.images):
-            image.remove()
-    return figure
-
-
 # --------------------------------------------------------------------------- the panel
 
 
@@ -774,7 +766,7 @@ class PracticalsPanel(ttk.Frame):
             metrics = source_metrics(spectrum, **options)
             text = describe_metrics(metrics)
             text += "\n(response-corrected)" if response is not None else "\n(not response-corrected: colour figures are approximate)"
-            return text, lambda: _without_colour_fill(metrics_figure(metrics, spectrum)), metrics, {}
+            return text, lambda: metrics_figure(metrics, spectrum), metrics, {}
 
         self._start("source", "source", compute, "measuring the source…")
 
