@@ -169,7 +169,9 @@ def test_each_practical_matches_the_core(panel_on, demo_spectra):
     assert f"dominant wavelength {core.dominant_wavelength_nm:.1f} nm" in text
     assert f"x = {core.cie_x:.4f}" in text and f"y = {core.cie_y:.4f}" in text
     assert "CCT, Duv: n/a" in text  # a red LED is not white
-    assert not panel.canvas.figure.axes[0].images  # no colour fill under the curve in the viewer
+    # No colour fill under the curve: the only image is the thin wavelength strip below zero.
+    for image in panel.canvas.figure.axes[0].images:
+        assert image.get_extent()[3] <= 0
 
     # -- the green laser pointer, checked against the DPSS green entry of the laser list
     dpss = next(l for l in load_lasers() if l.key == "dpss-green")
