@@ -24,6 +24,14 @@ Top level (all keys required unless marked optional)::
                          "pixel_centre": p0, "pixel_scale": s,   t = (pixel - p0) / s,
                          "covariance_nm2": [[...]],              (order+1) x (order+1),
                          "pixel_range": [first, last]}           rectified columns fitted
+                        or, when the grating model fits better (see benchspec.wavecal):
+                        {"model": "grating", "parameter_names": ["A_nm", "theta_rad", "x0_px", "f_px"],
+                         "parameters": [A, theta, x0, f],        lambda = A sin(theta + atan(sign (pixel - x0) / f)) + B,
+                         "sign": 1 | -1, "offset_nm": B,         (B = 0: normal incidence)
+                         "covariance": [[...]],                  4 x 4, in the parameters' units,
+                         "pixel_centre", "pixel_scale", "pixel_range"}
+                        "model" is required; files written before the grating model existed
+                        all say "polynomial" and load unchanged.
         matches         one object per matched line: pixel, pixel_uncertainty,
                         reference_nm, reference_uncertainty_nm, fitted_nm, residual_nm,
                         residual_px, species, members_nm (blend members), lamp,
@@ -60,7 +68,7 @@ from typing import Any, Mapping, Sequence
 from . import __version__
 from .errors import ExportError, FileFormatError, InputError
 from .geometry import Geometry
-from .wavecal import MatchedLine, WavelengthCalibration
+from .wavecal import GRATING_PARAMETERS, MatchedLine, WavelengthCalibration
 
 __all__ = ["SCHEMA", "UNITS", "Calibration", "write_calibration", "read_calibration", "calibration_from_dict"]
 
@@ -188,19 +196,38 @@ def _validate_wavelength(data, origin: str, n_columns: int) -> WavelengthCalibra
     solution = data["solution"]
     if not isinstance(solution, Mapping):
         _fail(origin, "`wavelength_calibration.solution` must be an object")
-    if solution.get("model") != "polynomial":
-        _fail(origin, f"`solution.model` must be 'polynomial', got {solution.get('model')!r}")
-    coefficients = _numbers(solution.get("coefficients_nm"), "solution.coefficients_nm", origin)
-    if not 2 <= len(coefficients) <= 4:
-        _fail(origin, f"`solution.coefficients_nm` must hold 2-4 numbers (order 1-3), has {len(coefficients)}")
-    order = solution.get("order")
-    if order != len(coefficients) - 1:
-        _fail(origin, f"`solution.order` is {order!r} but there are {len(coefficients)} coefficients")
-    covariance = solution.get("covariance_nm2")
+    model = solution.get("model")
+    if model == "polynomial":
+        coefficients = _numbers(solution.get("coefficients_nm"), "solution.coefficients_nm", origin)
+        if not 2 <= len(coefficients) <= 4:
+            _fail(origin, f"`solution.coefficients_nm` must hold 2-4 numbers (order 1-3), has {len(coefficients)}")
+        order = solution.get("order")
+        if order != len(coefficients) - 1:
+            _fail(origin, f"`solution.order` is {order!r} but there are {len(coefficients)} coefficients")
+        covariance = solution.get("covariance_nm2")
+        cov_key = "covariance_nm2"
+    elif model == "grating":
+        names = solution.get("parameter_names")
+        if names != list(GRATING_PARAMETERS):
+            _fail(origin, f"`solution.parameter_names` must be {list(GRATING_PARAMETERS)}, got {names!r}")
+        coefficients = _numbers(solution.get("parameters"), "solution.parameters", origin, length=len(GRATING_PARAMETERS))
+        a_nm, theta_rad, _, f_px = coefficients
+        if not a_nm > 0 or not f_px > 0:
+            _fail(origin, f"`solution.parameters` A_nm and f_px must be positive, were {a_nm} and {f_px}")
+        if not abs(theta_rad) < math.pi / 2:
+            _fail(origin, f"`solution.parameters` theta_rad must lie within +-pi/2, was {theta_rad}")
+        sign = _number(solution.get("sign"), "solution.sign", origin)
+        if sign not in (1.0, -1.0):
+            _fail(origin, f"`solution.sign` must be 1 or -1, was {sign}")
+        _number(solution.get("offset_nm", 0.0), "solution.offset_nm", origin)
+        covariance = solution.get("covariance")
+        cov_key = "covariance"
+    else:
+        _fail(origin, f"`solution.model` must be 'polynomial' or 'grating', got {model!r}")
     if not isinstance(covariance, list) or len(covariance) != len(coefficients):
-        _fail(origin, "`solution.covariance_nm2` must be a square list of lists matching the coefficients")
+        _fail(origin, f"`solution.{cov_key}` must be a square list of lists matching the coefficients")
     for k, row in enumerate(covariance):
-        _numbers(row, f"solution.covariance_nm2[{k}]", origin, length=len(coefficients))
+        _numbers(row, f"solution.{cov_key}[{k}]", origin, length=len(coefficients))
     scale = _number(solution.get("pixel_scale"), "solution.pixel_scale", origin)
     _number(solution.get("pixel_centre"), "solution.pixel_centre", origin)
     if not scale > 0:

@@ -34,8 +34,18 @@ Method
    says why. A wrong lamp or lines that fit no lamp are refused, never
    returned as a wrong solution.
 
+6. *Grating model.* The accepted solution's lines are also fitted with the
+   physical mapping of a pinhole camera behind a grating,
+   lambda(x) = A sin(theta + atan(s (x - x0) / f)) (grating equation at normal
+   incidence, x = x0 + f tan(beta - tilt)), with the same outlier rejection;
+   it replaces the polynomial only where its BIC is lower (by 2 if it has more
+   parameters), compared on the lines either model keeps. Where the tightly
+   known lines stop short of the frame's end (the CFL has none beyond
+   611.6 nm) it extrapolates far better than a cubic.
+
 The solution's 1-sigma uncertainty across the range comes from the fit
-covariance (scaled by the reduced chi-square where that exceeds 1).
+covariance (scaled by the reduced chi-square where that exceeds 1), through the
+Jacobian of the grating model where that was chosen.
 All wavelengths are in air (the line lists are in air).
 """
 
@@ -65,10 +75,16 @@ __all__ = [
     "dispersion_range_for_grating",
     "parse_pair",
     "VERDICTS",
+    "SOLUTION_MODELS",
+    "GRATING_PARAMETERS",
 ]
 
 #: Quality verdicts, best first.
 VERDICTS = ("good", "fair", "poor")
+#: Models a WavelengthSolution can hold.
+SOLUTION_MODELS = ("polynomial", "grating")
+#: Names (and units) of the grating model's coefficients, in order.
+GRATING_PARAMETERS = ("A_nm", "theta_rad", "x0_px", "f_px")
 
 # Systematic floor added to every line centre (JPEG, demosaicing, model), px (common practice, no source).
 _CENTRE_FLOOR_PX = 0.03
@@ -164,19 +180,36 @@ class MatchedLine:
 
 @dataclass(frozen=True)
 class WavelengthSolution:
-    """A polynomial pixel -> air wavelength mapping with its covariance.
+    """A pixel -> air wavelength mapping with its covariance: a polynomial, or the grating model.
 
-    wavelength_nm(p) = sum_k c_k t**k with t = (p - pixel_centre) / pixel_scale.
+    ``model == "polynomial"`` (the default)::
+
+        wavelength_nm(p) = sum_k c_k t**k,  t = (p - pixel_centre) / pixel_scale
+
+    ``model == "grating"`` (a pinhole camera behind a grating: x = x0 + f tan(beta - tilt)
+    and the grating equation m lambda = d (sin alpha + sin beta))::
+
+        wavelength_nm(p) = A sin(theta + atan(s (p - x0) / f)) + B
+
+    with ``coefficients = (A_nm, theta_rad, x0_px, f_px)``, ``s = grating_sign`` (+1 or -1,
+    which side blue is on) and ``B = grating_offset_nm`` (0 at normal incidence; fixed, not fitted).
 
     Attributes
     ----------
     coefficients : tuple of float
-        c_0 ... c_order (nm).
+        Polynomial: c_0 ... c_order (nm). Grating: (A_nm, theta_rad, x0_px, f_px).
     covariance : tuple of tuple of float
-        Covariance of the coefficients (nm^2), already scaled by the reduced chi-square where that exceeds 1.
+        Covariance of the coefficients (nm^2 for a polynomial; in the coefficients' own units
+        for the grating model), already scaled by the reduced chi-square where that exceeds 1.
     pixel_centre, pixel_scale : float
     pixel_range : tuple of float
         The pixel range of the spectrum the solution was fitted on (first, last).
+    model : str
+        ``"polynomial"`` or ``"grating"``.
+    grating_sign : float
+        +1 or -1 (grating model only).
+    grating_offset_nm : float
+        B (grating model only).
     """
 
     coefficients: tuple[float, ...]
@@ -184,27 +217,49 @@ class WavelengthSolution:
     pixel_centre: float
     pixel_scale: float
     pixel_range: tuple[float, float]
+    model: str = "polynomial"
+    grating_sign: float = 1.0
+    grating_offset_nm: float = 0.0
+
+    def __post_init__(self):
+        if self.model not in SOLUTION_MODELS:
+            raise InputError(f"`model` must be one of {', '.join(SOLUTION_MODELS)}, was {self.model!r}")
+        if self.model == "grating" and len(self.coefficients) != 4:
+            raise InputError(f"the grating model needs 4 coefficients (A_nm, theta_rad, x0_px, f_px), got {len(self.coefficients)}")
 
     @property
     def order(self) -> int:
+        """Polynomial order; for the grating model, 3 (it has as many free parameters as a cubic)."""
         return len(self.coefficients) - 1
+
+    @property
+    def description(self) -> str:
+        """A few words for tables: "order 2 polynomial" or "grating model"."""
+        return "grating model" if self.model == "grating" else f"order {self.order} polynomial"
 
     def _t(self, pixel):
         return (np.asarray(pixel, dtype=float) - self.pixel_centre) / self.pixel_scale
 
     def wavelength_nm(self, pixel) -> np.ndarray:
         """Air wavelength (nm) at ``pixel``."""
+        if self.model == "grating":
+            return _grating_eval(self.coefficients, pixel, self.grating_sign, self.grating_offset_nm)
         return np.polynomial.polynomial.polyval(self._t(pixel), self.coefficients)
 
     def dispersion_nm_per_px(self, pixel) -> np.ndarray:
         """d(wavelength)/d(pixel) in nm/px (negative when blue is on the right)."""
+        if self.model == "grating":
+            return _grating_derivative(self.coefficients, pixel, self.grating_sign)
         derivative = np.polynomial.polynomial.polyder(self.coefficients)
         return np.polynomial.polynomial.polyval(self._t(pixel), derivative) / self.pixel_scale
 
     def uncertainty_nm(self, pixel) -> np.ndarray:
         """1-sigma uncertainty of the solution's wavelength at ``pixel`` (nm)."""
-        t = self._t(pixel)
-        basis = np.stack([t**k for k in range(self.order + 1)], axis=-1)
+        if self.model == "grating":
+            basis = _grating_jacobian(self.coefficients, pixel, self.grating_sign)
+        else:
+            t = self._t(pixel)
+            basis = np.stack([t**k for k in range(self.order + 1)], axis=-1)
         cov = np.asarray(self.covariance, dtype=float)
         return np.sqrt(np.maximum(np.einsum("...i,ij,...j->...", basis, cov, basis), 0.0))
 
@@ -222,6 +277,19 @@ class WavelengthSolution:
         return bool(self.dispersion_nm_per_px(0.5 * sum(self.pixel_range)) < 0)
 
     def to_dict(self) -> dict:
+        if self.model == "grating":
+            return {
+                "model": "grating",
+                "variable": "lambda = A sin(theta + atan(sign (pixel - x0) / f)) + B",
+                "parameter_names": list(GRATING_PARAMETERS),
+                "parameters": list(self.coefficients),
+                "covariance": [list(row) for row in self.covariance],
+                "sign": self.grating_sign,
+                "offset_nm": self.grating_offset_nm,
+                "pixel_centre": self.pixel_centre,
+                "pixel_scale": self.pixel_scale,
+                "pixel_range": list(self.pixel_range),
+            }
         return {
             "model": "polynomial",
             "variable": "t = (pixel - pixel_centre) / pixel_scale",
@@ -235,12 +303,26 @@ class WavelengthSolution:
 
     @classmethod
     def from_dict(cls, data) -> "WavelengthSolution":
+        model = data.get("model", "polynomial")
+        pixel_range = (float(data["pixel_range"][0]), float(data["pixel_range"][1]))
+        if model == "grating":
+            return cls(
+                coefficients=tuple(float(c) for c in data["parameters"]),
+                covariance=tuple(tuple(float(v) for v in row) for row in data["covariance"]),
+                pixel_centre=float(data["pixel_centre"]),
+                pixel_scale=float(data["pixel_scale"]),
+                pixel_range=pixel_range,
+                model="grating",
+                grating_sign=float(data["sign"]),
+                grating_offset_nm=float(data.get("offset_nm", 0.0)),
+            )
         return cls(
             coefficients=tuple(float(c) for c in data["coefficients_nm"]),
             covariance=tuple(tuple(float(v) for v in row) for row in data["covariance_nm2"]),
             pixel_centre=float(data["pixel_centre"]),
             pixel_scale=float(data["pixel_scale"]),
-            pixel_range=(float(data["pixel_range"][0]), float(data["pixel_range"][1])),
+            pixel_range=pixel_range,
+            model=model,
         )
 
 
@@ -314,7 +396,7 @@ class WavelengthCalibration:
         disp = float(np.median(np.abs(self.solution.dispersion_nm_per_px(np.linspace(low, high, 9)))))
         w0, w1 = sorted(self.solution.wavelength_nm([low, high]))
         rows.append(
-            f"order {self.solution.order} polynomial, {self.n_used} lines used of {len(self.matches)} matched "
+            f"{self.solution.description}, {self.n_used} lines used of {len(self.matches)} matched "
             f"({self.n_detected} detected); RMS {self.rms_px:.3f} px = {self.rms_nm:.4f} nm; "
             f"range {w0:.1f}-{w1:.1f} nm at {disp:.3f} nm/px, blue on the {'right' if self.solution.blue_on_right else 'left'}; "
             f"solution 1-sigma <= {self.max_uncertainty_nm:.4f} nm between the outer lines"
@@ -616,6 +698,126 @@ def _score_hypotheses(coeffs, peaks: _Peaks, features: _Features, *, centre, sca
         dp = np.abs(coeffs[:, 1] + 2 * coeffs[:, 2] * tp) / scale
         valid &= np.abs(lp - pair.wavelength_nm) < 4.0 * dp + 3 * pair.tolerance_nm
     return np.where(valid, score, -np.inf)
+
+
+# --------------------------------------------------------------------------- the grating model
+#
+# A flat sensor behind a lens behind a transmission grating (pinhole camera): a ray leaving the grating
+# at angle beta lands at x = x0 + f tan(beta - tilt), and the grating equation m lambda = d (sin alpha +
+# sin beta) gives lambda(x) = A sin(theta + atan(s (x - x0) / f)) + B with A = d / m, theta = tilt and
+# B = -A sin(alpha) (0 at normal incidence, the default here). s = +1 or -1 says which side blue is on.
+
+
+def _grating_phase(params, pixel, sign):
+    a, theta, x0, f = (float(v) for v in params)
+    u = sign * (np.asarray(pixel, dtype=float) - x0) / f
+    return a, theta, f, u, theta + np.arctan(u)
+
+
+def _grating_eval(params, pixel, sign, offset_nm=0.0):
+    a, _, _, _, phi = _grating_phase(params, pixel, sign)
+    return a * np.sin(phi) + offset_nm
+
+
+def _grating_derivative(params, pixel, sign):
+    a, _, f, u, phi = _grating_phase(params, pixel, sign)
+    return a * np.cos(phi) * sign / (f * (1.0 + u**2))
+
+
+def _grating_jacobian(params, pixel, sign):
+    """d lambda / d (A, theta, x0, f), shape (..., 4)."""
+    a, _, f, u, phi = _grating_phase(params, pixel, sign)
+    g = a * np.cos(phi) / (1.0 + u**2)
+    return np.stack([np.sin(phi), a * np.cos(phi), -g * sign / f, -g * u / f], axis=-1)
+
+
+def _grating_fit(pixel, lam, sigma, *, sign, width_px, axis_px, start_px, start_nm, start_disp):
+    """Weighted least-squares fit of the grating model (B = 0). Returns (params, cov, chi2) or None.
+
+    Starts from the polynomial's wavelength and |dispersion| at ``start_px`` for a few focal
+    lengths and optical-axis positions; bounds f in [0.2, 20] x width and theta in (-80, 80) deg;
+    a Gaussian prior of 0.1 x width keeps x0 near ``axis_px`` (the middle of the frame).
+    The returned chi2 includes the prior's term.
+    """
+    from scipy.optimize import least_squares
+
+    pixel, lam, sigma = (np.asarray(v, dtype=float) for v in (pixel, lam, sigma))
+    if pixel.size < 5 or not start_nm > 0 or not abs(start_disp) > 0:
+        return None
+    width = max(float(width_px), 10.0)
+    lower = np.array([1.0, math.radians(-80.0), start_px - 20 * width, 0.2 * width])
+    upper = np.array([1e6, math.radians(80.0), start_px + 20 * width, 20.0 * width])
+
+    # Weak prior: the optical axis meets the sensor near the middle of the frame (a webcam's principal
+    # point is within a few per cent of the image centre; common practice, no source). It lifts the
+    # near-degeneracy of x0 with theta that would otherwise make extrapolation loose.
+    axis_px, axis_sigma = float(axis_px), 0.1 * width
+
+    def residual(p):
+        return np.r_[(_grating_eval(p, pixel, sign) - lam) / sigma, (p[2] - axis_px) / axis_sigma]
+
+    def jacobian(p):
+        prior = np.array([[0.0, 0.0, 1.0 / axis_sigma, 0.0]])
+        return np.vstack([_grating_jacobian(p, pixel, sign) / sigma[:, None], prior])
+
+    best = None
+    for f_factor in (0.6, 1.2, 2.5, 6.0):
+        f = f_factor * width
+        for x0 in (axis_px, start_px, start_px - 0.5 * width, start_px + 0.5 * width):
+            # at start_px: A sin(theta + atan(u0)) = lambda0 and A cos(...) / (f (1 + u0^2)) = |D|
+            u0 = sign * (start_px - x0) / f
+            phi = math.atan2(start_nm, abs(start_disp) * f * (1.0 + u0**2))
+            theta = phi - math.atan(u0)
+            a = start_nm / math.sin(phi)
+            p0 = np.array([a, theta, x0, f])
+            if not np.all((p0 > lower) & (p0 < upper)):
+                continue
+            try:
+                fit = least_squares(residual, p0, jac=jacobian, bounds=(lower, upper), x_scale="jac", method="trf",
+                                    max_nfev=200)
+            except (ValueError, np.linalg.LinAlgError):
+                continue
+            chi2 = float(np.sum(fit.fun**2))
+            if np.isfinite(chi2) and (best is None or chi2 < best[2]):
+                best = (fit.x, fit.jac, chi2)
+    if best is None:
+        return None
+    params, jac, chi2 = best
+    try:
+        cov = np.linalg.pinv(jac.T @ jac)
+    except np.linalg.LinAlgError:
+        return None
+    if not np.all(np.isfinite(cov)):
+        return None
+    return params, cov, chi2
+
+
+def _grating_deletion_z(pixel, lam, sigma, params, chi2, sign, keep, refit):
+    """Studentised deletion residuals of the kept lines of a grating fit (0 for the others).
+
+    z_i = r_i / (sigma_i sqrt(1 - h_i)), h from the linearised hat matrix, so that z_i**2 is
+    the drop in chi-square when line i is left out; lines of high leverage (h > 0.8) are
+    refitted without them (``refit(mask)`` -> (params, cov, chi2) or None) and z_i is the
+    square root of the actual drop. Four parameters on a handful of tightly known lines make
+    some lines pivotal, so the prediction's own uncertainty must be counted before calling a
+    line an outlier.
+    """
+    out = np.zeros(pixel.size)
+    index = np.flatnonzero(keep)
+    jac = _grating_jacobian(params, pixel, sign) / sigma[:, None]
+    inverse = np.linalg.pinv(jac[index].T @ jac[index])
+    leverage = np.einsum("ij,jk,ik->i", jac, inverse, jac)
+    residual = (lam - _grating_eval(params, pixel, sign)) / sigma
+    for i in index:
+        if leverage[i] <= 0.8:
+            out[i] = residual[i] / math.sqrt(1.0 - leverage[i])
+            continue
+        mask = keep.copy()
+        mask[i] = False
+        other = refit(mask)
+        drop = chi2 - other[2] if other is not None else residual[i] ** 2 / 0.2
+        out[i] = math.copysign(math.sqrt(max(drop, 0.0)), residual[i])
+    return out
 
 
 # --------------------------------------------------------------------------- fitting
@@ -1079,15 +1281,130 @@ def _decide(candidates, peaks: _Peaks, *, lamp_label: str, pairs, context) -> _C
     return best
 
 
-def _build_result(best: _Candidate, peaks: _Peaks, *, lamps: Sequence[Lamp], pairs, context, pixel_range, extra_notes=()):
-    centre, scale, t_ends, fwhm = context
+def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_range):
+    """The grating model as a candidate for the final fit, beside the chosen polynomial.
+
+    The grating model gets the same robust fit as the polynomial (all matched lines,
+    rejected one at a time at 5 robust sigma, on studentised deletion residuals: see
+    :func:`_grating_deletion_z`). The two models
+    are then compared by BIC on the union of the lines either keeps, each refitted there
+    without rejection (the polynomial's order chosen again by BIC), so a line one model
+    has to reject counts against it. The grating model wins only with a lower BIC (by 2
+    if it has more parameters than the polynomial). Returns (solution, used, rejected,
+    anchor, note) or None (the polynomial stays).
+    """
+    centre, scale, _, _ = context
+    f = best.features
+    p_idx, f_idx = best.peak_index, best.feature_index
+    n_lines = p_idx.size
+    coeffs = np.asarray(best.coefficients, dtype=float)
+    deriv = np.polynomial.polynomial.polyder(coeffs)
+    t_lines = (peaks.pixel[p_idx] - centre) / scale
+    disp_lines = np.abs(np.polynomial.polynomial.polyval(t_lines, deriv)) / scale
+    median_disp = float(np.median(disp_lines)) if n_lines else abs(coeffs[1]) / scale
+    px = np.r_[peaks.pixel[p_idx], [m.pixel for m in pairs]]
+    lam = np.r_[f.wavelength[f_idx], [m.wavelength_nm for m in pairs]]
+    ss = np.r_[np.hypot(peaks.sigma[p_idx] * disp_lines, f.sigma[f_idx]),
+               [math.hypot(m.tolerance_nm, _CENTRE_FLOOR_PX * median_disp) for m in pairs]]
+    keep_poly = np.r_[np.asarray(best.used, dtype=bool), np.ones(len(pairs), dtype=bool)]
+    if int(keep_poly.sum()) < 6:
+        return None
+    sign = 1.0 if coeffs[1] > 0 else -1.0
+    width = abs(float(pixel_range[1]) - float(pixel_range[0]))
+    start = dict(sign=sign, width_px=width, axis_px=0.5 * (float(pixel_range[0]) + float(pixel_range[1])), start_px=centre, start_nm=float(coeffs[0]), start_disp=float(coeffs[1] / scale))
+
+    def probe_of(mask):
+        span = px[mask].max() - px[mask].min()
+        return np.linspace(max(pixel_range[0], px[mask].min() - 0.15 * span),
+                           min(pixel_range[1], px[mask].max() + 0.15 * span), 33)
+
+    def fit_on(mask):
+        result = _grating_fit(px[mask], lam[mask], ss[mask], **start)
+        if result is None:
+            return None
+        d = _grating_derivative(result[0], probe_of(mask), sign)
+        if not (np.all(d > 0) or np.all(d < 0)):
+            return None  # a fold inside the range is never physical
+        return result
+
+    # The same outlier rejection as _robust_fit, on all matched lines.
+    keep = np.ones(px.size, dtype=bool)
+    fitted = fit_on(keep)
+    for _ in range(max(1, px.size // 3)):
+        if fitted is None or keep.sum() <= 6:
+            break
+        z = _grating_deletion_z(px, lam, ss, fitted[0], fitted[2], sign, keep,
+                                lambda mask: _grating_fit(px[mask], lam[mask], ss[mask], **start))
+        zk = z[keep]
+        spread = max(1.0, 1.4826 * float(np.median(np.abs(zk - np.median(zk)))))
+        worst = int(np.argmax(np.where(keep, np.abs(z), -1)))
+        if not (abs(z[worst]) > 5.0 * spread and abs(z[worst]) > 5.0):
+            break
+        trial = keep.copy()
+        trial[worst] = False
+        refit = fit_on(trial)
+        if refit is None:
+            break
+        keep, fitted = trial, refit
+    if fitted is None or keep.sum() < 6:
+        return None
+    params, cov, chi2 = fitted
+    # Compare on the union of the lines either model keeps.
+    union = keep | keep_poly
+    m = int(union.sum())
+    log_m = math.log(max(m, 2))
+    on_union = fitted if np.array_equal(union, keep) else fit_on(union)
+    if on_union is None:
+        return None
+    bic_grating = on_union[2] + 4 * log_m
+    t_all = (px - centre) / scale
+    if np.array_equal(union, keep_poly):
+        chi2_poly = float(np.sum(((lam[union] - np.polynomial.polynomial.polyval(t_all[union], coeffs)) / ss[union]) ** 2))
+        n_poly = coeffs.size
+        bic_poly = chi2_poly + n_poly * log_m
+    else:
+        refit = _select_order(t_all, lam, ss, union, max_order=3, monotonic_t=(probe_of(union) - centre) / scale)
+        bic_poly, n_poly = (np.inf, coeffs.size) if refit is None else (refit[0], refit[4] + 1)
+    if not bic_grating < bic_poly - (2.0 if n_poly < 4 else 0.0):
+        return None
+    dof = max(1, int(keep.sum()) - 4)
+    cov = cov * max(1.0, chi2 / dof)
     solution = WavelengthSolution(
-        coefficients=tuple(float(c) for c in best.coefficients),
-        covariance=tuple(tuple(float(v) for v in row) for row in best.covariance),
+        coefficients=tuple(float(v) for v in params),
+        covariance=tuple(tuple(float(v) for v in row) for row in cov),
         pixel_centre=float(centre),
         pixel_scale=float(scale),
         pixel_range=(float(pixel_range[0]), float(pixel_range[1])),
+        model="grating",
+        grating_sign=sign,
     )
+    used = keep[:n_lines].copy()
+    rejected = ~used
+    disp = np.abs(solution.dispersion_nm_per_px(peaks.pixel[p_idx]))
+    anchor = used & (f.sigma[f_idx] / disp <= _FEATURE_FIT_LIMIT_PX)
+    note = (f"the grating model (pinhole camera behind a grating) fits better than a polynomial "
+            f"(BIC {bic_grating:.1f} against {bic_poly:.1f} on {m} lines)")
+    n_back = int(np.count_nonzero(keep[:n_lines] & ~keep_poly[:n_lines]))
+    if n_back:
+        note += f"; {n_back} line(s) a polynomial had to reject fit it and are used"
+    return solution, used, rejected, anchor, note
+
+
+def _build_result(best: _Candidate, peaks: _Peaks, *, lamps: Sequence[Lamp], pairs, context, pixel_range, extra_notes=(),
+                  grating=None):
+    centre, scale, t_ends, fwhm = context
+    used_mask, rejected_mask, anchor_mask = best.used, best.rejected, best.anchor
+    if grating is not None:
+        solution, used_mask, rejected_mask, anchor_mask, grating_note = grating
+        extra_notes = tuple(extra_notes) + (grating_note,)
+    else:
+        solution = WavelengthSolution(
+            coefficients=tuple(float(c) for c in best.coefficients),
+            covariance=tuple(tuple(float(v) for v in row) for row in best.covariance),
+            pixel_centre=float(centre),
+            pixel_scale=float(scale),
+            pixel_range=(float(pixel_range[0]), float(pixel_range[1])),
+        )
     f = best.features
     matches = []
     for k, (pi, fi) in enumerate(zip(best.peak_index, best.feature_index)):
@@ -1107,9 +1424,9 @@ def _build_result(best: _Candidate, peaks: _Peaks, *, lamps: Sequence[Lamp], pai
                 species=f.species[fi],
                 members_nm=f.members[fi],
                 lamp=lamp.name,
-                used_in_fit=bool(best.used[k]),
-                anchor=bool(best.anchor[k]),
-                rejected=bool(best.rejected[k]),
+                used_in_fit=bool(used_mask[k]),
+                anchor=bool(anchor_mask[k]),
+                rejected=bool(rejected_mask[k]),
                 blended=bool(f.merged[fi] or peaks.blended[pi]),
                 saturated=bool(peaks.saturated[pi]),
                 snr=float(peaks.snr[pi]),
@@ -1270,8 +1587,9 @@ def _calibrate_peaks(peaks, lamps, *, pixel_range, d_range, pairs, max_order, su
             if hint:
                 raise CalibrationError(f"{exc}; the lines fit lamp {hint!r}: try --lamp {hint}") from None
         raise
+    grating = _grating_upgrade(best, peaks, pairs=pairs, context=context, pixel_range=pixel_range) if max_order >= 3 else None
     return _build_result(best, peaks, lamps=lamps, pairs=pairs, context=context, pixel_range=pixel_range,
-                         extra_notes=extra_notes)
+                         extra_notes=extra_notes, grating=grating)
 
 
 def _suggest_other_lamp(peaks, current, *, pixel_range, d_range, max_order):
