@@ -53,21 +53,27 @@ def draw_bench(rng: np.random.Generator):
     """One random virtual bench within the benchmark's ranges, and what was drawn."""
     from ..simulate import Bench
 
-    width = int(rng.choice([640, 1280, 1920]))
-    height = int(round(width * 9 / 16))
-    target = float(np.exp(rng.uniform(np.log(0.2), np.log(3.0))))
-    # A groove density and field of view giving that dispersion at 550 nm (d cos(beta) / f).
-    for _ in range(100):
-        lines_per_mm = float(rng.choice([300, 500, 600, 830, 1000, 1200]))
-        d_nm = 1e6 / lines_per_mm
-        if 550.0 / d_nm >= 0.95:
-            continue
-        cos_beta = math.sqrt(1 - (550.0 / d_nm) ** 2)
-        focal = d_nm * cos_beta / target
-        fov = math.degrees(2 * math.atan(width / (2 * focal)))
-        if 20.0 <= fov <= 110.0:
+    # A frame width, a dispersion at 550 nm, and a groove density and field of view that give it
+    # (d cos(beta) / f); a draw no plausible lens can give (e.g. 0.2 nm/px on a 640 px frame) is redrawn.
+    for _ in range(1000):
+        width = int(rng.choice([640, 1280, 1920]))
+        height = int(round(width * 9 / 16))
+        target = float(np.exp(rng.uniform(np.log(0.2), np.log(3.0))))
+        found = False
+        for _ in range(100):
+            lines_per_mm = float(rng.choice([300, 500, 600, 830, 1000, 1200]))
+            d_nm = 1e6 / lines_per_mm
+            if 550.0 / d_nm >= 0.95:
+                continue
+            cos_beta = math.sqrt(1 - (550.0 / d_nm) ** 2)
+            focal = d_nm * cos_beta / target
+            fov = math.degrees(2 * math.atan(width / (2 * focal)))
+            if 20.0 <= fov <= 110.0:
+                found = True
+                break
+        if found:
             break
-    else:  # pragma: no cover - the choices always allow one
+    else:  # pragma: no cover - 1000 draws always find one
         raise RuntimeError("no grating matches the dispersion")
     order = int(rng.choice([1, -1]))
     saturate = bool(rng.random() < 0.4)
@@ -369,7 +375,17 @@ def run(quick: bool = False, *, seed: int = 20261201, n_benches: int | None = No
     }
 
 
+def _missing_as_nan(value):
+    """A copy with every None figure (nothing measured) as NaN, which formats as 'nan'."""
+    if isinstance(value, dict):
+        return {k: _missing_as_nan(v) for k, v in value.items()}
+    if isinstance(value, list):
+        return [_missing_as_nan(v) for v in value]
+    return float("nan") if value is None else value
+
+
 def format_report(figures: dict) -> str:
+    figures = _missing_as_nan(figures)
     c = figures["calibration"]
     lines = figures["lines_vs_nist"]
     curv = figures["curvature"]
