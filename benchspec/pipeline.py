@@ -281,6 +281,16 @@ def _check_band(image, calibration: Calibration, label: str) -> dict:
             "rotation_change_deg": shift.rotation_change_deg, "message": shift.message}
 
 
+def _loaded_calibration(calibration, cal_path=None) -> tuple[Calibration, Any]:
+    """The calibration (read from its file when given a path) and the path it came from."""
+    if isinstance(calibration, (str, os.PathLike)):
+        cal_path = Path(calibration)
+        calibration = read_calibration(cal_path)
+    if not isinstance(calibration, Calibration):
+        raise InputError(f"`calibration` must be a Calibration or a calibration file path, got {type(calibration).__name__}")
+    return calibration, cal_path
+
+
 def extract_frames(
     frames,
     calibration: Calibration | str | os.PathLike,
@@ -321,12 +331,7 @@ def extract_frames(
     """
     from .io import build_provenance
 
-    cal_path = None
-    if isinstance(calibration, (str, os.PathLike)):
-        cal_path = Path(calibration)
-        calibration = read_calibration(cal_path)
-    if not isinstance(calibration, Calibration):
-        raise InputError(f"`calibration` must be a Calibration or a calibration file path, got {type(calibration).__name__}")
+    calibration, cal_path = _loaded_calibration(calibration)
     settings = calibration.settings
     gamma = str(settings.get("gamma_requested", settings.get("gamma", "auto")))
     channel = str(settings.get("channel", "mean"))
@@ -390,12 +395,7 @@ def iter_extract_frames(
 
     if band_check_every < 1:
         raise InputError(f"`band_check_every` must be at least 1, was {band_check_every}")
-    cal_path = _calibration_path
-    if isinstance(calibration, (str, os.PathLike)):
-        cal_path = Path(calibration)
-        calibration = read_calibration(cal_path)
-    if not isinstance(calibration, Calibration):
-        raise InputError(f"`calibration` must be a Calibration or a calibration file path, got {type(calibration).__name__}")
+    calibration, cal_path = _loaded_calibration(calibration, _calibration_path)
     settings = calibration.settings
     gamma = str(settings.get("gamma_requested", settings.get("gamma", "auto")))
     channel = str(settings.get("channel", "mean"))

@@ -517,41 +517,10 @@ def _streaming_runner(scene: _Scene, *, threaded: bool):
             yield spectrum_of(frame)
 
     def two_threads(path):
-        import queue
-        import threading
+        from ..pipeline import _decoded_ahead
 
-        mailbox: queue.Queue = queue.Queue(maxsize=4)  # bounded: memory stays flat whatever the length
-        stop = threading.Event()
-        done = object()
-
-        def decode():
-            try:
-                for frame in frames.iter_video(path):
-                    while not stop.is_set():
-                        try:
-                            mailbox.put(frame, timeout=0.1)
-                            break
-                        except queue.Full:
-                            continue
-                    if stop.is_set():
-                        return
-                mailbox.put(done)
-            except BaseException as exc:  # handed to the consumer
-                mailbox.put(exc)
-
-        worker = threading.Thread(target=decode, name="benchspec-decode", daemon=True)
-        worker.start()
-        try:
-            while True:
-                item = mailbox.get()
-                if item is done:
-                    break
-                if isinstance(item, BaseException):
-                    raise item
-                yield spectrum_of(item)
-        finally:
-            stop.set()
-            worker.join()
+        for frame in _decoded_ahead(frames.iter_video(path)):
+            yield spectrum_of(frame)
 
     if threaded:
         return two_threads, f"decode thread (frames.iter_video) + {what}"
