@@ -608,6 +608,50 @@ class FramePreparer:
             self._tables[key] = linear.astype(np.float32)
         return self._tables[key]
 
+    def prepare_live(self, frame: np.ndarray, *, buffers: dict | None = None) -> tuple[np.ndarray, np.ndarray | None]:
+        """As :meth:`prepare`, but the saturation mask is None when no pixel reached the saturation code.
+
+        The usual live frame has nothing clipped: one pass for the largest
+        code (``cv2.minMaxLoc`` on the raw bytes) then replaces the
+        per-pixel comparison, and the mask is built only when it is needed.
+
+        ``buffers`` (a dict the caller keeps between frames, one per thread)
+        holds the intermediate images so that a frame allocates no new
+        memory: a fresh multi-megabyte array per frame costs its page faults,
+        about as much as the look-up itself. The returned image is then one
+        of those buffers, overwritten by the next call.
+        """
+        frame = np.asarray(frame)
+        if frame.dtype == np.uint8 and frame.ndim in (2, 3) and frame.size and (frame.ndim == 2 or frame.shape[2] == 3):
+            frame = np.ascontiguousarray(frame)
+            _, largest, _, _ = cv2.minMaxLoc(frame.reshape(frame.shape[0], -1))
+            if largest < self.full_scale(frame.dtype):
+                return self._linear(frame, {} if buffers is None else buffers), None
+        return self.prepare(frame)
+
+    def _linear(self, frame: np.ndarray, buffers: dict) -> np.ndarray:
+        """The linear single-channel image of a checked uint8 frame (no saturation mask), into ``buffers``."""
+        shape = frame.shape
+        if buffers.get("shape") != shape:
+            buffers.clear()
+            buffers.update(shape=shape, linear=np.empty(shape, np.float32),
+                           image=np.empty(shape[:2], np.float32) if frame.ndim == 3 else None)
+        linear = cv2.LUT(frame, self._table(frame.dtype), dst=buffers["linear"])
+        if frame.ndim == 3:
+            image = cv2.transform(linear, np.asarray(self.weights, dtype=np.float32).reshape(1, 3),
+                                  dst=buffers["image"].reshape(shape[0], shape[1], 1))
+            image = image.reshape(shape[:2])
+        else:
+            image = linear
+        if self.dark is not None:
+            if self.dark.shape != image.shape:
+                raise FrameError(
+                    f"the dark is {self.dark.shape[1]}x{self.dark.shape[0]} but the frame is "
+                    f"{image.shape[1]}x{image.shape[0]}; take the dark with the same camera resolution"
+                )
+            image = cv2.subtract(image, self.dark, dst=image)
+        return image
+
     def prepare(self, frame: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Linearise, combine channels and subtract the dark of one raw frame.
 
