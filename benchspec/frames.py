@@ -623,8 +623,11 @@ class FramePreparer:
         """
         frame = np.asarray(frame)
         if frame.dtype == np.uint8 and frame.ndim in (2, 3) and frame.size and (frame.ndim == 2 or frame.shape[2] == 3):
-            frame = np.ascontiguousarray(frame)
-            _, largest, _, _ = cv2.minMaxLoc(frame.reshape(frame.shape[0], -1))
+            if frame.strides[-1] != 1 or (frame.ndim == 3 and frame.strides[1] != 3):
+                frame = np.ascontiguousarray(frame)
+            # a region of a frame is read in place: OpenCV takes rows with a stride, no copy is needed
+            rows = frame.reshape(frame.shape[0], -1)
+            _, largest, _, _ = cv2.minMaxLoc(rows)
             if largest < self.full_scale(frame.dtype):
                 return self._linear(frame, {} if buffers is None else buffers), None
         return self.prepare(frame)

@@ -318,6 +318,11 @@ def extract_frames(
     Spectrum, or list of Spectrum with ``each=True``
         Wavelength axis (increasing) with its 1-sigma uncertainty; the
         provenance names the frames, their hashes and the calibration.
+        The list holds every spectrum of the series (about 50 kB per frame
+        at 1280 columns: some 5 GB for an hour at 30 fps); for long series
+        iterate :func:`iter_extract_frames` instead, which yields the same
+        spectra one at a time in bounded memory (``benchspec extract --each``
+        does).
 
     Warns
     -----
@@ -423,6 +428,7 @@ def iter_extract_frames(
     extractor = None
     band: dict = {}
     gamma_resolved = None
+    axis = None  # the calibrated axis, the same for every frame: computed on the first
     for series_index, (path, index, frame) in enumerate(sources):
         label = f"{path or 'array'} frame {index}"
         if extractor is None or series_index % band_check_every == 0:
@@ -436,7 +442,7 @@ def iter_extract_frames(
                                          dark=None if dark_stack is None else dark_stack.image)
                 extractor = LiveExtractor(calibration.geometry, noise_model=noise, method=extraction,
                                           preparer=preparer, interpolation=interpolation)
-        spectrum = extractor.process_raw(frame)
+        flux, variance, saturated = extractor.process_raw_arrays(frame)
         provenance = build_provenance(
             frames=[{"path": None if path is None else str(path), "frame_index": index, "sha256": None}],
             dark_frames=[r for r in dark_records if r["path"]],
@@ -444,7 +450,15 @@ def iter_extract_frames(
             settings=dict(run_settings, gamma_resolved=gamma_resolved, n_frames=1),
             extra={"band_check": band, "time_series_index": series_index},
         )
-        yield apply_calibration(spectrum.with_(provenance=provenance), calibration)
+        if axis is None:
+            axis = apply_calibration(Spectrum(intensity=flux, uncertainty=np.sqrt(np.maximum(variance, 0)),
+                                              pixel=np.arange(flux.size, dtype=np.float64)), calibration)
+            order = np.rint(axis.pixel).astype(np.intp)
+        provenance["wavelength_calibration"] = dict(axis.provenance["wavelength_calibration"])
+        # what apply_calibration gives, without solving the same wavelength axis again for every frame
+        yield Spectrum(intensity=flux[order], uncertainty=np.sqrt(np.maximum(variance[order], 0)), pixel=axis.pixel,
+                       wavelength_nm=axis.wavelength_nm, wavelength_uncertainty_nm=axis.wavelength_uncertainty_nm,
+                       saturated=saturated[order], provenance=provenance)
 
 
 def _decoded_ahead(items, *, depth: int = 4):
