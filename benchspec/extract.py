@@ -775,6 +775,7 @@ class LiveExtractor:
         # variance of a side's mean = V(mean) * k / count
         self._side_scale = [(k / np.maximum(c, 1.0)).astype(np.float32) for k, c in zip(side_k, counts)]
         first, second = _side_coefficients(geometry, oks)
+        self._side_ok = oks
         valid_ap = valid[a0:a1]
         # aperture samples whose kernel leaves the frame read 0 and get no background either
         self._valid_ap = None if valid_ap.all() else valid_ap.astype(np.float32)
@@ -840,18 +841,38 @@ class LiveExtractor:
     def _fixed_profile_sums(self):
         """What the optimal weights need that the geometry fixes, or None where the general code must run.
 
-        With every aperture sample inside the frame, a non-negative profile
-        and background coefficients that depend on the row only, the model
-        of every pixel, ``f P + B``, is one (n_ap, 3) x (3, n_columns)
-        product, and every column sum of the weights is one more.
+        With every aperture sample inside the frame and a non-negative
+        profile, the model of every pixel, ``f P + B``, is one
+        (n_ap, 4) x (4, n_columns) product, and every column sum of the
+        weights is one more. The background is the row interpolation between
+        the two sides' means; a column where one side is outside the frame
+        takes the other side's mean for both, which gives the same
+        constant background.
         """
         if self.method != "optimal" or self._valid_ap is not None:
             return None
         profile = self._profile[:, 0].astype(np.float64)
-        first, second = self._coef_first.astype(np.float64), self._coef_second.astype(np.float64)
-        if np.any(profile < 0) or not (np.all(first == first[:, :1]) and np.all(second == second[:, :1])):
+        n_cols = self.geometry.n_columns
+        all_ok = [np.ones(n_cols, dtype=bool) for _ in self._side_ok]
+        first_all, second_all = _side_coefficients(self.geometry, all_ok)
+        first, second = first_all[:, 0].astype(np.float64), second_all[:, 0].astype(np.float64)
+        ok = list(self._side_ok) + [np.zeros(n_cols, dtype=bool)] * (2 - len(self._side_ok))
+        only_first, only_second, neither = ok[0] & ~ok[1], ~ok[0] & ok[1], ~ok[0] & ~ok[1]
+        if len(self._side_ok) == 1:
+            only_first = np.zeros(n_cols, dtype=bool)  # one side only: its coefficients are already 1 and 0
+        # the stored per-column coefficients must be what the column classes imply
+        both = ok[0] & ok[1]
+        implied_first = np.where(both, first[:, None], 0.0) + only_first
+        implied_second = np.where(both, second[:, None], 0.0) + only_second
+        if len(self._side_ok) == 1:
+            implied_first = np.where(neither, 0.0, np.ones_like(implied_first))
+            implied_second = np.zeros_like(implied_second)
+        if np.any(profile < 0) or not (np.allclose(implied_first, self._coef_first, atol=1e-6)
+                                       and np.allclose(implied_second, self._coef_second, atol=1e-6)):
             return None
-        first, second = first[:, 0], second[:, 0]
+        sides = None
+        if only_first.any() or only_second.any() or neither.any():
+            sides = {"only_first": only_first, "only_second": only_second, "neither": neither}
         if self._area is not None and self._area_poly is None:
             return None
         nm = self.noise_model
@@ -872,7 +893,8 @@ class LiveExtractor:
                 "floor": np.float32(max(read, 1e-12)),
                 "reduce": np.ascontiguousarray(np.stack(reduce), dtype=np.float32),
                 "numerator": np.ascontiguousarray(np.stack([profile * w for w in powers]), dtype=np.float32),
-                "variance": np.empty(shape, np.float32), "weighted": np.empty(shape, np.float32)}
+                "variance": np.empty(shape, np.float32), "weighted": np.empty(shape, np.float32),
+                "sides": sides}
 
     def _optimal_fixed_profile(self, rect: np.ndarray, sums: np.ndarray, m1, m2, v1, v2):
         """Horne's estimate with the stored profile, in a few products over the aperture (no Python loop).
@@ -886,6 +908,11 @@ class LiveExtractor:
         fixed = self._weighted_sums
         ap = rect[self._a0:self._a1]
         box = self._area_weighted_total(sums, rect) - (self._sum_first * m1 + self._sum_second * m2)
+        sides = fixed["sides"]
+        if sides is not None:  # columns with one side (or none) inside the frame: the same means for both rows
+            m1, m2 = (np.where(sides["only_second"], m2, m1), np.where(sides["only_first"], m1, m2))
+            m1 = np.where(sides["neither"], 0, m1)
+            m2 = np.where(sides["neither"], 0, m2)
         vector = np.stack([np.maximum(box, 0), m1, m2, np.ones_like(m1)]).astype(np.float32)
         variance = _product(fixed["design"], vector, out=fixed["variance"])  # noise model at f P + B, every pixel
         cv2.max(variance, float(fixed["floor"]), dst=variance)
@@ -904,6 +931,9 @@ class LiveExtractor:
             numerator = numerator[0] + p * numerator[1] + q * numerator[2]
         flux = (numerator - m1 * a - m2 * b) / denom
         a, b = a / denom, b / denom
+        if sides is not None:  # how the flux depends on each side's own mean
+            a, b = (np.where(sides["only_first"], a + b, np.where(sides["only_second"] | sides["neither"], 0, a)),
+                    np.where(sides["only_second"], a + b, np.where(sides["only_first"] | sides["neither"], 0, b)))
         return flux, self._k_aperture / denom + a * a * v1 + b * b * v2
 
     @property

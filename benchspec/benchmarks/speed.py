@@ -18,7 +18,11 @@ calibrate  :func:`benchspec.wavecal.calibrate_lines` from the line table, no fir
            frame (band, geometry, extraction, lines and solution from scratch)
 identify   :func:`benchspec.identify.identify` on a calibrated He spectrum
 live       one new raw frame -> spectrum + lines with the geometry known
-           (rectify + extract + lines, and the linearising they need)
+           (rectify + extract + lines, and the linearising they need):
+           :class:`benchspec.extract.LiveExtractor` (box) and the live line
+           finder :func:`benchspec.lines.find_lines_quick`; also timed: the
+           spectrum alone, optimal extraction, and the least-squares
+           :func:`benchspec.lines.find_lines` instead of the live finder
 ========== ================================================================
 
 and two floors are measured in the same run, on the same frame:
@@ -32,8 +36,11 @@ Every figure is the median of repeated runs (``time.perf_counter``) after a
 warm-up call, and each stage is reported with its ratios to both floors.
 
 Batch throughput: a 300-frame 1280x720 Motion-JPEG video is reduced to one
-spectrum per frame (the work of ``benchspec extract --each``), against reading
-the same video with OpenCV alone (``cv2.VideoCapture.read``). Memory must
+spectrum per frame by :func:`benchspec.pipeline.iter_extract_frames` (what
+``benchspec extract --each`` runs: decoding on a second thread, the live
+extractor, the calibrated axis), against reading the same video with OpenCV
+alone (``cv2.VideoCapture.read``); the bare live extractor on one and on two
+threads is timed beside it. Memory must
 stay bounded for a time series of any length: the growth of the process's
 resident memory and of the Python heap (:mod:`tracemalloc`) between frame 100
 and frame 300 is reported.
@@ -72,6 +79,7 @@ TARGETS = {
     "live_ms_720p": 2.0,
     "live_memory_ratio_720p": 3.0,
     "live_spectrum_only_ms_720p": 2.0,
+    "live_cpu_ms_720p": 2.0,
     "calibrate_ms": 100.0,
     "calibrate_from_frame_ms": 100.0,
     "identify_ms": 50.0,
@@ -174,7 +182,9 @@ class _Scene:
         self.budget_s = budget_s
         self.width, self.height = width, height
         self.bench = _bench(width, height)
-        self.frames = [simulate.render(self.bench, source="cfl", seed=seed).image for seed in range(1, n_frames + 1)]
+        # row-major RGB, as a decoder or a camera hands frames over (the renderer's own arrays are planar)
+        self.frames = [np.ascontiguousarray(simulate.render(self.bench, source="cfl", seed=seed).image)
+                       for seed in range(1, n_frames + 1)]
         self.frame = np.ascontiguousarray(self.frames[0])
         ok, encoded = cv2.imencode(".jpg", np.ascontiguousarray(self.frame[:, :, ::-1]),
                                    [cv2.IMWRITE_JPEG_QUALITY, _JPEG_QUALITY])
@@ -347,27 +357,33 @@ def _stage_identify(scene: _Scene, repeats: int) -> dict:
     return result
 
 
-def _live_extractor(scene: _Scene):
-    """A callable raw frame -> (spectrum, lines) with the geometry known, and what it is."""
+def _live_extractor(scene: _Scene, *, method: str = "box", full_lines: bool = False):
+    """A callable raw frame -> (spectrum, lines) with the geometry known, and what it is.
+
+    The live line finder is :func:`benchspec.lines.find_lines_quick` (where
+    the package has it); ``full_lines`` times :func:`benchspec.lines.find_lines`,
+    the least-squares finder used for saved spectra, instead.
+    """
     from .. import lines
 
-    spectrum_of, what = _live_spectrum(scene)
+    spectrum_of, what = _live_spectrum(scene, method=method)
+    finder = lines.find_lines if full_lines or not hasattr(lines, "find_lines_quick") else lines.find_lines_quick
 
     def call(frame):
         spectrum = spectrum_of(frame)
-        return spectrum, lines.find_lines(spectrum)
+        return spectrum, finder(spectrum)
 
-    return call, f"{what} + lines.find_lines"
+    return call, f"{what} + lines.{finder.__name__}"
 
 
-def _live_spectrum(scene: _Scene):
+def _live_spectrum(scene: _Scene, *, method: str = "box"):
     """A callable raw frame -> spectrum with the geometry known (the live extractor when there is one)."""
     g = _measured_geometry(scene)
     extract = _optional("extract")
     noise_model = _noise_model(scene, single_frame=True)
     if hasattr(extract, "LiveExtractor"):
-        live = extract.LiveExtractor(g, noise_model=noise_model, method="box")
-        return live.process_raw, "extract.LiveExtractor.process_raw (box)"
+        live = extract.LiveExtractor(g, noise_model=noise_model, method=method)
+        return live.process_raw, f"extract.LiveExtractor.process_raw ({method})"
     # The generic chain the stages above use, one frame at a time.
     from .. import frames
 
@@ -394,6 +410,12 @@ def _stage_live(scene: _Scene, repeats: int) -> dict:
     result["spectrum_only"] = _time(lambda: spectrum_of(frames_cycle[next(counter) % len(frames_cycle)]),
                                     repeats=repeats, budget_s=scene.budget_s)
     result["spectrum_only"]["what"] = what_spectrum
+    # the same with Horne's optimal extraction (stored profile), and with the least-squares line finder
+    for key, kwargs in (("optimal", {"method": "optimal"}), ("full_lines", {"full_lines": True})):
+        variant, what_variant = _live_extractor(scene, **kwargs)
+        result[key] = _time(lambda: variant(frames_cycle[next(counter) % len(frames_cycle)]), repeats=repeats,
+                            budget_s=scene.budget_s)
+        result[key]["what"] = what_variant
     return result
 
 
@@ -578,7 +600,7 @@ def _batch(scene: _Scene, *, n_frames: int, folder: Path, progress, quick: bool)
     except _Unavailable as exc:
         result.update(available=False, reason=str(exc))
         return result
-    result["pipeline_each"] = _pipeline_each(scene, folder, n_frames=5 if quick else 60, progress=progress)
+    result["pipeline_each"] = _pipeline_each(scene, folder, path, n_frames=n_frames, progress=progress)
     best = max(("streaming", "two_threads"), key=lambda k: result[k]["ratio"])
     result.update({k: result[best][k] for k in ("what", "frames_decoded", "frames_reduced", "decode_only_fps",
                                                 "each_fps", "ratio")})
@@ -587,8 +609,12 @@ def _batch(scene: _Scene, *, n_frames: int, folder: Path, progress, quick: bool)
     return result
 
 
-def _pipeline_each(scene: _Scene, folder: Path, *, n_frames: int, progress) -> dict:
-    """``pipeline.extract_frames(..., each=True)``, what ``benchspec extract --each`` runs, on a shorter video."""
+def _pipeline_each(scene: _Scene, folder: Path, path: Path, *, n_frames: int, progress) -> dict:
+    """``pipeline.iter_extract_frames`` on the batch video: what ``benchspec extract --each`` runs.
+
+    Also its memory growth over the video, and what the list returned by
+    ``pipeline.extract_frames(each=True)`` holds per frame (on a short video).
+    """
     try:
         pipeline = _optional("pipeline")
     except _Unavailable as exc:
@@ -599,19 +625,24 @@ def _pipeline_each(scene: _Scene, folder: Path, *, n_frames: int, progress) -> d
             calibration = pipeline.calibrate_frames(scene.frame, lamp="cfl")
         except Exception as exc:  # reported, not hidden
             return {"available": False, "error": f"{type(exc).__name__}: {exc}"}
-    path = folder / f"series_{scene.width}x{scene.height}_{n_frames}.avi"
-    _write_video(scene.frames, path, n_frames)
     if progress:
-        progress(f"batch {scene.width}x{scene.height} x {n_frames} frames, pipeline.extract_frames(each=True)")
+        progress(f"batch {scene.width}x{scene.height} x {n_frames} frames, pipeline.iter_extract_frames")
+    streaming = hasattr(pipeline, "iter_extract_frames")
 
     def runner(p):
+        if streaming:
+            return pipeline.iter_extract_frames(str(p), calibration)
         return iter(pipeline.extract_frames(str(p), calibration, each=True))
 
-    record = _rate_record("pipeline.extract_frames(each=True) (returns a list)", *_rates(runner, path, passes=1))
+    name = "pipeline.iter_extract_frames" if streaming else "pipeline.extract_frames(each=True)"
+    extraction = str(calibration.settings.get("extraction", "optimal"))
+    record = _rate_record(f"{name} ({extraction} extraction, the calibration's; what extract --each runs)",
+                          *_rates(runner, path, passes=2))
     record["frames"] = n_frames
+    record["memory"] = _memory_growth(runner, path, n_frames)
     # what the returned list holds per frame, extrapolated to an hour at 30 fps
     short = folder / f"series_{scene.width}x{scene.height}_memory.avi"
-    count = max(2, n_frames // 3)
+    count = max(2, min(n_frames, 60) // 3)
     _write_video(scene.frames, short, count)
     gc.collect()
     tracemalloc.start()
@@ -623,8 +654,8 @@ def _pipeline_each(scene: _Scene, folder: Path, *, n_frames: int, progress) -> d
         del held
     finally:
         tracemalloc.stop()
-    record["memory_held_per_frame_kb"] = per_frame / 1e3
-    record["memory_one_hour_30fps_gb"] = per_frame * 30 * 3600 / 1e9
+    record["list_memory_held_per_frame_kb"] = per_frame / 1e3
+    record["list_memory_one_hour_30fps_gb"] = per_frame * 30 * 3600 / 1e9
     return record
 
 
@@ -700,6 +731,8 @@ def _targets(sizes: list[dict], batch: dict | None) -> dict:
     checks["live_spectrum_only_ms_720p"] = _check(spectrum_only and spectrum_only["median_ms"],
                                                   TARGETS["live_ms_720p"], "<=", "ms (rectify + extract, no lines)",
                                                   label)
+    checks["live_cpu_ms_720p"] = _check(live and live["median_cpu_ms"], TARGETS["live_ms_720p"], "<=",
+                                        "ms process CPU, all threads", label)
     checks["calibrate_ms"] = _check(calibrate and calibrate["median_ms"], TARGETS["calibrate_ms"], "<", "ms", label)
     from_frame = calibrate.get("from_frame") if calibrate else None
     checks["calibrate_from_frame_ms"] = _check(
@@ -710,7 +743,7 @@ def _targets(sizes: list[dict], batch: dict | None) -> dict:
     each = batch.get("pipeline_each") if batch else None
     checks["batch_decode_ratio"] = _check(each["ratio"] if each and each.get("available") else None,
                                           TARGETS["batch_decode_ratio"], ">=",
-                                          "x decode-only rate (pipeline.extract_frames each=True)", batch_label)
+                                          "x decode-only rate (pipeline.iter_extract_frames, extract --each)", batch_label)
     ratio = batch["ratio"] if batch and batch.get("available") else None
     checks["batch_streaming_decode_ratio"] = _check(ratio, TARGETS["batch_streaming_decode_ratio"], ">=",
                                                     "x decode-only rate (streaming live extractor)", batch_label)
@@ -817,12 +850,12 @@ def _table(sizes: list[dict], clock: str) -> list[str]:
         ["decode only"] + [f"{s['floors']['decode_only'][key]:.2f}" for s in sizes],
     ]
     stage_names = [n for n in STAGES if any(n in s["stages"] for s in sizes)]
-    subrows = {"extract": ("optimal", "optimal"), "calibrate": ("from_frame", "from frame"),
-               "live": ("spectrum_only", "no lines")}
+    subrows = {"extract": [("optimal", "optimal")], "calibrate": [("from_frame", "from frame")],
+               "live": [("spectrum_only", "no lines"), ("optimal", "optimal extraction"),
+                        ("full_lines", "with find_lines")]}
     for name in stage_names:
         rows.append([name] + [_cell(s["stages"].get(name), clock) for s in sizes])
-        if name in subrows:
-            sub, label = subrows[name]
+        for sub, label in subrows.get(name, []):
             rows.append([f"  {label}"] + [_subcell(s, name, sub, key) for s in sizes])
     widths = [max(len(r[i]) for r in rows + [headers]) for i in range(len(headers))]
     out = ["  ".join(h.ljust(w) for h, w in zip(headers, widths)), "  ".join("-" * w for w in widths)]
@@ -840,6 +873,43 @@ def _subcell(size: dict, stage: str, key: str, clock_key: str = "median_ms") -> 
     if not (memory > 0 and decode > 0):
         return f"{sub[clock_key]:.2f}"
     return f"{sub[clock_key]:.2f} ({sub[clock_key] / memory:.1f}x, {sub[clock_key] / decode:.2f}x)"
+
+
+def _verdict(check: dict | None) -> str:
+    if not check or check["measured"] is None:
+        return "not measured"
+    return "met" if check["met"] else "MISSED"
+
+
+def _summary(result: dict) -> list[str]:
+    """The issue's live and batch targets in two sentences each."""
+    out = []
+    targets = result["targets"]
+    by_size = {(s["width_px"], s["height_px"]): s for s in result["sizes"]}
+    size = by_size.get((1280, 720)) or (result["sizes"][0] if result["sizes"] else None)
+    live = size["stages"].get("live") if size else None
+    if live and live.get("available"):
+        memory = size["floors"]["memory_pass"]
+        out.append(
+            f"live path at {size['width_px']}x{size['height_px']} ({live['what']}): {live['median_ms']:.2f} ms wall = "
+            f"{live['memory_ratio']:.1f}x one memory pass ({memory['median_ms']:.2f} ms); process CPU "
+            f"{live['median_cpu_ms']:.2f} ms = {live.get('memory_ratio_cpu', float('nan')):.1f}x")
+        out.append(f"  target <= {TARGETS['live_ms_720p']:g} ms: {_verdict(targets.get('live_ms_720p'))}; "
+                   f"target <= {TARGETS['live_memory_ratio_720p']:g}x memory pass: "
+                   f"{_verdict(targets.get('live_memory_ratio_720p'))}")
+        for key, label in (("spectrum_only", "spectrum alone"), ("optimal", "with optimal extraction"),
+                           ("full_lines", "with the least-squares line finder")):
+            sub = live.get(key)
+            if sub and "median_ms" in sub:
+                out.append(f"  {label}: {sub['median_ms']:.2f} ms wall ({sub['median_ms'] / memory['median_ms']:.1f}x), "
+                           f"CPU {sub['median_cpu_ms']:.2f} ms: {sub['what']}")
+    batch = result.get("batch") or {}
+    each = batch.get("pipeline_each")
+    if each and each.get("available"):
+        out.append(f"batch ({each['what']}): {each['each_fps']:.0f} fps = {each['ratio']:.2f}x the decode-only rate "
+                   f"({each['decode_only_fps']:.0f} fps); target >= {TARGETS['batch_decode_ratio']:g}x: "
+                   f"{_verdict(targets.get('batch_decode_ratio'))}")
+    return out
 
 
 def format_report(result: dict) -> str:
@@ -879,9 +949,14 @@ def format_report(result: dict) -> str:
                     f"  {record['each_fps']:6.0f} fps vs decode only {record['decode_only_fps']:4.0f} fps = "
                     f"{record['ratio']:.2f}x over {record['frames_reduced']} frames: {record['what']}"
                 )
-                if "memory_held_per_frame_kb" in record:
-                    out.append(f"    it holds {record['memory_held_per_frame_kb']:.0f} kB per frame: "
-                               f"{record['memory_one_hour_30fps_gb']:.1f} GB for an hour at 30 fps")
+                if "memory" in record:
+                    m = record["memory"]
+                    out.append(f"    memory from frame {m['from_frame']} to {m['to_frame']}: resident "
+                               f"{m['rss_growth_mb']:+.1f} MB, Python heap {m['traced_growth_mb']:+.2f} MB")
+                if "list_memory_held_per_frame_kb" in record:
+                    out.append(f"    the list of pipeline.extract_frames(each=True) holds "
+                               f"{record['list_memory_held_per_frame_kb']:.0f} kB per frame: "
+                               f"{record['list_memory_one_hour_30fps_gb']:.1f} GB for an hour at 30 fps")
             out.append(
                 f"memory from frame {memory['from_frame']} to {memory['to_frame']}: resident "
                 f"{memory['rss_growth_mb']:+.1f} MB, Python heap {memory['traced_growth_mb']:+.2f} MB "
@@ -889,6 +964,8 @@ def format_report(result: dict) -> str:
             )
         else:
             out.append(f"batch: not measured ({batch.get('reason')})")
+    out.append("")
+    out += _summary(result)
     out.append("")
     out.append("targets:")
     for name, check in result["targets"].items():

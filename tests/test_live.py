@@ -1,0 +1,207 @@
+"""The live path: the quick line finder, the fixed-profile optimal extraction, in-place linearising, --each.
+
+No timing is asserted here (speed is measured by ``benchspec benchmark speed``): these tests
+check that every shortcut of the live path gives the numbers of the general code within
+their uncertainties.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pytest
+
+from benchspec import extract, frames, geometry, lines, pipeline, simulate
+from benchspec.errors import DegradedResultWarning, InputError, LineError
+from benchspec.spectrum import Spectrum
+from synthetic_band import synthetic_band
+
+FWHM_PER_SIGMA = 2 * np.sqrt(2 * np.log(2))  # Gaussian FWHM = 2 sqrt(2 ln 2) sigma (textbook)
+
+
+def _gaussian_lines(rng, centres, *, sigma=1.5, height=1000.0, n=400, background=20.0, clip=None):
+    x = np.arange(n, dtype=float)
+    truth = background + sum(height * np.exp(-0.5 * ((x - c) / sigma) ** 2) for c in centres)
+    sd = np.sqrt(truth)  # Poisson-like noise
+    y = truth + rng.normal(0, 1, n) * sd
+    saturated = np.zeros(n, bool)
+    if clip is not None:
+        saturated = y >= clip
+        y = np.minimum(y, clip)
+    return Spectrum(intensity=y, uncertainty=sd, pixel=x, saturated=saturated)
+
+
+# ------------------------------------------------------------------ the quick line finder
+
+
+def test_quick_lines_measure_a_gaussian(rng):
+    table = lines.find_lines_quick(_gaussian_lines(rng, [200.3], sigma=1.5, height=1000.0))
+    assert table.method == "weighted log-parabola" and len(table) == 1
+    line = table[0]
+    assert line.centre_px == pytest.approx(200.3, abs=4 * line.centre_uncertainty_px)
+    assert line.fwhm_px == pytest.approx(1.5 * FWHM_PER_SIGMA, rel=0.05)
+    assert line.peak == pytest.approx(1000.0, rel=0.05)
+    # Area of a Gaussian: height * sigma * sqrt(2 pi) (textbook)
+    assert line.area == pytest.approx(1000.0 * 1.5 * np.sqrt(2 * np.pi), rel=0.06)
+    assert not line.blended and not line.saturated and line.kind == "emission"
+    assert lines.find_lines(_gaussian_lines(rng, [200.3])).method == "gaussian least squares"
+
+
+@pytest.mark.parametrize("sigma, height", [(1.0, 300.0), (1.5, 300.0), (2.5, 300.0), (1.5, 60.0)])
+def test_quick_centre_uncertainty_is_a_real_one_sigma(sigma, height):
+    # Pulls (measured - true) / reported sigma over seeded noisy lines have unit spread
+    # (the meaning of a 1-sigma; common practice, no source).
+    rng = np.random.default_rng(7)
+    pulls = []
+    for _ in range(80):
+        centre = 150.0 + rng.uniform(-0.5, 0.5)
+        x = np.arange(300, dtype=float)
+        spectrum = Spectrum(intensity=height * np.exp(-0.5 * ((x - centre) / sigma) ** 2) + rng.normal(0, 8.0, 300),
+                            uncertainty=np.full(300, 8.0), pixel=x)
+        table = lines.find_lines_quick(spectrum)
+        line = table[int(np.argmin(np.abs(table.centre_px - centre)))]  # a rare noise peak elsewhere is not this test's
+        pulls.append((line.centre_px - centre) / line.centre_uncertainty_px)
+    assert abs(np.mean(pulls)) < 0.35
+    assert 0.7 < np.std(pulls) < 1.4
+
+
+def test_quick_and_full_finders_agree_on_a_virtual_bench_spectrum():
+    bench = simulate.Bench().with_(camera={"width_px": 640, "height_px": 360, "rotation_deg": 3.0},
+                                   slit={"height_px": 80.0})
+    frame = simulate.render(bench, source="cfl", seed=3).image
+    stacked = frames.stack_frames([frame])
+    g = geometry.measure_geometry(stacked.image, saturated=stacked.saturated)
+    noise = extract.estimate_noise_model(stacked, geometry=g)
+    spectrum = extract.LiveExtractor(g, noise_model=noise).process_raw(frame)
+    full, quick = lines.find_lines(spectrum, min_snr=10.0), lines.find_lines_quick(spectrum, min_snr=10.0)
+    assert len(full) >= 5
+    matched = 0
+    for line in full:
+        if line.blended or line.saturated:
+            continue  # the quick finder measures a blend as one line; that is what its flag says
+        nearest = quick[int(np.argmin(np.abs(quick.centre_px - line.centre_px)))]
+        combined = np.hypot(line.centre_uncertainty_px, nearest.centre_uncertainty_px)
+        assert abs(nearest.centre_px - line.centre_px) < max(4 * combined, 0.05)
+        assert nearest.fwhm_px == pytest.approx(line.fwhm_px, rel=0.25)
+        matched += 1
+    assert matched >= 4
+
+
+def test_quick_finder_flags_clipped_and_close_lines(rng):
+    clipped = lines.find_lines_quick(_gaussian_lines(rng, [120.0], sigma=2.0, height=3000.0, clip=2000.0))
+    (line,) = clipped
+    assert line.saturated and line.centre_px == pytest.approx(120.0, abs=0.3)
+    pair = lines.find_lines_quick(_gaussian_lines(rng, [200.0, 205.0], sigma=1.5, height=1000.0))
+    assert len(pair) == 2 and all(line.blended for line in pair)
+
+
+def test_quick_finder_on_a_calibrated_axis_and_without_lines(rng):
+    base = _gaussian_lines(rng, [100.0, 250.0], n=400)
+    wavelength = 400.0 + 0.5 * np.arange(400)
+    calibrated = base.with_(wavelength_nm=wavelength, wavelength_uncertainty_nm=np.full(400, 0.05))
+    table = lines.find_lines_quick(calibrated)
+    assert [round(line.centre_nm) for line in table] == [450, 525]
+    for line in table:
+        assert line.centre_uncertainty_nm >= 0.05 and line.fwhm_nm == pytest.approx(0.5 * line.fwhm_px, rel=1e-6)
+    noise_only = Spectrum(intensity=rng.normal(0, 1, 500), uncertainty=np.ones(500), pixel=np.arange(500.0))
+    assert len(lines.find_lines_quick(noise_only)) <= 1  # a 5-sigma noise peak in 500 samples is rare
+
+
+def test_quick_finder_bad_input():
+    x = np.arange(50.0)
+    spectrum = Spectrum(intensity=np.sin(x), uncertainty=np.ones(50), pixel=x)
+    with pytest.raises(InputError, match="`min_snr` must be positive, was 0"):
+        lines.find_lines_quick(spectrum, min_snr=0)
+    with pytest.raises(InputError, match="`window_px` must be at least 2, was 1"):
+        lines.find_lines_quick(spectrum, window_px=1)
+    with pytest.raises(InputError, match="at least 7 are needed"):
+        lines.find_lines_quick(Spectrum(intensity=np.ones(5), uncertainty=np.ones(5), pixel=np.arange(5.0)))
+    with pytest.raises(LineError, match="flat"):
+        lines.find_lines_quick(Spectrum(intensity=np.ones(50), uncertainty=np.ones(50), pixel=x))
+    with pytest.raises(InputError, match="must be a benchspec Spectrum"):
+        lines.find_lines_quick(np.ones(50))
+
+
+# ------------------------------------------------------------------ the live extractor
+
+
+def _band_with_varying_curvature():
+    image, _ = synthetic_band(rotation_deg=2.0, curvature=(0.004, 2e-5), continuum=80.0, noise_sigma=2.0,
+                              background=5.0, rng=np.random.default_rng(5))
+    return image, geometry.measure_geometry(image)
+
+
+def test_fixed_profile_optimal_matches_the_general_code():
+    image, g = _band_with_varying_curvature()
+    model = extract.NoiseModel(2.0, 3.0)
+    live = extract.LiveExtractor(g, noise_model=model, method="optimal")
+    assert live._weighted_sums is not None  # the fast form applies to this band
+    fast_flux, fast_var, _ = live.process_arrays(image)
+    general = extract.LiveExtractor(g, noise_model=model, method="optimal")
+    general._weighted_sums = None  # the general per-pixel code, as before the fast form
+    flux, var, _ = general.process_arrays(image)
+    # the fast form takes the frame-area factor (1 within a fraction of a percent) as 1 in the
+    # weights only: the flux moves by a small fraction of its own 1-sigma and of itself
+    assert np.max(np.abs(fast_flux - flux) / np.sqrt(var)) < 0.25
+    assert np.max(np.abs(fast_flux - flux) / np.abs(flux).max()) < 1e-3
+    np.testing.assert_allclose(np.sqrt(fast_var), np.sqrt(var), rtol=0.01)
+    box = extract.LiveExtractor(g, noise_model=model, method="box").process_arrays(image)[0]
+    reference = extract.extract(geometry.rectify(image, g, interpolation="linear"), noise_model=model, method="box")
+    assert np.max(np.abs(box - reference.intensity)) / np.abs(reference.intensity).max() < 1e-4
+
+
+def test_prepare_live_equals_prepare_and_reads_regions_in_place():
+    rng = np.random.default_rng(2)
+    frame = rng.integers(0, 250, (120, 160, 3), dtype=np.uint8)
+    preparer = frames.FramePreparer(gamma="srgb")
+    region = frame[20:90, 30:140]  # rows with a stride: read without a copy
+    buffers: dict = {}
+    image, saturated = preparer.prepare_live(region, buffers=buffers)
+    expected, expected_saturated = preparer.prepare(np.ascontiguousarray(region))
+    assert saturated is None and not expected_saturated.any()
+    np.testing.assert_array_equal(image, expected)
+    again, _ = preparer.prepare_live(region, buffers=buffers)
+    assert again is image or np.shares_memory(again, buffers["image"])  # the kept buffer, no new array
+    clipped = frame.copy()
+    clipped[50, 60] = 255
+    image, saturated = preparer.prepare_live(clipped)
+    expected, expected_saturated = preparer.prepare(clipped)
+    np.testing.assert_array_equal(image, expected)
+    np.testing.assert_array_equal(saturated, expected_saturated)
+    assert saturated[50, 60] and saturated.sum() == 1
+
+
+def test_product_in_blocks_equals_matmul():
+    rng = np.random.default_rng(3)
+    a = rng.random((7, 171)).astype(np.float32)
+    b = rng.random((171, 1264)).astype(np.float32)
+    out = np.empty((7, 1264), np.float32)
+    result = extract._product(a, b, out=out)
+    assert result is out
+    np.testing.assert_allclose(result, a @ b, rtol=1e-5)
+
+
+# ------------------------------------------------------------------ extract --each
+
+
+def test_each_frame_is_what_apply_calibration_gives():
+    bench = simulate.Bench().with_(camera={"width_px": 640, "height_px": 360, "rotation_deg": 3.0},
+                                   slit={"height_px": 80.0})
+    cfl = [simulate.render(bench, source="cfl", seed=s).image for s in (1, 2, 3)]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DegradedResultWarning)
+        calibration = pipeline.calibrate_frames(cfl[0], lamp="cfl")
+        series = list(pipeline.iter_extract_frames(cfl, calibration, extraction="box"))
+    assert len(series) == 3
+    noise = extract.estimate_noise_model(frames.stack_frames([cfl[0]]), geometry=calibration.geometry)
+    live = extract.LiveExtractor(calibration.geometry, noise_model=noise, method="box")
+    for frame, spectrum in zip(cfl, series):
+        expected = pipeline.apply_calibration(live.process_raw(frame), calibration)
+        np.testing.assert_array_equal(spectrum.wavelength_nm, expected.wavelength_nm)
+        np.testing.assert_array_equal(spectrum.wavelength_uncertainty_nm, expected.wavelength_uncertainty_nm)
+        np.testing.assert_allclose(spectrum.intensity, expected.intensity, rtol=1e-6, atol=1e-6)
+        np.testing.assert_allclose(spectrum.uncertainty, expected.uncertainty, rtol=1e-6)
+        np.testing.assert_array_equal(spectrum.saturated, expected.saturated)
+        assert spectrum.provenance["wavelength_calibration"] == expected.provenance["wavelength_calibration"]
+    assert [s.provenance["time_series_index"] for s in series] == [0, 1, 2]
