@@ -102,6 +102,9 @@ GRATING_PARAMETERS = ("A_nm", "theta_rad", "x0_px", "f_px")
 _CENTRE_FLOOR_PX = 0.03
 # A feature is used in the fit only if its own wavelength uncertainty is below this many pixels.
 _FEATURE_FIT_LIMIT_PX = 0.75
+# While matching, a polynomial is only an approximation of the true mapping: each line's
+# uncertainty gets this floor so that tightly known lines are not rejected in cascade (px).
+_MATCH_MODEL_FLOOR_PX = 0.1
 
 
 # --------------------------------------------------------------------------- results
@@ -789,7 +792,8 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
         tt = np.r_[t[p_idx], [(m.pixel - centre) / scale for m in pairs]]
         ll = np.r_[fw[f_idx], [m.wavelength_nm for m in pairs]]
         ss = np.r_[
-            np.hypot(peaks.sigma[p_idx] * disp[p_idx], features.sigma[f_idx]),
+            np.sqrt((peaks.sigma[p_idx] * disp[p_idx]) ** 2 + features.sigma[f_idx] ** 2
+                    + (_MATCH_MODEL_FLOOR_PX * disp[p_idx]) ** 2),
             [math.hypot(m.tolerance_nm, _CENTRE_FLOOR_PX * median_disp) for m in pairs],
         ]
         # The solution must not fold where there is light: over the lines' span and a margin beyond it.
@@ -1124,7 +1128,7 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
         if fitted is None or keep.sum() <= 6:
             break
         z = _grating_deletion_z(px, lam, ss, fitted[0], fitted[2], sign, keep,
-                                lambda mask: _grating_fit(px[mask], lam[mask], ss[mask], **start))
+                                lambda mask, near: _grating_fit(px[mask], lam[mask], ss[mask], initial=near, **start))
         zk = z[keep]
         spread = max(1.0, 1.4826 * float(np.median(np.abs(zk - np.median(zk)))))
         worst = int(np.argmax(np.where(keep, np.abs(z), -1)))

@@ -44,58 +44,174 @@ def _grating_jacobian(params, pixel, sign):
     return np.stack([np.sin(phi), a * np.cos(phi), -g * sign / f, -g * u / f], axis=-1)
 
 
-def _grating_fit(pixel, lam, sigma, *, sign, width_px, axis_px, start_px, start_nm, start_disp):
+_THETA_LIMIT_RAD = math.radians(80.0)
+
+
+def _grating_bounds(width, start_px):
+    """Box of admissible (A, theta, x0, f): f in [0.2, 20] x width, |theta| < 80 deg, x0 within 20 widths."""
+    lower = np.array([1.0, -_THETA_LIMIT_RAD, start_px - 20 * width, 0.2 * width])
+    upper = np.array([1e6, _THETA_LIMIT_RAD, start_px + 20 * width, 20.0 * width])
+    return lower, upper
+
+
+def _grating_profile(pixel, lam, weight, sign, x0, f):
+    """Best (A, theta) for each (x0, f), by linear least squares, and the chi-square left.
+
+    For fixed x0 and f the model is linear in (A cos theta, A sin theta):
+    lambda = A cos(theta) u / sqrt(1 + u^2) + A sin(theta) / sqrt(1 + u^2), u = s (x - x0) / f
+    (variable projection, Golub and Pereyra 1973). ``x0`` and ``f`` broadcast together; the
+    results have their shape. Points outside the bounds on A and theta get chi2 = inf.
+    """
+    x0, f = np.broadcast_arrays(np.asarray(x0, dtype=float), np.asarray(f, dtype=float))
+    u = sign * (pixel - x0[..., None]) / f[..., None]
+    root = 1.0 / np.sqrt(1.0 + u * u)
+    b1, b2 = u * root * weight, root * weight
+    y = lam * weight
+    s11, s12, s22 = (b1 * b1).sum(-1), (b1 * b2).sum(-1), (b2 * b2).sum(-1)
+    t1, t2 = (b1 * y).sum(-1), (b2 * y).sum(-1)
+    det = s11 * s22 - s12 * s12
+    with np.errstate(divide="ignore", invalid="ignore"):
+        c1 = (s22 * t1 - s12 * t2) / det
+        c2 = (s11 * t2 - s12 * t1) / det
+        chi2 = float(y @ y) - (c1 * t1 + c2 * t2)
+    a = np.hypot(c1, c2)
+    theta = np.arctan2(c2, c1)
+    ok = np.isfinite(chi2) & (det > 0) & (np.abs(theta) < _THETA_LIMIT_RAD) & (a > 1.0)
+    return a, theta, np.where(ok, np.maximum(chi2, 0.0), np.inf)
+
+
+def _zoom_minimum(values, grid, evaluate, rounds):
+    """Refine the minimum of ``evaluate`` along the last axis of ``grid`` by repeated 7-point zooms.
+
+    ``values = evaluate(grid)``; each round spans the two cells around the current best and
+    samples them again. Works on many independent rows at once. Returns (best grid value, best value).
+    """
+    rows = np.arange(grid.shape[0])
+    k = np.argmin(values, axis=-1)
+    step = np.abs(np.diff(grid, axis=-1)).mean(axis=-1)
+    best_x, best_v = grid[rows, k], values[rows, k]
+    for _ in range(rounds):
+        grid = best_x[:, None] + step[:, None] * np.linspace(-1.0, 1.0, 7)
+        values = evaluate(grid)
+        k = np.argmin(values, axis=-1)
+        better = values[rows, k] < best_v
+        best_x = np.where(better, grid[rows, k], best_x)
+        best_v = np.where(better, values[rows, k], best_v)
+        step = step / 3.0
+    return best_x, best_v
+
+
+def _grating_search(pixel, lam, sigma, *, sign, width, axis_px, axis_sigma, x0_range, log_f_range):
+    """Global search of (x0, f) for the grating model: for each x0 the best f (the valley floor),
+    then the best x0 along it (with the prior), each refined by zooming grids.
+    Returns the starting parameters (A, theta, x0, f) or None."""
+    weight = 1.0 / sigma
+
+    def floor_of(x0):  # best log f and chi2 for each x0 (1-D array)
+        log_f = np.broadcast_to(np.linspace(*log_f_range, 40), (x0.size, 40))
+        evaluate = lambda lf: _grating_profile(pixel, lam, weight, sign, x0[:, None], np.exp(lf))[2]
+        return _zoom_minimum(evaluate(log_f), log_f, evaluate, 5)
+
+    def total(x0):
+        log_f, chi2 = floor_of(x0)
+        return chi2 + ((x0 - axis_px) / axis_sigma) ** 2, log_f
+
+    x0 = np.linspace(*x0_range, 17)
+    values, _ = total(x0)
+    if not np.any(np.isfinite(values)):
+        return None
+    evaluate = lambda grid: total(grid.ravel())[0].reshape(grid.shape)
+    best_x0, _ = _zoom_minimum(values[None, :], x0[None, :], evaluate, 5)
+    log_f, chi2 = floor_of(best_x0)
+    if not np.isfinite(chi2[0]):
+        return None
+    f = float(np.exp(log_f[0]))
+    a, theta, _ = _grating_profile(pixel, lam, weight, sign, best_x0[0], f)
+    return np.array([float(a), float(theta), float(best_x0[0]), f])
+
+
+def _grating_polish(params, pixel, lam, sigma, *, sign, axis_px, axis_sigma, lower, upper, max_iter=60):
+    """Levenberg-Marquardt (Marquardt 1963 diagonal scaling) on the 4 grating parameters, inside the bounds.
+
+    Residuals (model - lambda) / sigma and the Gaussian prior (x0 - axis) / axis_sigma.
+    Returns (params, jacobian of the residual vector, chi2) or None.
+    """
+    p = np.clip(np.asarray(params, dtype=float), lower, upper)
+    prior_row = np.array([[0.0, 0.0, 1.0 / axis_sigma, 0.0]])
+
+    def residual_and_jacobian(q):
+        r = np.r_[(_grating_eval(q, pixel, sign) - lam) / sigma, (q[2] - axis_px) / axis_sigma]
+        j = np.vstack([_grating_jacobian(q, pixel, sign) / sigma[:, None], prior_row])
+        return r, j
+
+    r, j = residual_and_jacobian(p)
+    chi2 = float(r @ r)
+    damping = 1e-3
+    for _ in range(max_iter):
+        h = j.T @ j
+        g = j.T @ r
+        scale = np.maximum(np.diag(h), 1e-300)
+        improved = False
+        for _ in range(12):
+            try:
+                step = np.linalg.solve(h + damping * np.diag(scale), -g)
+            except np.linalg.LinAlgError:
+                damping *= 10.0
+                continue
+            trial = np.clip(p + step, lower, upper)
+            r_new, j_new = residual_and_jacobian(trial)
+            chi2_new = float(r_new @ r_new)
+            if np.isfinite(chi2_new) and chi2_new <= chi2:
+                converged = chi2 - chi2_new <= 1e-10 * max(chi2, 1.0)
+                p, r, j, chi2 = trial, r_new, j_new, chi2_new
+                damping = max(damping / 10.0, 1e-12)
+                improved = True
+                break
+            damping *= 10.0
+        if not improved or converged:
+            break
+    if not np.isfinite(chi2):
+        return None
+    return p, j, chi2
+
+
+def _grating_fit(pixel, lam, sigma, *, sign, width_px, axis_px, start_px=None, start_nm=None, start_disp=None,
+                 initial=None):
     """Weighted least-squares fit of the grating model (B = 0). Returns (params, cov, chi2) or None.
 
-    Starts from the polynomial's wavelength and |dispersion| at ``start_px`` for a few focal
-    lengths and optical-axis positions; bounds f in [0.2, 20] x width and theta in (-80, 80) deg;
-    a Gaussian prior of 0.1 x width keeps x0 near ``axis_px`` (the middle of the frame).
-    The returned chi2 includes the prior's term.
+    The global search is a grid over the optical-axis position x0 (within +-0.8 widths of
+    ``axis_px``) and the focal length f (0.2-20 widths, log-spaced), each point solved
+    exactly for (A, theta) by linear least squares; the best point is polished by
+    Levenberg-Marquardt on all four parameters. With ``initial`` (a nearby solution, e.g.
+    of the same lines but one) the grid is skipped and only the polish runs.
+    Bounds: f in [0.2, 20] x width and theta in (-80, 80) deg; a Gaussian prior of
+    0.1 x width keeps x0 near ``axis_px`` (the middle of the frame).
+    The returned chi2 includes the prior's term. ``start_*`` (the polynomial's wavelength and
+    dispersion at the middle of the lines) only check the inputs are usable.
     """
-    from scipy.optimize import least_squares
-
     pixel, lam, sigma = (np.asarray(v, dtype=float) for v in (pixel, lam, sigma))
-    if pixel.size < 5 or not start_nm > 0 or not abs(start_disp) > 0:
+    if pixel.size < 5:
+        return None
+    if start_nm is not None and not start_nm > 0 or start_disp is not None and not abs(start_disp) > 0:
         return None
     width = max(float(width_px), 10.0)
-    lower = np.array([1.0, math.radians(-80.0), start_px - 20 * width, 0.2 * width])
-    upper = np.array([1e6, math.radians(80.0), start_px + 20 * width, 20.0 * width])
+    lower, upper = _grating_bounds(width, float(axis_px) if start_px is None else float(start_px))
 
     # Weak prior: the optical axis meets the sensor near the middle of the frame (a webcam's principal
     # point is within a few per cent of the image centre; common practice, no source). It lifts the
     # near-degeneracy of x0 with theta that would otherwise make extrapolation loose.
     axis_px, axis_sigma = float(axis_px), 0.1 * width
-
-    def residual(p):
-        return np.r_[(_grating_eval(p, pixel, sign) - lam) / sigma, (p[2] - axis_px) / axis_sigma]
-
-    def jacobian(p):
-        prior = np.array([[0.0, 0.0, 1.0 / axis_sigma, 0.0]])
-        return np.vstack([_grating_jacobian(p, pixel, sign) / sigma[:, None], prior])
-
-    best = None
-    for f_factor in (0.6, 1.2, 2.5, 6.0):
-        f = f_factor * width
-        for x0 in (axis_px, start_px, start_px - 0.5 * width, start_px + 0.5 * width):
-            # at start_px: A sin(theta + atan(u0)) = lambda0 and A cos(...) / (f (1 + u0^2)) = |D|
-            u0 = sign * (start_px - x0) / f
-            phi = math.atan2(start_nm, abs(start_disp) * f * (1.0 + u0**2))
-            theta = phi - math.atan(u0)
-            a = start_nm / math.sin(phi)
-            p0 = np.array([a, theta, x0, f])
-            if not np.all((p0 > lower) & (p0 < upper)):
-                continue
-            try:
-                fit = least_squares(residual, p0, jac=jacobian, bounds=(lower, upper), x_scale="jac", method="trf",
-                                    max_nfev=200)
-            except (ValueError, np.linalg.LinAlgError):
-                continue
-            chi2 = float(np.sum(fit.fun**2))
-            if np.isfinite(chi2) and (best is None or chi2 < best[2]):
-                best = (fit.x, fit.jac, chi2)
-    if best is None:
+    options = dict(sign=sign, axis_px=axis_px, axis_sigma=axis_sigma, lower=lower, upper=upper)
+    if initial is not None:
+        polished = _grating_polish(initial, pixel, lam, sigma, max_iter=20, **options)
+    else:
+        start = _grating_search(pixel, lam, sigma, sign=sign, width=width, axis_px=axis_px, axis_sigma=axis_sigma,
+                                x0_range=(axis_px - 0.8 * width, axis_px + 0.8 * width),
+                                log_f_range=(math.log(0.2 * width), math.log(20.0 * width)))
+        polished = None if start is None else _grating_polish(start, pixel, lam, sigma, **options)
+    if polished is None:
         return None
-    params, jac, chi2 = best
+    params, jac, chi2 = polished
     try:
         cov = np.linalg.pinv(jac.T @ jac)
     except np.linalg.LinAlgError:
@@ -110,15 +226,16 @@ def _grating_deletion_z(pixel, lam, sigma, params, chi2, sign, keep, refit):
 
     z_i = r_i / (sigma_i sqrt(1 - h_i)), h from the linearised hat matrix, so that z_i**2 is
     the drop in chi-square when line i is left out; lines of high leverage (h > 0.8) are
-    refitted without them (``refit(mask)`` -> (params, cov, chi2) or None) and z_i is the
-    square root of the actual drop. Four parameters on a handful of tightly known lines make
-    some lines pivotal, so the prediction's own uncertainty must be counted before calling a
-    line an outlier.
+    refitted without them (``refit(mask, params)`` -> (params, cov, chi2) or None, started
+    from the one-step (Newton) deletion update of ``params``) and z_i is the square root of
+    the actual drop. Four parameters on a handful of tightly known lines make some lines
+    pivotal, so the prediction's own uncertainty must be counted before calling a line an outlier.
     """
     out = np.zeros(pixel.size)
     index = np.flatnonzero(keep)
     jac = _grating_jacobian(params, pixel, sign) / sigma[:, None]
-    inverse = np.linalg.pinv(jac[index].T @ jac[index])
+    hessian = jac[index].T @ jac[index]
+    inverse = np.linalg.pinv(hessian)
     leverage = np.einsum("ij,jk,ik->i", jac, inverse, jac)
     residual = (lam - _grating_eval(params, pixel, sign)) / sigma
     for i in index:
@@ -127,7 +244,10 @@ def _grating_deletion_z(pixel, lam, sigma, params, chi2, sign, keep, refit):
             continue
         mask = keep.copy()
         mask[i] = False
-        other = refit(mask)
+        # one Newton step of the deletion: the linearised fit without line i
+        step, *_ = np.linalg.lstsq(hessian - np.outer(jac[i], jac[i]), jac[i] * residual[i], rcond=None)
+        start = params - step
+        other = refit(mask, start)
         drop = chi2 - other[2] if other is not None else residual[i] ** 2 / 0.2
         out[i] = math.copysign(math.sqrt(max(drop, 0.0)), residual[i])
     return out
