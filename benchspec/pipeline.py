@@ -18,6 +18,7 @@ the band has moved since calibration.
 
 from __future__ import annotations
 
+import datetime as _dt
 import os
 import warnings
 from pathlib import Path
@@ -386,7 +387,9 @@ def iter_extract_frames(
     centres and fluxes are unchanged (``interpolation="cubic"`` to match the
     stacked path). The noise model is estimated once, from the first frame.
     The band's position is checked on the first frame and every
-    ``band_check_every`` frames after it.
+    ``band_check_every`` frames after it. Spectra of one band-check period
+    share the nested parts of their provenance (settings, calibration,
+    band check); treat them as read-only.
 
     Yields
     ------
@@ -431,25 +434,38 @@ def iter_extract_frames(
     axis = None  # the calibrated axis, the same for every frame: computed on the first
     for series_index, (path, index, frame) in enumerate(sources):
         label = f"{path or 'array'} frame {index}"
-        if extractor is None or series_index % band_check_every == 0:
+        if extractor is None:
             stacked = stack_frames([frame], gamma=gamma, channel=channel, dark=dark_stack)
             _check_frame_size(stacked.shape, calibration, cal_path, label)
             band = _check_band(stacked.image, calibration, label)
             gamma_resolved = stacked.settings.get("gamma")
-            if extractor is None:
-                noise = estimate_noise_model(stacked, geometry=calibration.geometry)
-                preparer = FramePreparer(gamma=gamma, channel=channel,
-                                         dark=None if dark_stack is None else dark_stack.image)
-                extractor = LiveExtractor(calibration.geometry, noise_model=noise, method=extraction,
-                                          preparer=preparer, interpolation=interpolation)
+            noise = estimate_noise_model(stacked, geometry=calibration.geometry)
+            preparer = FramePreparer(gamma=gamma, channel=channel, dark=None if dark_stack is None else dark_stack.image)
+            extractor = LiveExtractor(calibration.geometry, noise_model=noise, method=extraction,
+                                      preparer=preparer, interpolation=interpolation)
+            base = None
+        elif series_index % band_check_every == 0:
+            _check_frame_size(np.shape(frame), calibration, cal_path, label)
+            # the linear frame is all the check needs: no stack statistics (a stack of one costs 5 times more)
+            band = _check_band(preparer.prepare(frame)[0], calibration, label)
+            base = None
+        if base is None:  # the record shared by the frames until the next band check
+            base = build_provenance(
+                frames=[{"path": None if path is None else str(path), "frame_index": index, "sha256": None}],
+                dark_frames=[r for r in dark_records if r["path"]],
+                calibration=cal_record,
+                settings=dict(run_settings, gamma_resolved=gamma_resolved, n_frames=1),
+                extra={"band_check": band, "time_series_index": series_index},
+            )
+            signal_record = base["frames"][0]
         flux, variance, saturated = extractor.process_raw_arrays(frame)
-        provenance = build_provenance(
-            frames=[{"path": None if path is None else str(path), "frame_index": index, "sha256": None}],
-            dark_frames=[r for r in dark_records if r["path"]],
-            calibration=cal_record,
-            settings=dict(run_settings, gamma_resolved=gamma_resolved, n_frames=1),
-            extra={"band_check": band, "time_series_index": series_index},
-        )
+        # per frame only the frame, its index and the time change; the nested settings, calibration and
+        # band-check records are shared by the frames of one band-check period (read them, do not edit them)
+        provenance = dict(base)
+        provenance["frames"] = [dict(signal_record, path=None if path is None else str(path), frame_index=index)]
+        provenance["frames"] += [dict(r) for r in base["frames"][1:]]
+        provenance["created_utc"] = _utc_now()
+        provenance["time_series_index"] = series_index
         if axis is None:
             axis = apply_calibration(Spectrum(intensity=flux, uncertainty=np.sqrt(np.maximum(variance, 0)),
                                               pixel=np.arange(flux.size, dtype=np.float64)), calibration)
@@ -459,6 +475,11 @@ def iter_extract_frames(
         yield Spectrum(intensity=flux[order], uncertainty=np.sqrt(np.maximum(variance[order], 0)), pixel=axis.pixel,
                        wavelength_nm=axis.wavelength_nm, wavelength_uncertainty_nm=axis.wavelength_uncertainty_nm,
                        saturated=saturated[order], provenance=provenance)
+
+
+def _utc_now() -> str:
+    """The time now, as :func:`benchspec.io.build_provenance` writes it (ISO 8601, whole seconds, Z)."""
+    return _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")
 
 
 def _decoded_ahead(items, *, depth: int = 4):
