@@ -792,6 +792,7 @@ class LiveExtractor:
         self._profile = (profile / profile.sum())[:, None]
         self._pixel = np.arange(n_cols, dtype=np.float64)
         self._roi_preparer = None
+        self._region_preparer()._table(np.uint8)  # built now: prepare_raw may be called from another thread
         self._prepare_buffers: dict = {}  # the linearised region, reused between frames
         self._buffer = np.empty((n_rows, n_cols), np.float32)
         self._sat_buffer = np.empty((n_rows, n_cols), np.uint8)
@@ -1042,7 +1043,23 @@ class LiveExtractor:
         frame = np.asarray(frame)
         check_frame_size(frame.shape, self.geometry)
         roi = frame[self.y0:self.y1, self.x0:self.x1]
-        image_roi, sat_roi = self._region_preparer().prepare_live(roi, buffers=self._prepare_buffers)
+        return self.process_prepared(*self._region_preparer().prepare_live(roi, buffers=self._prepare_buffers))
+
+    def prepare_raw(self, frame: np.ndarray) -> tuple[np.ndarray, np.ndarray | None]:
+        """The linearised region of one raw frame and its clipping mask (None when nothing clipped).
+
+        Safe to call from another thread than :meth:`process_prepared`
+        (its arrays are new, no buffer is shared): a batch reader can
+        linearise frame n+1 while frame n is extracted.
+        ``process_prepared(*prepare_raw(frame))`` equals
+        ``process_raw_arrays(frame)``.
+        """
+        frame = np.asarray(frame)
+        check_frame_size(frame.shape, self.geometry)
+        return self._region_preparer().prepare_live(frame[self.y0:self.y1, self.x0:self.x1])
+
+    def process_prepared(self, image_roi: np.ndarray, sat_roi: np.ndarray | None = None):
+        """(intensity, variance, saturated) from :meth:`prepare_raw`'s region and mask."""
         flux, var = self._from_rectified(self._remap(image_roi))
         if sat_roi is None or not sat_roi.any():  # the usual live frame: nothing clipped, no second remap needed
             return flux, var, np.zeros(flux.shape, dtype=bool)

@@ -373,7 +373,7 @@ def iter_extract_frames(
     *,
     dark=None,
     extraction: str | None = None,
-    band_check_every: int = 30,
+    band_check_every: int = 90,
     interpolation: str = "linear",
     _calibration_path=None,
 ):
@@ -387,7 +387,8 @@ def iter_extract_frames(
     centres and fluxes are unchanged (``interpolation="cubic"`` to match the
     stacked path). The noise model is estimated once, from the first frame.
     The band's position is checked on the first frame and every
-    ``band_check_every`` frames after it. Spectra of one band-check period
+    ``band_check_every`` frames after it (3 s of 30 fps video: a check costs
+    about as much as extracting 10 frames). Spectra of one band-check period
     share the nested parts of their provenance (settings, calibration,
     band check); treat them as read-only.
 
@@ -423,16 +424,19 @@ def iter_extract_frames(
         else:
             dark_stack = stack_frames(iter_frames(dark), gamma=gamma, channel=channel, check=False)
             dark_records = [{"path": str(p), "sha256": file_sha256(p)} for p in expand_sources(dark)]
+    # once the extractor exists, the decoding thread also linearises each frame's region (OpenCV
+    # releases the lock meanwhile), so the two cores share the work more evenly
+    ahead_work: dict = {}
     if _is_array_input(frames):
         arrays = [frames] if isinstance(frames, np.ndarray) else list(frames)
-        sources = ((None, k, a) for k, a in enumerate(arrays))
+        sources = ((None, k, a, None) for k, a in enumerate(arrays))
     else:
-        sources = _decoded_ahead(_iter_labelled(frames))
+        sources = _decoded_ahead(_iter_labelled(frames), work=ahead_work)
     extractor = None
     band: dict = {}
     gamma_resolved = None
     axis = None  # the calibrated axis, the same for every frame: computed on the first
-    for series_index, (path, index, frame) in enumerate(sources):
+    for series_index, (path, index, frame, prepared) in enumerate(sources):
         label = f"{path or 'array'} frame {index}"
         if extractor is None:
             stacked = stack_frames([frame], gamma=gamma, channel=channel, dark=dark_stack)
@@ -443,6 +447,7 @@ def iter_extract_frames(
             preparer = FramePreparer(gamma=gamma, channel=channel, dark=None if dark_stack is None else dark_stack.image)
             extractor = LiveExtractor(calibration.geometry, noise_model=noise, method=extraction,
                                       preparer=preparer, interpolation=interpolation)
+            ahead_work["prepare"] = extractor.prepare_raw
             base = None
         elif series_index % band_check_every == 0:
             _check_frame_size(np.shape(frame), calibration, cal_path, label)
@@ -458,7 +463,10 @@ def iter_extract_frames(
                 extra={"band_check": band, "time_series_index": series_index},
             )
             signal_record = base["frames"][0]
-        flux, variance, saturated = extractor.process_raw_arrays(frame)
+        if prepared is not None:
+            flux, variance, saturated = extractor.process_prepared(*prepared)
+        else:
+            flux, variance, saturated = extractor.process_raw_arrays(frame)
         # per frame only the frame, its index and the time change; the nested settings, calibration and
         # band-check records are shared by the frames of one band-check period (read them, do not edit them)
         provenance = dict(base)
@@ -482,8 +490,15 @@ def _utc_now() -> str:
     return _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")
 
 
-def _decoded_ahead(items, *, depth: int = 4):
-    """The same items, produced by a second thread at most ``depth`` ahead (OpenCV decodes without the GIL)."""
+def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None):
+    """The same items, produced by a second thread at most ``depth`` ahead (OpenCV decodes without the GIL).
+
+    With ``work``, each item ``(path, index, frame)`` comes out as
+    ``(path, index, frame, prepared)``: ``prepared`` is ``work["prepare"](frame)``
+    computed on the second thread once the consumer has put a callable there
+    (None before, or when it raised: the consumer then does the work and
+    meets the error itself).
+    """
     import queue
     import threading
 
@@ -494,6 +509,15 @@ def _decoded_ahead(items, *, depth: int = 4):
     def produce():
         try:
             for item in items:
+                if work is not None:
+                    prepare = work.get("prepare")
+                    prepared = None
+                    if prepare is not None:
+                        try:
+                            prepared = prepare(item[2])
+                        except Exception:  # the consumer repeats the work and reports the error
+                            prepared = None
+                    item = (*item, prepared)
                 while not stop.is_set():
                     try:
                         mailbox.put(item, timeout=0.1)
