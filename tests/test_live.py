@@ -205,3 +205,33 @@ def test_each_frame_is_what_apply_calibration_gives():
         np.testing.assert_array_equal(spectrum.saturated, expected.saturated)
         assert spectrum.provenance["wavelength_calibration"] == expected.provenance["wavelength_calibration"]
     assert [s.provenance["time_series_index"] for s in series] == [0, 1, 2]
+
+
+def test_a_video_series_prepared_on_the_decoding_thread_equals_the_same_frames_as_arrays(tmp_path):
+    import cv2
+
+    bench = simulate.Bench().with_(camera={"width_px": 640, "height_px": 360, "rotation_deg": 3.0},
+                                   slit={"height_px": 80.0})
+    cfl = [np.ascontiguousarray(simulate.render(bench, source="cfl", seed=s).image) for s in (1, 2)]
+    path = tmp_path / "series.avi"
+    writer = cv2.VideoWriter(str(path), cv2.VideoWriter_fourcc(*"MJPG"), 30.0, (640, 360), True)
+    for k in range(6):
+        writer.write(np.ascontiguousarray(cfl[k % 2][:, :, ::-1]))
+    writer.release()
+    decoded = list(frames.iter_video(path))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DegradedResultWarning)
+        calibration = pipeline.calibrate_frames(cfl[0], lamp="cfl")
+        from_video = list(pipeline.iter_extract_frames(str(path), calibration, band_check_every=4))
+        from_arrays = list(pipeline.iter_extract_frames(decoded, calibration, band_check_every=4))
+    assert len(from_video) == len(from_arrays) == 6
+    for a, b in zip(from_video, from_arrays):
+        np.testing.assert_allclose(a.intensity, b.intensity, rtol=1e-6, atol=1e-6)
+        np.testing.assert_allclose(a.uncertainty, b.uncertainty, rtol=1e-6)
+    assert [s.provenance["frames"][0]["frame_index"] for s in from_video] == list(range(6))
+    live = extract.LiveExtractor(calibration.geometry, noise_model=extract.NoiseModel(50.0, 1.0), method="optimal")
+    for frame in decoded[:2]:
+        direct = live.process_raw_arrays(frame)
+        prepared = live.process_prepared(*live.prepare_raw(frame))
+        for x, y in zip(direct, prepared):
+            np.testing.assert_array_equal(x, y)
