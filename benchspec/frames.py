@@ -561,6 +561,15 @@ def channel_weights_for(channel: str = "mean", channel_weights: Sequence[float] 
     return named[channel]
 
 
+def _largest_code(frame: np.ndarray) -> float:
+    """The largest value of an integer frame, in one fast pass (``cv2.minMaxLoc`` on its rows)."""
+    if frame.ndim == 3 and not (frame.strides[-1] == frame.itemsize and frame.strides[1] == 3 * frame.itemsize):
+        return float(frame.max())
+    if frame.strides[-1] != frame.itemsize:
+        return float(frame.max())
+    return float(cv2.minMaxLoc(frame.reshape(frame.shape[0], -1))[1])
+
+
 class FramePreparer:
     """Raw frame -> (linear single-channel float32 image, saturation mask), fast.
 
@@ -688,9 +697,12 @@ class FramePreparer:
             image = cv2.transform(linear, w)
             if image.ndim == 3:
                 image = image[:, :, 0]
-            # one pass: 255 where every channel is below the saturation code
-            below = int(math.ceil(full)) - 1
-            saturated = cv2.inRange(frame, (0, 0, 0), (below, below, below)) == 0
+            if frame.dtype == np.uint8 and _largest_code(frame) < full:
+                saturated = np.zeros(frame.shape[:2], dtype=bool)  # nothing clipped: no per-pixel comparison
+            else:
+                # one pass: 255 where every channel is below the saturation code
+                below = int(math.ceil(full)) - 1
+                saturated = cv2.inRange(frame, (0, 0, 0), (below, below, below)) == 0
         else:
             image = linear
             saturated = frame >= full
@@ -777,8 +789,9 @@ def stack_frames(
             offset = image.astype(np.float64)
             total = np.zeros(shape, np.float64)
             total_sq = np.zeros(shape, np.float64)
+            delta = np.empty(shape, np.float64)  # reused: one work array for the whole stack
             saturated = sat.copy()
-            encoded_max = float(frame.max())
+            encoded_max = _largest_code(frame) if frame.dtype in (np.uint8, np.uint16) else float(frame.max())
         else:
             if image.shape != shape:
                 raise FrameError(
@@ -787,13 +800,15 @@ def stack_frames(
                 )
             if frame.dtype != dtype:
                 raise FrameError(f"frame {n + 1} is {frame.dtype} but the first frame is {dtype}; do not mix bit depths")
-            saturated |= sat
-            encoded_max = max(encoded_max, float(frame.max()))
+            np.logical_or(saturated, sat, out=saturated)
+            encoded_max = max(encoded_max, _largest_code(frame) if frame.dtype in (np.uint8, np.uint16)
+                              else float(frame.max()))
         n += 1
         if method == "mean":
-            delta = image - offset  # shifted sums keep the variance accurate
+            np.subtract(image, offset, out=delta)  # shifted sums keep the variance accurate
             total += delta
-            total_sq += delta * delta
+            np.multiply(delta, delta, out=delta)
+            total_sq += delta
         else:
             kept.append(image)
             if len(kept) * image.nbytes > _MEDIAN_MEMORY_BYTES:
