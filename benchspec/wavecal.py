@@ -70,6 +70,7 @@ from .wavefit import (  # noqa: F401  (the fit stage lives in its own module)
     _grating_jacobian,
     _grating_fit,
     _grating_deletion_z,
+    _covariance_scale,
     _weighted_polyfit,
     _loo_residuals,
     _select_order,
@@ -1104,7 +1105,9 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
     without rejection (the polynomial's order chosen again by BIC), so a line one model
     has to reject counts against it. The grating model wins only with a lower BIC (by 2
     if it has more parameters than the polynomial). Returns (solution, used, rejected,
-    anchor, note) or None (the polynomial stays).
+    anchor, note): the grating solution with its note, or the polynomial refitted at the
+    matching's order with the lines' own uncertainties (note None); None when neither
+    can be fitted (the matching's polynomial stays).
     """
     centre, scale, _, _ = context
     f = best.features
@@ -1120,8 +1123,33 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
     ss = np.r_[np.hypot(peaks.sigma[p_idx] * disp_lines, f.sigma[f_idx]),
                [math.hypot(m.tolerance_nm, _CENTRE_FLOOR_PX * median_disp) for m in pairs]]
     keep_poly = np.r_[np.asarray(best.used, dtype=bool), np.ones(len(pairs), dtype=bool)]
+    # Lines whose uncertainty is set by the centre measurement, not by a loosely known reference:
+    # their scatter about the fit tests the stated centre uncertainties (see _covariance_scale).
+    tight = np.r_[f.sigma[f_idx] <= peaks.sigma[p_idx] * disp_lines,
+                  [m.tolerance_nm <= _CENTRE_FLOOR_PX * median_disp for m in pairs]].astype(bool)
+    t_all = (px - centre) / scale
+    # The matching stage fits with a model floor on every line (a polynomial is only an approximation
+    # while lines are being assigned); the final polynomial is refitted, at the order matching chose,
+    # with each line's own uncertainty, so that its covariance states what the lines really constrain.
+    n_poly = coeffs.size
+    polynomial = None
+    if int(keep_poly.sum()) > n_poly:
+        coeffs, cov_poly, residual_poly, _ = _weighted_polyfit(t_all[keep_poly], lam[keep_poly], ss[keep_poly],
+                                                               n_poly - 1)
+        if np.all(np.isfinite(cov_poly)):
+            basis = np.stack([t_all[keep_poly] ** k for k in range(n_poly)], axis=-1) / ss[keep_poly, None]
+            leverage = np.einsum("ij,jk,ik->i", basis, cov_poly, basis)
+            factor = _covariance_scale(residual_poly / ss[keep_poly], leverage, tight[keep_poly])
+            polynomial = (WavelengthSolution(
+                coefficients=tuple(float(c) for c in coeffs),
+                covariance=tuple(tuple(float(v) for v in row) for row in cov_poly * factor),
+                pixel_centre=float(centre), pixel_scale=float(scale),
+                pixel_range=(float(pixel_range[0]), float(pixel_range[1]))),
+                best.used, best.rejected, best.anchor, None)
+        else:
+            coeffs = np.asarray(best.coefficients, dtype=float)
     if int(keep_poly.sum()) < 6:
-        return None
+        return polynomial
     sign = 1.0 if coeffs[1] > 0 else -1.0
     width = abs(float(pixel_range[1]) - float(pixel_range[0]))
     start = dict(sign=sign, width_px=width, axis_px=0.5 * (float(pixel_range[0]) + float(pixel_range[1])), start_px=centre, start_nm=float(coeffs[0]), start_disp=float(coeffs[1] / scale))
@@ -1160,7 +1188,7 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
             break
         keep, fitted = trial, refit
     if fitted is None or keep.sum() < 6:
-        return None
+        return polynomial
     params, cov, chi2 = fitted
     # Compare on the union of the lines either model keeps.
     union = keep | keep_poly
@@ -1168,20 +1196,19 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
     log_m = math.log(max(m, 2))
     on_union = fitted if np.array_equal(union, keep) else fit_on(union)
     if on_union is None:
-        return None
+        return polynomial
     bic_grating = on_union[2] + 4 * log_m
-    t_all = (px - centre) / scale
     if np.array_equal(union, keep_poly):
         chi2_poly = float(np.sum(((lam[union] - np.polynomial.polynomial.polyval(t_all[union], coeffs)) / ss[union]) ** 2))
-        n_poly = coeffs.size
         bic_poly = chi2_poly + n_poly * log_m
     else:
         refit = _select_order(t_all, lam, ss, union, max_order=3, monotonic_t=(probe_of(union) - centre) / scale)
         bic_poly, n_poly = (np.inf, coeffs.size) if refit is None else (refit[0], refit[4] + 1)
     if not bic_grating < bic_poly - (2.0 if n_poly < 4 else 0.0):
-        return None
-    dof = max(1, int(keep.sum()) - 4)
-    cov = cov * max(1.0, chi2 / dof)
+        return polynomial
+    jac = _grating_jacobian(params, px[keep], sign) / ss[keep, None]
+    leverage = np.einsum("ij,jk,ik->i", jac, cov, jac)
+    cov = cov * _covariance_scale((lam[keep] - _grating_eval(params, px[keep], sign)) / ss[keep], leverage, tight[keep])
     solution = WavelengthSolution(
         coefficients=tuple(float(v) for v in params),
         covariance=tuple(tuple(float(v) for v in row) for row in cov),
@@ -1209,7 +1236,7 @@ def _build_result(best: _Candidate, peaks: _Peaks, *, lamps: Sequence[Lamp], pai
     used_mask, rejected_mask, anchor_mask = best.used, best.rejected, best.anchor
     if grating is not None:
         solution, used_mask, rejected_mask, anchor_mask, grating_note = grating
-        extra_notes = tuple(extra_notes) + (grating_note,)
+        extra_notes = tuple(extra_notes) + ((grating_note,) if grating_note else ())
     else:
         solution = WavelengthSolution(
             coefficients=tuple(float(c) for c in best.coefficients),

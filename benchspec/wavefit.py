@@ -101,27 +101,27 @@ def _zoom_minimum(values, grid, evaluate, rounds):
     return best_x, best_v
 
 
-def _grating_search(pixel, lam, sigma, *, sign, width, axis_px, axis_sigma, x0_range, log_f_range):
-    """Global search of (x0, f) for the grating model: for each x0 the best f (the valley floor),
+def _grating_search(pixel, lam, sigma, *, sign, width, axis_px, axis_sigma, x0_range, log_f_range, n_x0=17, n_f=40):
+    """Search of (x0, f) for the grating model over a box: for each x0 the best f (the valley floor),
     then the best x0 along it (with the prior), each refined by zooming grids.
     Returns the starting parameters (A, theta, x0, f) or None."""
     weight = 1.0 / sigma
 
     def floor_of(x0):  # best log f and chi2 for each x0 (1-D array)
-        log_f = np.broadcast_to(np.linspace(*log_f_range, 40), (x0.size, 40))
+        log_f = np.broadcast_to(np.linspace(*log_f_range, n_f), (x0.size, n_f))
         evaluate = lambda lf: _grating_profile(pixel, lam, weight, sign, x0[:, None], np.exp(lf))[2]
-        return _zoom_minimum(evaluate(log_f), log_f, evaluate, 5)
+        return _zoom_minimum(evaluate(log_f), log_f, evaluate, 3)
 
     def total(x0):
         log_f, chi2 = floor_of(x0)
         return chi2 + ((x0 - axis_px) / axis_sigma) ** 2, log_f
 
-    x0 = np.linspace(*x0_range, 17)
+    x0 = np.linspace(*x0_range, n_x0)
     values, _ = total(x0)
     if not np.any(np.isfinite(values)):
         return None
     evaluate = lambda grid: total(grid.ravel())[0].reshape(grid.shape)
-    best_x0, _ = _zoom_minimum(values[None, :], x0[None, :], evaluate, 5)
+    best_x0, _ = _zoom_minimum(values[None, :], x0[None, :], evaluate, 3)
     log_f, chi2 = floor_of(best_x0)
     if not np.isfinite(chi2[0]):
         return None
@@ -203,7 +203,12 @@ def _grating_fit(pixel, lam, sigma, *, sign, width_px, axis_px, start_px=None, s
     axis_px, axis_sigma = float(axis_px), 0.1 * width
     options = dict(sign=sign, axis_px=axis_px, axis_sigma=axis_sigma, lower=lower, upper=upper)
     if initial is not None:
-        polished = _grating_polish(initial, pixel, lam, sigma, max_iter=20, **options)
+        # a local search around the nearby solution (its valley of x0 and f), then the polish
+        x0_near, f_near = float(initial[2]), float(initial[3])
+        start = _grating_search(pixel, lam, sigma, sign=sign, width=width, axis_px=axis_px, axis_sigma=axis_sigma,
+                                x0_range=(x0_near - 0.3 * width, x0_near + 0.3 * width),
+                                log_f_range=(math.log(f_near) - 0.3, math.log(f_near) + 0.3), n_x0=9, n_f=9)
+        polished = None if start is None else _grating_polish(start, pixel, lam, sigma, max_iter=20, **options)
     else:
         start = _grating_search(pixel, lam, sigma, sign=sign, width=width, axis_px=axis_px, axis_sigma=axis_sigma,
                                 x0_range=(axis_px - 0.8 * width, axis_px + 0.8 * width),
@@ -353,3 +358,28 @@ def _robust_fit(t, lam, sigma, *, max_order, monotonic_t):
     dof = max(1, int(keep.sum()) - (order + 1))
     reduced = chi2 / dof
     return coeffs, cov * max(1.0, reduced), keep, reduced
+
+
+# --------------------------------------------------------------------------- stated uncertainty
+
+# Weight of the stated line uncertainties against the scatter the lines show, in degrees of freedom
+# (a Bayesian scaled-inverse-chi-square prior centred on 1: with few lines the stated uncertainties
+# dominate; with many, the measured scatter does).
+_SCALE_PRIOR_DOF = 2.0
+
+
+def _covariance_scale(normalised_residual, leverage, tight):
+    """Variance factor for a fit's covariance from the scatter of its tightly known lines.
+
+    ``normalised_residual`` = (reference - fitted) / sigma and ``leverage`` (diagonal of the hat
+    matrix) of every fitted line; ``tight`` marks lines whose sigma is set by the centre
+    measurement (not by a loosely known reference wavelength, whose near-zero chi-square
+    terms would dilute the estimate). E[r_i^2] = 1 - h_i for a correct sigma, so
+    s^2 = sum r_i^2 / sum (1 - h_i) over the tight lines; it is shrunk towards 1 with
+    ``_SCALE_PRIOR_DOF`` pseudo degrees of freedom, so that a handful of lines that happen to
+    agree closely do not make the solution overconfident.
+    """
+    r = np.asarray(normalised_residual, dtype=float)[tight]
+    dof = float(np.sum(np.clip(1.0 - np.asarray(leverage, dtype=float)[tight], 0.0, 1.0)))
+    chi2 = float(np.sum(r * r))
+    return (chi2 + _SCALE_PRIOR_DOF) / (dof + _SCALE_PRIOR_DOF)

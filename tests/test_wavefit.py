@@ -1,0 +1,103 @@
+"""The fit stage of wavelength calibration (benchspec.wavefit): the grating-shaped model's fit,
+checked against the grating equation and an independent optimiser (scipy least_squares), and its
+deletion residuals against full refits."""
+
+import math
+
+import numpy as np
+import pytest
+from scipy.optimize import least_squares
+
+from benchspec.physics import diffraction_angle_deg
+from benchspec.refdata import load_line_list
+from benchspec.wavefit import _grating_deletion_z, _grating_eval, _grating_fit, _grating_profile
+
+WIDTH_PX = 1920.0
+AXIS_PX = 960.0
+
+
+def _bench_lines(*, lines_per_mm=1000.0, tilt_deg=33.0, x0=1010.0, focal_px=2400.0, sign=1.0, seed=0, noise_px=0.03):
+    """Pixel positions of NIST Hg and He lines on a flat sensor behind a grating (pinhole camera):
+    x = x0 + s f tan(beta - tilt), beta from the grating equation (benchspec.physics, normal incidence)."""
+    wavelength = np.array(sorted(l.wavelength_nm for species in ("Hg", "He")
+                                 for l in load_line_list(species).lines if 400 < l.wavelength_nm < 680))
+    beta = np.radians(diffraction_angle_deg(wavelength, lines_per_mm=lines_per_mm))
+    pixel = x0 + sign * focal_px * np.tan(beta - math.radians(tilt_deg))
+    inside = (pixel > 0) & (pixel < WIDTH_PX - 1)
+    rng = np.random.default_rng(seed)
+    return pixel[inside] + rng.normal(0, noise_px, inside.sum()), wavelength[inside]
+
+
+def _fit(pixel, wavelength, sigma_nm, sign=1.0, **extra):
+    return _grating_fit(pixel, wavelength, np.full(pixel.size, sigma_nm), sign=sign, width_px=WIDTH_PX,
+                        axis_px=AXIS_PX, start_px=AXIS_PX, start_nm=550.0, start_disp=0.3 * sign, **extra)
+
+
+@pytest.mark.parametrize("sign", [1.0, -1.0])
+def test_grating_fit_recovers_the_grating_equation(sign):
+    # 1000 lines/mm: d = 1000 nm, so A = d / m = 1000 nm (textbook grating equation, m lambda = d sin beta).
+    pixel, wavelength = _bench_lines(sign=sign, noise_px=0.0)
+    params, cov, chi2 = _fit(pixel, wavelength, 0.01, sign=sign)
+    assert params[0] == pytest.approx(1000.0, rel=2e-3)
+    assert math.degrees(params[1]) == pytest.approx(33.0, abs=0.1)
+    assert params[3] == pytest.approx(2400.0, rel=5e-3)
+    # noiseless lines: only the x0 prior (50 px off-axis, prior sigma 192 px) costs chi-square
+    assert chi2 < 0.1
+    assert np.all(np.isfinite(cov)) and np.all(np.diag(cov) > 0)
+
+
+def test_grating_fit_is_the_least_squares_minimum():
+    # An independent optimiser (scipy least_squares, trust region, started at the truth) finds no
+    # lower chi-square than our variable-projection search.
+    pixel, wavelength = _bench_lines(seed=3, noise_px=0.05)
+    sigma = np.full(pixel.size, 0.02)
+    params, _, chi2 = _fit(pixel, wavelength, 0.02)
+
+    def residual(p):
+        return np.r_[(_grating_eval(p, pixel, 1.0) - wavelength) / sigma, (p[2] - AXIS_PX) / (0.1 * WIDTH_PX)]
+
+    reference = least_squares(residual, [1000.0, math.radians(33.0), 1010.0, 2400.0], x_scale="jac", xtol=1e-14,
+                              ftol=1e-14, gtol=1e-14, max_nfev=20000)
+    assert chi2 <= float(np.sum(reference.fun**2)) + 1e-6
+    np.testing.assert_allclose(_grating_eval(params, pixel, 1.0), _grating_eval(reference.x, pixel, 1.0), atol=2e-4)
+
+
+def test_variable_projection_matches_a_direct_linear_fit():
+    # For fixed x0 and f the model is linear in (A cos theta, A sin theta): compare with numpy lstsq.
+    pixel, wavelength = _bench_lines(noise_px=0.05, seed=1)
+    weight = np.full(pixel.size, 10.0)
+    a, theta, chi2 = _grating_profile(pixel, wavelength, weight, 1.0, np.array([900.0, 1100.0]), np.array([2300.0, 2500.0]))
+    for k, (x0, f) in enumerate([(900.0, 2300.0), (1100.0, 2500.0)]):
+        u = (pixel - x0) / f
+        basis = np.stack([u / np.sqrt(1 + u**2), 1 / np.sqrt(1 + u**2)], axis=-1) * weight[:, None]
+        (c1, c2), *_ = np.linalg.lstsq(basis, wavelength * weight, rcond=None)
+        assert a[k] == pytest.approx(math.hypot(c1, c2), rel=1e-9)
+        assert theta[k] == pytest.approx(math.atan2(c2, c1), abs=1e-9)
+        params = (a[k], theta[k], x0, f)
+        assert chi2[k] == pytest.approx(np.sum(((_grating_eval(params, pixel, 1.0) - wavelength) * weight) ** 2), rel=1e-6)
+
+
+def test_deletion_residuals_match_full_refits():
+    # z_i^2 is the drop in chi-square when line i is left out; for high-leverage lines it is computed
+    # from a refit started at the one-step Newton update: compare with full searches from scratch.
+    pixel, wavelength = _bench_lines(seed=5, noise_px=0.05)
+    wavelength = wavelength.copy()
+    wavelength[-1] += 0.08  # one end line a little off (a blend, say)
+    sigma = np.full(pixel.size, 0.02)
+    params, _, chi2 = _fit(pixel, wavelength, 0.02)
+    keep = np.ones(pixel.size, dtype=bool)
+
+    def refit(mask, near):
+        return _fit(pixel[mask], wavelength[mask], 0.02, initial=near)
+
+    z = _grating_deletion_z(pixel, wavelength, sigma, params, chi2, 1.0, keep, refit)
+    for i in (0, pixel.size - 1):  # the end lines carry the most leverage
+        mask = keep.copy()
+        mask[i] = False
+        full = _fit(pixel[mask], wavelength[mask], 0.02)
+        assert z[i] ** 2 == pytest.approx(chi2 - full[2], rel=0.02, abs=0.05)
+
+
+def test_too_few_lines_give_no_fit():
+    pixel, wavelength = _bench_lines()
+    assert _fit(pixel[:4], wavelength[:4], 0.02) is None
