@@ -760,15 +760,20 @@ def _cluster_adaptive(reference, resolution_nm: float, predicted_nm: np.ndarray)
     return _Features(np.array(w), np.array(i), np.array(s), tuple(sp), tuple(m), np.array(merged, dtype=bool))
 
 
-def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, pairs, max_order, n_trials=1):
-    """Iterative matching + robust fit from a starting polynomial. Returns a _Candidate or None."""
+def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, pairs, max_order, n_trials=1, quick=False):
+    """Iterative matching + robust fit from a starting polynomial. Returns a _Candidate or None.
+
+    With ``quick`` the matching stops as soon as the assignment repeats and each step is one
+    least-squares fit at the order BIC chooses, with no outlier rejection or leave-one-out
+    checks: a cheap first pass that ranks many seeds, of which only the best get the full pass.
+    """
     coeffs = np.trim_zeros(np.asarray(initial, dtype=float), "b")
     if coeffs.size < 2:
         return None
     t = (peaks.pixel - centre) / scale
     previous = None
     result = None
-    for tol_px in (4.0, 3.0, 2.5, 2.0, 2.0, 2.0, 2.0):
+    for tol_px in ((4.0, 3.0, 2.0, 2.0, 2.0) if quick else (4.0, 3.0, 2.5, 2.0, 2.0, 2.0, 2.0)):
         lam = np.polynomial.polynomial.polyval(t, coeffs)
         disp = np.abs(np.polynomial.polynomial.polyval(t, np.polynomial.polynomial.polyder(coeffs))) / scale
         median_disp = float(np.median(disp)) if disp.size else 1.0
@@ -805,13 +810,21 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
         # The solution must not fold where there is light: over the lines' span and a margin beyond it.
         margin = 0.15 * (tt.max() - tt.min())
         monotonic_t = np.linspace(max(t_ends[0], tt.min() - margin), min(t_ends[1], tt.max() + margin), 33)
-        fit = _robust_fit(tt, ll, ss, max_order=min(max_order, max(1, tt.size - 2)), monotonic_t=monotonic_t)
-        if fit is None:
-            return None
-        new_coeffs, cov, keep, reduced = fit
+        if quick:
+            keep = np.ones(tt.size, dtype=bool)
+            fit = _select_order(tt, ll, ss, keep, max_order=min(max_order, max(1, tt.size - 2)), monotonic_t=monotonic_t)
+            if fit is None:
+                return None
+            _, new_coeffs, cov, chi2, order = fit
+            reduced = chi2 / max(1, tt.size - (order + 1))
+        else:
+            fit = _robust_fit(tt, ll, ss, max_order=min(max_order, max(1, tt.size - 2)), monotonic_t=monotonic_t)
+            if fit is None:
+                return None
+            new_coeffs, cov, keep, reduced = fit
         result = (new_coeffs, cov, p_idx, f_idx, keep, reduced, features, tt, ss)
         coeffs = new_coeffs
-        if assignment == previous and tol_px == 2.0:
+        if assignment == previous and (quick or tol_px == 2.0):
             break
         previous = assignment
     if result is None:
@@ -824,6 +837,15 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
     lam = np.polynomial.polynomial.polyval(t[p_idx], coeffs)
     disp = np.abs(np.polynomial.polynomial.polyval(t[p_idx], np.polynomial.polynomial.polyder(coeffs))) / scale
     resid_px = (features.wavelength[f_idx] - lam) / disp
+    if quick:
+        sigma_px = ss[:n_lines] / disp
+        candidate = _Candidate(coeffs, cov, p_idx, f_idx, used, rejected, features, 0.0, 0.0, reduced)
+        candidate.anchor = used & (features.sigma[f_idx] / disp <= _FEATURE_FIT_LIMIT_PX)
+        candidate.rms_px = float(np.sqrt(np.sum(resid_px**2 / sigma_px**2) / np.sum(1.0 / sigma_px**2))) if n_lines else np.inf
+        candidate.resid_px = resid_px
+        candidate.score = _final_score(candidate, peaks, centre=centre, scale=scale, t_ends=t_ends, fwhm=fwhm,
+                                       n_pairs=len(pairs))
+        return candidate
     # Leave-one-out residuals: a line the polynomial merely bends to pass through is not evidence.
     loo_nm = _loo_residuals(tt, np.r_[features.wavelength[f_idx], [m.wavelength_nm for m in pairs]], ss, keep,
                             coeffs.size - 1)
@@ -832,8 +854,12 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
     # Lines the others place far from their reference are not part of this solution: refit without them.
     # So are lines that miss their own feature by more than 2.5 sigma (and 1.5 px): near the ends a
     # loosely known phosphor feature otherwise accepts whatever falls within its wide tolerance.
+    # A loosely known feature cannot bend the fit much, so the others predict it well: it must lie
+    # within 3 sigma of that prediction.
+    loose = features.sigma[f_idx] / disp > _FEATURE_FIT_LIMIT_PX
     inconsistent = used & ((np.abs(loo_px) > np.maximum(2.0, 6.0 * np.hypot(sigma_px, 0.15)))
-                           | (np.abs(resid_px) > np.maximum(1.5, 2.5 * sigma_px)))
+                           | (np.abs(resid_px) > np.maximum(1.5, 2.5 * sigma_px))
+                           | (loose & (np.abs(loo_px) > 3.0 * sigma_px)))
     if inconsistent.any() and (keep.sum() - inconsistent.sum()) >= 3:
         keep = keep.copy()
         keep[:n_lines][inconsistent] = False
@@ -856,8 +882,10 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
         loo_px = np.where(used, loo_nm[:n_lines] / disp, resid_px)
         sigma_px = ss[:n_lines] / disp
     # An assignment the solution does not support is no assignment: such lines are left unassigned
-    # instead of being listed against a reference they miss.
-    supported = used | (np.abs(resid_px) <= np.maximum(1.5, 2.5 * sigma_px))
+    # instead of being listed against a reference they miss (a loosely known feature that had to be
+    # rejected supports nothing either).
+    loose = features.sigma[f_idx] / disp > _FEATURE_FIT_LIMIT_PX
+    supported = used | (~loose & (np.abs(resid_px) <= np.maximum(1.5, 2.5 * sigma_px)))
     if not supported.all():
         p_idx, f_idx, used, rejected = p_idx[supported], f_idx[supported], used[supported], rejected[supported]
         resid_px, loo_px, sigma_px, disp = resid_px[supported], loo_px[supported], sigma_px[supported], disp[supported]
@@ -951,6 +979,11 @@ def _distinct(a: _Candidate, b: _Candidate, t_probe, scale) -> bool:
 
 # --------------------------------------------------------------------------- the search
 
+# Distinct first-pass assignments that get the full refinement (the rest are far behind).
+_FULL_REFINEMENTS = 8
+# Seeds (best coarse scores first) that get the cheap first pass.
+_FIRST_PASS_SEEDS = 60
+
 
 def _search(peaks: _Peaks, reference, *, pixel_range, d_range, pairs, max_order):
     """All refined candidates, best first."""
@@ -1000,9 +1033,21 @@ def _search(peaks: _Peaks, reference, *, pixel_range, d_range, pairs, max_order)
             if len(kept) >= 12:
                 break
     seeds.sort(key=lambda s: -s[0])
-    for _, c in seeds[:60]:
-        refined = _refine(c, peaks, reference, centre=centre, scale=scale, fwhm=fwhm, t_ends=t_ends, pairs=pairs,
-                          max_order=max_order)
+    # First pass: every seed gets the cheap matching; seeds that converge to the same assignment
+    # are one; only the best few distinct assignments get the full refinement.
+    first: dict = {}
+    for _, c in seeds[:_FIRST_PASS_SEEDS]:
+        quick = _refine(c, peaks, reference, centre=centre, scale=scale, fwhm=fwhm, t_ends=t_ends, pairs=pairs,
+                        max_order=max_order, quick=True)
+        if quick is None:
+            continue
+        key = (tuple(quick.peak_index.tolist()), tuple(quick.feature_index.tolist()))
+        if key not in first or quick.score > first[key].score:
+            first[key] = quick
+    ranked = sorted(first.values(), key=lambda q: -q.score)[:_FULL_REFINEMENTS]
+    for q in ranked:
+        refined = _refine(q.coefficients, peaks, reference, centre=centre, scale=scale, fwhm=fwhm, t_ends=t_ends,
+                          pairs=pairs, max_order=max_order)
         if refined is None:
             continue
         disp_ends = np.abs(np.polynomial.polynomial.polyval(t_ends, np.polynomial.polynomial.polyder(refined.coefficients))) / scale
