@@ -204,7 +204,8 @@ def _grating_fit(pixel, lam, sigma, *, sign, width_px, axis_px, start_px=None, s
     options = dict(sign=sign, axis_px=axis_px, axis_sigma=axis_sigma, lower=lower, upper=upper)
     if initial is not None:
         # a local search around the nearby solution (its valley of x0 and f), then the polish
-        x0_near, f_near = float(initial[2]), float(initial[3])
+        # (the one-step deletion update can overshoot: bring it back inside the bounds first)
+        x0_near, f_near = (float(v) for v in np.clip(np.asarray(initial, dtype=float), lower, upper)[2:])
         start = _grating_search(pixel, lam, sigma, sign=sign, width=width, axis_px=axis_px, axis_sigma=axis_sigma,
                                 x0_range=(x0_near - 0.3 * width, x0_near + 0.3 * width),
                                 log_f_range=(math.log(f_near) - 0.3, math.log(f_near) + 0.3), n_x0=9, n_f=9)
