@@ -101,3 +101,25 @@ def test_deletion_residuals_match_full_refits():
 def test_too_few_lines_give_no_fit():
     pixel, wavelength = _bench_lines()
     assert _fit(pixel[:4], wavelength[:4], 0.02) is None
+
+
+@pytest.mark.parametrize("true_over_stated", [1.0, 3.0])
+def test_covariance_scale_follows_the_scatter_of_tight_lines(true_over_stated):
+    # For a linear least-squares fit E[sum r_i^2 / sigma_i^2] = sum (1 - h_i) = n - p (textbook
+    # least squares, e.g. Bevington & Robinson, Data Reduction and Error Analysis, ch. 7; from memory):
+    # the factor is ~1 when the stated sigmas are right and ~9 when the scatter is 3x larger;
+    # loosely known lines (sigma 50x larger) must not dilute it.
+    from benchspec.wavefit import _covariance_scale, _weighted_polyfit
+
+    rng = np.random.default_rng(11)
+    t = np.linspace(-1, 1, 60)
+    sigma = np.where(np.arange(60) % 3 == 0, 0.5, 0.01)
+    tight = sigma < 0.1
+    factors = []
+    for _ in range(20):
+        lam = 550 + 100 * t - 3 * t**2 + rng.normal(0, 1, t.size) * np.where(tight, true_over_stated * sigma, 0.002)
+        coeffs, cov, residual, _ = _weighted_polyfit(t, lam, sigma, 2)
+        basis = np.stack([t**k for k in range(3)], axis=-1) / sigma[:, None]
+        leverage = np.einsum("ij,jk,ik->i", basis, cov, basis)
+        factors.append(_covariance_scale(residual / sigma, leverage, tight))
+    assert np.median(factors) == pytest.approx(true_over_stated**2, rel=0.25)
