@@ -106,6 +106,8 @@ _FEATURE_FIT_LIMIT_PX = 0.75
 # While matching, a polynomial is only an approximation of the true mapping: each line's
 # uncertainty gets this floor so that tightly known lines are not rejected in cascade (px).
 _MATCH_MODEL_FLOOR_PX = 0.1
+# Broad reference features beyond this wavelength are not matched (a webcam's IR-cut filter skews them), nm.
+_IR_CUT_NM = 680.0
 
 
 # --------------------------------------------------------------------------- results
@@ -588,6 +590,10 @@ def _concat_peaks(items: Sequence[_Peaks]) -> _Peaks:
 
 def _reference_lines(lamp: Lamp, low_nm: float = 370.0, high_nm: float = 1000.0):
     lines = [l for l in lamp.lines() if low_nm <= l.wavelength_nm <= high_nm and l.relative_intensity > 0]
+    # Beyond ~680 nm a webcam's IR-cut filter falls steeply: across a band a few nm wide (the Eu3+
+    # 707-712 nm group) it shifts the apparent centre by several nm, more than the listed tolerance
+    # (design notes: IR-cut filters dim everything past ~670 nm). Narrow atomic lines are not moved.
+    lines = [l for l in lines if not (l.wavelength_nm > _IR_CUT_NM and l.tolerance_nm >= 1.0)]
     if not lines:
         raise CalibrationError(f"lamp {lamp.name!r} has no reference lines between {low_nm:g} and {high_nm:g} nm")
     # Line lists of different species use different intensity scales; each is normalised to its strongest line.
@@ -760,12 +766,15 @@ def _cluster_adaptive(reference, resolution_nm: float, predicted_nm: np.ndarray)
     return _Features(np.array(w), np.array(i), np.array(s), tuple(sp), tuple(m), np.array(merged, dtype=bool))
 
 
-def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, pairs, max_order, n_trials=1, quick=False):
+def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, pairs, max_order, n_trials=1, quick=False,
+            seen=None):
     """Iterative matching + robust fit from a starting polynomial. Returns a _Candidate or None.
 
     With ``quick`` the matching stops as soon as the assignment repeats and each step is one
     least-squares fit at the order BIC chooses, with no outlier rejection or leave-one-out
     checks: a cheap first pass that ranks many seeds, of which only the best get the full pass.
+    ``seen`` (a set, quick pass only) holds the first assignments of earlier seeds: a seed whose
+    first assignment was already seen converges to the same solution and is dropped (None).
     """
     coeffs = np.trim_zeros(np.asarray(initial, dtype=float), "b")
     if coeffs.size < 2:
@@ -798,6 +807,10 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
         assignment = tuple(chosen)
         if len(assignment) + len(pairs) < 2:
             return None
+        if seen is not None and previous is None:
+            if assignment in seen:
+                return None
+            seen.add(assignment)
         p_idx = np.array([a for a, _ in assignment], dtype=int)
         f_idx = np.array([b for _, b in assignment], dtype=int)
         tt = np.r_[t[p_idx], [(m.pixel - centre) / scale for m in pairs]]
@@ -1036,9 +1049,10 @@ def _search(peaks: _Peaks, reference, *, pixel_range, d_range, pairs, max_order)
     # First pass: every seed gets the cheap matching; seeds that converge to the same assignment
     # are one; only the best few distinct assignments get the full refinement.
     first: dict = {}
+    seen: set = set()
     for _, c in seeds[:_FIRST_PASS_SEEDS]:
         quick = _refine(c, peaks, reference, centre=centre, scale=scale, fwhm=fwhm, t_ends=t_ends, pairs=pairs,
-                        max_order=max_order, quick=True)
+                        max_order=max_order, quick=True, seen=seen)
         if quick is None:
             continue
         key = (tuple(quick.peak_index.tolist()), tuple(quick.feature_index.tolist()))
