@@ -332,7 +332,8 @@ def run(quick: bool = False, *, seed: int = 20261201, n_benches: int | None = No
         "wrong": statuses.count("wrong"),
         "rms_too_large": statuses.count("rms too large"),
         "crashed": statuses.count("crashed"),
-        "other_failures": count - ok - statuses.count("refused") - statuses.count("wrong") - statuses.count("rms too large"),
+        "other_failures": count - ok - statuses.count("refused") - statuses.count("wrong") - statuses.count("rms too large")
+        - statuses.count("crashed"),
         "success_rate": ok / count if count else float("nan"),
         "rms_px_median": float(np.median([r["rms_px"] for r in calibrated])) if calibrated else float("nan"),
         "rms_px_max": float(np.max([r["rms_px"] for r in calibrated])) if calibrated else float("nan"),
