@@ -375,6 +375,7 @@ def iter_extract_frames(
     extraction: str | None = None,
     band_check_every: int = 90,
     interpolation: str = "linear",
+    opencv_threads: int | None = None,
     _calibration_path=None,
 ):
     """One calibrated spectrum per frame, streamed: a time series of any length in bounded memory.
@@ -392,19 +393,47 @@ def iter_extract_frames(
     share the nested parts of their provenance (settings, calibration,
     band check); treat them as read-only.
 
+    ``opencv_threads`` sets OpenCV's thread count while the series runs
+    (``cv2.setNumThreads``, process-wide; restored when the iteration ends);
+    None (default) leaves it alone. The decoding thread already occupies the
+    second core: on a loaded 2-core machine single OpenCV calls waited for
+    a descheduled worker thread (1.4-2.5 times their single-thread time),
+    but whole-video runs there did not show a consistent gain from 1.
+
     Yields
     ------
     Spectrum
         As :func:`extract_frames` with ``each=True`` returns them; the
         provenance gives the frame's file and index and the series index.
     """
+    if band_check_every < 1:
+        raise InputError(f"`band_check_every` must be at least 1, was {band_check_every}")
+    if opencv_threads is not None and opencv_threads < 1:
+        raise InputError(f"`opencv_threads` must be at least 1 (or None), was {opencv_threads}")
+    if opencv_threads is None:
+        yield from _iter_extract(frames, calibration, dark=dark, extraction=extraction,
+                                 band_check_every=band_check_every, interpolation=interpolation,
+                                 cal_path=_calibration_path)
+        return
+    import cv2
+
+    previous = cv2.getNumThreads()
+    cv2.setNumThreads(int(opencv_threads))
+    try:
+        yield from _iter_extract(frames, calibration, dark=dark, extraction=extraction,
+                                 band_check_every=band_check_every, interpolation=interpolation,
+                                 cal_path=_calibration_path)
+    finally:
+        cv2.setNumThreads(previous)
+
+
+def _iter_extract(frames, calibration, *, dark, extraction, band_check_every, interpolation, cal_path):
+    """The body of :func:`iter_extract_frames` (arguments checked there)."""
     from .extract import LiveExtractor, estimate_noise_model
     from .frames import FramePreparer
     from .io import build_provenance
 
-    if band_check_every < 1:
-        raise InputError(f"`band_check_every` must be at least 1, was {band_check_every}")
-    calibration, cal_path = _loaded_calibration(calibration, _calibration_path)
+    calibration, cal_path = _loaded_calibration(calibration, cal_path)
     settings = calibration.settings
     gamma = str(settings.get("gamma_requested", settings.get("gamma", "auto")))
     channel = str(settings.get("channel", "mean"))
