@@ -1230,6 +1230,13 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
     # The same outlier rejection as _robust_fit, on all matched lines.
     keep = np.ones(px.size, dtype=bool)
     fitted = fit_on(keep)
+    if fitted is not None and keep_poly.all():
+        # The polynomial kept every line, so the comparison below is on all lines whatever the grating
+        # model rejects: when its fit on all lines loses, the rejection loop cannot change the outcome.
+        log_all = math.log(max(px.size, 2))
+        chi2_all = float(np.sum(((lam - np.polynomial.polynomial.polyval(t_all, coeffs)) / ss) ** 2))
+        if not fitted[2] + 4 * log_all < chi2_all + n_poly * log_all - (2.0 if n_poly < 4 else 0.0):
+            return polynomial
     for _ in range(max(1, px.size // 3)):
         if fitted is None or keep.sum() <= 6:
             break
