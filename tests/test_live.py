@@ -235,3 +235,22 @@ def test_a_video_series_prepared_on_the_decoding_thread_equals_the_same_frames_a
         prepared = live.process_prepared(*live.prepare_raw(frame))
         for x, y in zip(direct, prepared):
             np.testing.assert_array_equal(x, y)
+
+
+def test_opencv_threads_are_restored_after_a_series_and_bad_values_refused():
+    import cv2
+
+    bench = simulate.Bench().with_(camera={"width_px": 640, "height_px": 360, "rotation_deg": 3.0},
+                                   slit={"height_px": 80.0})
+    frame = simulate.render(bench, source="cfl", seed=1).image
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DegradedResultWarning)
+        calibration = pipeline.calibrate_frames(frame, lamp="cfl")
+        before = cv2.getNumThreads()
+        series = pipeline.iter_extract_frames([frame, frame], calibration, opencv_threads=1)
+        next(series)
+        assert cv2.getNumThreads() == 1
+        assert len(list(series)) == 1
+    assert cv2.getNumThreads() == before
+    with pytest.raises(InputError, match="`opencv_threads` must be at least 1"):
+        next(pipeline.iter_extract_frames([frame], calibration, opencv_threads=0))
