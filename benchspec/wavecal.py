@@ -561,8 +561,9 @@ def _peaks_from_table(table: LineTable, lamp_index: int = 0) -> _Peaks:
     fwhm = np.array([l.fwhm_px for l in lines])
     typical = float(np.median(fwhm[np.argsort([-l.peak for l in lines])[:7]]))
     # Broad bands are continuum, and features much narrower than the line-spread function are hot
-    # pixels or compression ringing: neither is a lamp line.
-    keep = [l for l in lines if 0.5 * typical <= l.fwhm_px <= 3.0 * typical]
+    # pixels or compression ringing: neither is a lamp line. The upper limit leaves room for
+    # phosphor lines (~2 nm wide in themselves: 10 px at 0.2 nm/px, several times the LSF).
+    keep = [l for l in lines if 0.5 * typical <= l.fwhm_px <= 5.0 * typical]
     # A clipped line with a neighbour has only one clean wing: its centre can be biased by a good
     # fraction of its width, far beyond the fit's own uncertainty (common practice, no source).
     clipped_blend = np.array([l.saturated and l.blended for l in keep], dtype=bool)
@@ -1118,7 +1119,9 @@ def _decide(candidates, peaks: _Peaks, *, lamp_label: str, pairs, context) -> _C
             f"the lines do not fit {lamp_label}: the best match explains {top3:.0%} of the 3 and {strong_fraction:.0%} of the 5 brightest lines "
             f"and {flux_fraction:.0%} of the line flux; check --lamp (or identify the source first)"
         )
-    if not pairs:
+    # Clipping flattens the brightest lines, so with saturated lines among the five brightest the
+    # brightness order says little and this test is not made.
+    if not pairs and not peaks.saturated[np.argsort(-peaks.amplitude)[:5]].any():
         brightest = np.argsort(-peaks.amplitude)[:5]
         position = {int(p): k for k, p in enumerate(best.peak_index)}
         for p in brightest:
@@ -1164,7 +1167,9 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
     without rejection (the polynomial's order chosen again by BIC), so a line one model
     has to reject counts against it. The grating model wins only with a lower BIC (by 2
     if it has more parameters than the polynomial). Returns (solution, used, rejected,
-    anchor, note) or None (the matching's polynomial stays).
+    anchor, note): the grating solution with its note, or the polynomial refitted at the
+    matching's order with the lines' own uncertainties (note None); None when neither
+    can be fitted (the matching's polynomial stays).
     """
     centre, scale, _, _ = context
     f = best.features
@@ -1185,12 +1190,26 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
     tight = np.r_[f.sigma[f_idx] <= peaks.sigma[p_idx] * disp_lines,
                   [m.tolerance_nm <= _CENTRE_FLOOR_PX * median_disp for m in pairs]].astype(bool)
     t_all = (px - centre) / scale
-    # The polynomial keeps the matching stage's fit and covariance, whose per-line model floor
-    # (_MATCH_MODEL_FLOOR_PX) also stands for the polynomial's own inadequacy: refitted without it,
-    # order-2 solutions moved by 1-3 px between loosely known lines and their stated uncertainty
-    # was half the true error on the accuracy benchmark's benches.
+    # The matching stage fits with a model floor on every line (a polynomial is only an approximation
+    # while lines are being assigned); the final polynomial is refitted, at the order matching chose,
+    # with each line's own uncertainty, so that its covariance states what the lines really constrain.
     n_poly = coeffs.size
     polynomial = None
+    if int(keep_poly.sum()) > n_poly:
+        coeffs, cov_poly, residual_poly, _ = _weighted_polyfit(t_all[keep_poly], lam[keep_poly], ss[keep_poly],
+                                                               n_poly - 1)
+        if np.all(np.isfinite(cov_poly)):
+            basis = np.stack([t_all[keep_poly] ** k for k in range(n_poly)], axis=-1) / ss[keep_poly, None]
+            leverage = np.einsum("ij,jk,ik->i", basis, cov_poly, basis)
+            factor = _covariance_scale(residual_poly / ss[keep_poly], leverage, tight[keep_poly])
+            polynomial = (WavelengthSolution(
+                coefficients=tuple(float(c) for c in coeffs),
+                covariance=tuple(tuple(float(v) for v in row) for row in cov_poly * factor),
+                pixel_centre=float(centre), pixel_scale=float(scale),
+                pixel_range=(float(pixel_range[0]), float(pixel_range[1]))),
+                best.used, best.rejected, best.anchor, None)
+        else:
+            coeffs = np.asarray(best.coefficients, dtype=float)
     if int(keep_poly.sum()) < 6:
         return polynomial
     sign = 1.0 if coeffs[1] > 0 else -1.0
@@ -1258,10 +1277,7 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
         return polynomial
     jac = _grating_jacobian(params, px[keep], sign) / ss[keep, None]
     leverage = np.einsum("ij,jk,ik->i", jac, cov, jac)
-    # scaled up (never down) by the scatter of the tightly known lines: loosely known lines, whose
-    # near-zero chi-square terms would dilute a plain reduced chi-square, are left out of it
-    cov = cov * max(1.0, _covariance_scale((lam[keep] - _grating_eval(params, px[keep], sign)) / ss[keep], leverage,
-                                           tight[keep]))
+    cov = cov * _covariance_scale((lam[keep] - _grating_eval(params, px[keep], sign)) / ss[keep], leverage, tight[keep])
     solution = WavelengthSolution(
         coefficients=tuple(float(v) for v in params),
         covariance=tuple(tuple(float(v) for v in row) for row in cov),
