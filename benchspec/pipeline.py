@@ -92,6 +92,55 @@ def _line_list_record(lamps) -> list[dict]:
     return out
 
 
+def _calibrate_from_dips(stacked, geometry, *, lamp, extraction, pairs, d_range, min_snr):
+    """Geometry, wavelength solution and spectrum from the dark lines of a daylight stack (an absorption reference).
+
+    A continuum has no bright lines to trace: what the geometry traced as "lines" are the band's
+    ends, so the line tilt and curvature are dropped (rotation and aperture are kept). The dips are
+    found at a few continuum windows (the dispersion is not known yet) and the accepted solution
+    with the most evidence is kept; its verdict is capped at "fair" (see DAYLIGHT_CALIBRATION_NOTE).
+    """
+    import dataclasses
+
+    from .analysis.daylight import DAYLIGHT_CALIBRATION_NOTE, DIP_WINDOWS_PX, check_daylight_continuum, find_daylight_dips
+
+    if geometry.n_lines_traced or geometry.curvature_known:
+        geometry = dataclasses.replace(
+            geometry, tilt_coefficients=(0.0,), curvature_coefficients=(0.0,), curvature_known=False, n_lines_traced=0,
+            curvature_rms_px=0.0,
+            notes=tuple(geometry.notes) + ("line tilt and curvature not measured: daylight has no bright lines to trace "
+                                           "(a lamp frame of the same setup would measure them)",))
+    spectrum = extract_stack(stacked, geometry, method=extraction)
+    check_daylight_continuum(spectrum)
+    best, failures, most_dips = None, [], 0
+    for window in DIP_WINDOWS_PX:
+        if 8 * window / 4 >= spectrum.size:
+            continue
+        table = find_daylight_dips(spectrum, window_px=window, min_snr=min_snr)
+        most_dips = max(most_dips, len(table))
+        if len(table) + len(pairs) < 3:
+            continue
+        try:
+            found = calibrate_lines(table, lamp=lamp, pairs=pairs, dispersion_range_nm_per_px=d_range)
+        except CalibrationError as exc:
+            failures.append(str(exc))
+            continue
+        if best is None or found.evidence_nats > best.evidence_nats:
+            best = found
+    if best is None:
+        if most_dips < 4:
+            raise CalibrationError(
+                f"only {most_dips} dark lines deeper than 1.5% were found; --lamp daylight needs the Fraunhofer lines: "
+                "skylight or a white card in sunlight (not a lamp or a featureless source), in focus, exposed near full "
+                "scale without clipping, several frames stacked"
+            )
+        raise CalibrationError(f"daylight: {failures[0] if failures else 'no solution'}")
+    verdict = "fair" if best.verdict == "good" else best.verdict
+    best = dataclasses.replace(best, verdict=verdict, verdict_reason=f"{best.verdict_reason}; {DAYLIGHT_CALIBRATION_NOTE}",
+                               notes=tuple(best.notes) + (DAYLIGHT_CALIBRATION_NOTE,))
+    return geometry, best, spectrum
+
+
 def calibrate_frames(
     frames,
     *,
@@ -148,15 +197,24 @@ def calibrate_frames(
         raise FrameError(f"{names}: {stacked.shape[1]}x{stacked.shape[0]} px is too small to hold a spectrum "
                          "(frames must be at least 16x16 px); check the file is a camera frame")
     geometry = measure_geometry(stacked.image, saturated=stacked.saturated)
-    spectrum = extract_stack(stacked, geometry, method=extraction)
-    table = find_lines(spectrum, min_snr=min_snr)
     d_range = (0.1, 3.0)
     if hint_lines_per_mm is not None:
         d_range = dispersion_range_for_grating(hint_lines_per_mm, frame_width_px=geometry.frame_width_px)
     for record in records:
         record["lamp"] = lamp
     lamps = [lamp]
-    if more_lamps:
+    # An absorption reference (daylight) is calibrated from the dips of a continuum, not from bright lines.
+    absorption = load_lamp(lamp).kind == "absorption"
+    if not absorption:
+        spectrum = extract_stack(stacked, geometry, method=extraction)
+        table = find_lines(spectrum, min_snr=min_snr)
+    if absorption:
+        if more_lamps:
+            raise InputError(f"--lamp {lamp} cannot be combined with other lamps' frames (--with); calibrate from the "
+                             "lamps, or from daylight alone")
+        geometry, wavelength, spectrum = _calibrate_from_dips(stacked, geometry, lamp=lamp, extraction=extraction, pairs=pairs,
+                                                    d_range=d_range, min_snr=min_snr)
+    elif more_lamps:
         observations: list[tuple[LineTable, str]] = [(table, lamp)]
         for other_frames, other_lamp in more_lamps:
             other_stack, other_records, _ = _stack(other_frames, dark=dark, gamma=gamma, channel=channel, method=stack)

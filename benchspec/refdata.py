@@ -162,8 +162,15 @@ class Lamp:
     source_type: str
     source: str
     continuum_fraction: float = 0.0
+    #: "emission" (a lamp's bright lines) or "absorption" (the dark lines of daylight).
+    kind: str = "emission"
 
     def line_lists(self) -> tuple[LineList, ...]:
+        if self.kind == "absorption":
+            # The dark lines of daylight live in calibration/fraunhofer.csv, read by the daylight analysis.
+            from .analysis.daylight import daylight_line_list
+
+            return (daylight_line_list(),)
         return tuple(load_line_list(s) for s in self.species)
 
     def lines(self, *, calibration_only: bool = False) -> tuple[ReferenceLine, ...]:
@@ -183,6 +190,12 @@ def available_lamps() -> tuple[str, ...]:
     return tuple(_list_data("lamps", ".toml"))
 
 
+def _lamp_kind(value, origin: str) -> str:
+    if value not in ("emission", "absorption"):
+        raise FileFormatError(f"{origin}: kind is {value!r}; it must be 'emission' or 'absorption'")
+    return value
+
+
 @functools.lru_cache(maxsize=None)
 def load_lamp(name: str) -> Lamp:
     """The packaged lamp definition ``name`` (e.g. ``"cfl"``, ``"hg"``, ``"ne"``)."""
@@ -200,6 +213,7 @@ def load_lamp(name: str) -> Lamp:
             source_type=data["source_type"],
             source=data["source"],
             continuum_fraction=float(data.get("continuum_fraction", 0.0)),
+            kind=_lamp_kind(data.get("kind", "emission"), origin),
         )
     except (KeyError, TypeError, ValueError, tomllib.TOMLDecodeError) as exc:
         raise FileFormatError(f"{origin} is malformed ({exc}); see calibration/README.md") from None

@@ -71,6 +71,7 @@ from .wavefit import (  # noqa: F401  (the fit stage lives in its own module)
     _grating_fit,
     _grating_deletion_z,
     _covariance_scale,
+    _grating_effective_parameters,
     _weighted_polyfit,
     _loo_residuals,
     _select_order,
@@ -550,11 +551,13 @@ class _Candidate:
     resid_px: np.ndarray = None
 
 
-def _peaks_from_table(table: LineTable, lamp_index: int = 0) -> _Peaks:
+def _peaks_from_table(table: LineTable, lamp_index: int = 0, kind: str = "emission") -> _Peaks:
     if not isinstance(table, LineTable):
         raise InputError(f"`lines` must be a LineTable from benchspec.lines.find_lines, got {type(table).__name__}")
-    if table.kind != "emission":
-        raise InputError("wavelength calibration needs emission lines; find lines with absorption=False")
+    if table.kind != kind:
+        # An absorption reference (daylight) is matched to dips, a lamp to its bright lines.
+        raise InputError(f"this reference needs {kind} lines but the table holds {table.kind} lines; "
+                         f"find lines with absorption={kind == 'absorption'}")
     lines = list(table.lines)
     if not lines:
         return _Peaks(*(np.zeros(0) for _ in range(5)), np.zeros(0, bool), np.zeros(0, bool), np.zeros(0, int))
@@ -1167,9 +1170,7 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
     without rejection (the polynomial's order chosen again by BIC), so a line one model
     has to reject counts against it. The grating model wins only with a lower BIC (by 2
     if it has more parameters than the polynomial). Returns (solution, used, rejected,
-    anchor, note): the grating solution with its note, or the polynomial refitted at the
-    matching's order with the lines' own uncertainties (note None); None when neither
-    can be fitted (the matching's polynomial stays).
+    anchor, note) or None (the matching's polynomial stays).
     """
     centre, scale, _, _ = context
     f = best.features
@@ -1190,26 +1191,12 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
     tight = np.r_[f.sigma[f_idx] <= peaks.sigma[p_idx] * disp_lines,
                   [m.tolerance_nm <= _CENTRE_FLOOR_PX * median_disp for m in pairs]].astype(bool)
     t_all = (px - centre) / scale
-    # The matching stage fits with a model floor on every line (a polynomial is only an approximation
-    # while lines are being assigned); the final polynomial is refitted, at the order matching chose,
-    # with each line's own uncertainty, so that its covariance states what the lines really constrain.
+    # The polynomial keeps the matching stage's fit and covariance, whose per-line model floor
+    # (_MATCH_MODEL_FLOOR_PX) also stands for the polynomial's own inadequacy: refitted without it,
+    # order-2 solutions moved by 1-3 px between loosely known lines and their stated uncertainty
+    # was half the true error on the accuracy benchmark's benches.
     n_poly = coeffs.size
     polynomial = None
-    if int(keep_poly.sum()) > n_poly:
-        coeffs, cov_poly, residual_poly, _ = _weighted_polyfit(t_all[keep_poly], lam[keep_poly], ss[keep_poly],
-                                                               n_poly - 1)
-        if np.all(np.isfinite(cov_poly)):
-            basis = np.stack([t_all[keep_poly] ** k for k in range(n_poly)], axis=-1) / ss[keep_poly, None]
-            leverage = np.einsum("ij,jk,ik->i", basis, cov_poly, basis)
-            factor = _covariance_scale(residual_poly / ss[keep_poly], leverage, tight[keep_poly])
-            polynomial = (WavelengthSolution(
-                coefficients=tuple(float(c) for c in coeffs),
-                covariance=tuple(tuple(float(v) for v in row) for row in cov_poly * factor),
-                pixel_centre=float(centre), pixel_scale=float(scale),
-                pixel_range=(float(pixel_range[0]), float(pixel_range[1]))),
-                best.used, best.rejected, best.anchor, None)
-        else:
-            coeffs = np.asarray(best.coefficients, dtype=float)
     if int(keep_poly.sum()) < 6:
         return polynomial
     sign = 1.0 if coeffs[1] > 0 else -1.0
@@ -1238,7 +1225,8 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
         # model rejects: when its fit on all lines loses, the rejection loop cannot change the outcome.
         log_all = math.log(max(px.size, 2))
         chi2_all = float(np.sum(((lam - np.polynomial.polynomial.polyval(t_all, coeffs)) / ss) ** 2))
-        if not fitted[2] + 4 * log_all < chi2_all + n_poly * log_all - (2.0 if n_poly < 4 else 0.0):
+        k_all = _grating_effective_parameters(fitted[0], fitted[1], px, ss, sign)
+        if not fitted[2] + k_all * log_all < chi2_all + n_poly * log_all - (2.0 if k_all > n_poly else 0.0):
             return polynomial
     for _ in range(max(1, px.size // 3)):
         if fitted is None or keep.sum() <= 6:
@@ -1266,18 +1254,23 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
     on_union = fitted if np.array_equal(union, keep) else fit_on(union)
     if on_union is None:
         return polynomial
-    bic_grating = on_union[2] + 4 * log_m
+    # the prior on x0 leaves the grating model fewer than 4 free parameters: count the effective number
+    k_grating = _grating_effective_parameters(on_union[0], on_union[1], px[union], ss[union], sign)
+    bic_grating = on_union[2] + k_grating * log_m
     if np.array_equal(union, keep_poly):
         chi2_poly = float(np.sum(((lam[union] - np.polynomial.polynomial.polyval(t_all[union], coeffs)) / ss[union]) ** 2))
         bic_poly = chi2_poly + n_poly * log_m
     else:
         refit = _select_order(t_all, lam, ss, union, max_order=3, monotonic_t=(probe_of(union) - centre) / scale)
         bic_poly, n_poly = (np.inf, coeffs.size) if refit is None else (refit[0], refit[4] + 1)
-    if not bic_grating < bic_poly - (2.0 if n_poly < 4 else 0.0):
+    if not bic_grating < bic_poly - (2.0 if k_grating > n_poly else 0.0):
         return polynomial
     jac = _grating_jacobian(params, px[keep], sign) / ss[keep, None]
     leverage = np.einsum("ij,jk,ik->i", jac, cov, jac)
-    cov = cov * _covariance_scale((lam[keep] - _grating_eval(params, px[keep], sign)) / ss[keep], leverage, tight[keep])
+    # scaled up (never down) by the scatter of the tightly known lines: loosely known lines, whose
+    # near-zero chi-square terms would dilute a plain reduced chi-square, are left out of it
+    cov = cov * max(1.0, _covariance_scale((lam[keep] - _grating_eval(params, px[keep], sign)) / ss[keep], leverage,
+                                           tight[keep]))
     solution = WavelengthSolution(
         coefficients=tuple(float(v) for v in params),
         covariance=tuple(tuple(float(v) for v in row) for row in cov),
@@ -1466,7 +1459,7 @@ def calibrate_lines(
     """
     d_range = _check_options(dispersion_range_nm_per_px, max_order, pairs)
     lamp_obj = _as_lamp(lamp)
-    peaks = _peaks_from_table(lines)
+    peaks = _peaks_from_table(lines, kind=lamp_obj.kind)
     pixel_range = (min(lines.pixel_range), max(lines.pixel_range))
     return _calibrate_peaks(peaks, [lamp_obj], pixel_range=pixel_range, d_range=d_range, pairs=tuple(pairs),
                             max_order=max_order, suggest_lamps=suggest_lamps)

@@ -14,6 +14,7 @@ on an uncalibrated (pixel) spectrum for the same purpose.
 from __future__ import annotations
 
 import csv
+import dataclasses
 import functools
 import io
 from dataclasses import dataclass
@@ -36,7 +37,23 @@ __all__ = [
     "continuum_normalise",
     "find_absorption_features",
     "identify_daylight_lines",
+    "check_daylight_continuum",
+    "find_daylight_dips",
+    "DAYLIGHT_CALIBRATION_NOTE",
 ]
+
+#: What a calibration from daylight's dark lines can and cannot promise (shown with its verdict).
+DAYLIGHT_CALIBRATION_NOTE = (
+    "calibrated from the dark lines of daylight: Ca II H+K, Mg b, Na D and the O2 B band are broad or blended at "
+    "webcam resolution, so expect errors of a few tenths of a nm up to about 1 nm (more beyond the outer lines); "
+    "check against a lamp when one is at hand"
+)
+# Dips shallower than this fraction of the continuum are JPEG ripple and noise more often than lines
+# at webcam resolution (the demo and G173 benches: real dips 3-50%, ripple below 1%; common practice, no source).
+_MIN_DIP_DEPTH = 0.015
+# Continuum windows tried (px, read by continuum_normalise as its window): the dispersion is not known
+# before the calibration, so the window that follows the camera's colour bumps yet spares the lines is searched.
+DIP_WINDOWS_PX = (40.0, 24.0, 70.0)
 
 
 @dataclass(frozen=True)
@@ -392,3 +409,49 @@ def identify_daylight_lines(
                 )
             )
     return DaylightResult(lines=tuple(lines), normalised=normalised, tolerance_nm=float(tolerance_nm), missing_labels=tuple(missing))
+
+
+def check_daylight_continuum(spectrum: Spectrum) -> None:
+    """Refuse a spectrum that is not a continuum (a lamp's emission lines, a dark frame) before calibrating from dips.
+
+    Across the lit span (first to last sample above 10% of the smoothed peak) daylight stays above that level
+    almost everywhere; a line lamp drops to its background between lines.
+
+    Raises
+    ------
+    CalibrationError
+    """
+    from scipy import ndimage
+
+    from ..errors import CalibrationError
+
+    y = np.nan_to_num(np.asarray(spectrum.intensity, dtype=float))
+    smooth = ndimage.gaussian_filter1d(y, 3.0, mode="nearest")
+    peak = float(np.max(smooth)) if smooth.size else 0.0
+    if not peak > 0:
+        raise CalibrationError("the frame holds no light: --lamp daylight needs skylight or sunlight scattered from a white card through the slit")
+    lit = np.flatnonzero(smooth > 0.1 * peak)
+    span = smooth[lit[0]: lit[-1] + 1]
+    fraction = float(np.mean(span > 0.1 * peak))
+    if fraction < 0.8 or lit.size < 30:
+        raise CalibrationError(
+            f"the frame shows bright lines, not a continuum with dark lines (only {fraction:.0%} of the lit span is above "
+            "10% of the peak, need 80%): --lamp daylight needs skylight or a white card in sunlight; for a lamp frame pass "
+            "that lamp's name to --lamp"
+        )
+
+
+def find_daylight_dips(spectrum: Spectrum, *, window_px: float, min_snr: float = 5.0, min_depth: float = _MIN_DIP_DEPTH):
+    """The dips of an uncalibrated (pixel-axis) daylight spectrum as an absorption :class:`~benchspec.lines.LineTable`.
+
+    The spectrum is divided by its continuum (:func:`continuum_normalise` with ``window_px`` as its
+    window), then :func:`benchspec.lines.find_lines` fits the dips (``absorption=True``); dips
+    shallower than ``min_depth`` of the continuum are dropped. ``peak`` of each line is its depth
+    (fraction of the continuum), which the calibration compares with the listed typical depths.
+    """
+    from ..lines import LineTable, find_lines
+
+    normalised = continuum_normalise(spectrum, window_nm=window_px, min_continuum_fraction=0.05)
+    table = find_lines(normalised, absorption=True, min_snr=min_snr, continuum_width_px=1e3)
+    kept = tuple(line for line in table.lines if line.peak >= min_depth)
+    return dataclasses.replace(table, lines=kept)

@@ -31,7 +31,8 @@ def register(subparsers) -> None:
         "and match its lines to the lamp's reference lines with no first guess.",
     )
     cal.add_argument("frames", nargs="+", metavar="FRAME", help="image files, a folder, a glob or a video of the lamp")
-    cal.add_argument("--lamp", default="cfl", help="lamp in the frames: cfl (default), hg, ne, he, h, ar, kr, xe, na")
+    cal.add_argument("--lamp", default="cfl", help="lamp in the frames: cfl (default), hg, ne, he, h, ar, kr, xe, na; or daylight (skylight or a white "
+                     "card in sunlight, calibrated from its dark lines; never point the optics at the Sun)")
     cal.add_argument("--dark", nargs="+", metavar="FRAME", help="dark frames (same exposure, lamp off)")
     cal.add_argument("--hint-lines-per-mm", type=float, metavar="N", help="grating groove density, narrows the search")
     cal.add_argument("--pair", action="append", default=[], metavar="PIXEL=NM",
@@ -95,7 +96,12 @@ def _calibrate(args) -> int:
         raise ExportError(f"--out must name a .json file, got {out.name!r}")
     if out.exists() and not args.force:
         raise ExportError(f"{out} already exists; pass --force to overwrite it, or choose another name")
-    load_lamp(args.lamp)
+    lamp = load_lamp(args.lamp)
+    if lamp.kind == "absorption":  # daylight: the Sun's cautions before any work
+        from ..safety import cautions_for
+
+        title, items = cautions_for(lamp.source_type)
+        print(f"caution ({title.lower()}): {' '.join(items)} See `benchspec cautions {lamp.source_type}`.", file=sys.stderr)
     pairs = [parse_pair(p) for p in args.pair]
     more = _parse_more(args.more)
     calibration = calibrate_frames(
