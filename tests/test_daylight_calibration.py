@@ -154,3 +154,36 @@ def test_featureless_continuum_is_refused(tmp_path):
     frame = simulate.render(bench, seed=2)
     with pytest.raises(CalibrationError, match="dark lines"):
         calibrate_frames(frame.image, lamp="daylight")
+
+
+@pytest.mark.gui
+def test_viewer_offers_daylight_and_shows_the_suns_caution(xdisplay):
+    tk = pytest.importorskip("tkinter")
+    import time
+
+    from benchspec.frames import read_image
+    from benchspec.gui.app import Viewer
+    from benchspec.sources import ArraySource
+
+    image = read_image(str(DEMO / "daylight.jpg"))
+    root = tk.Tk()
+    viewer = Viewer(root, source=ArraySource([image], loop=True, frame_rate_hz=10, pace=True, name="camera 0"))
+    try:
+        assert "daylight" in viewer.lamp_box.cget("values")
+        viewer.light_radios["daylight"].invoke()
+        viewer.buttons["start"].invoke()
+        assert viewer.lamp.get() == "daylight"  # choosing daylight as the light picks its dark lines
+        assert "Never look at the Sun" in viewer.cautions_shown()
+        end = time.monotonic() + 30
+        while time.monotonic() < end and viewer.stats.frames_shown < 2:
+            root.update()
+            time.sleep(0.005)
+        viewer.buttons["calibrate"].invoke()
+        while time.monotonic() < end and "calibrated with daylight" not in "\n".join(viewer.log_lines):
+            root.update()
+            time.sleep(0.005)
+        log = "\n".join(viewer.log_lines)
+        assert "calibrated with daylight" in log, log[-800:]
+        assert "Never look at the Sun" in log
+    finally:
+        viewer.close()

@@ -77,7 +77,8 @@ SHORTCUTS: dict[str, tuple[str, str]] = {
 
 _LETTER_KEYS = {"s", "d", "b", "c", "i", "<plus>", "<minus>", "<space>"}
 
-_LIGHT_TO_LAMP = {"fluorescent": "cfl", "discharge": "hg"}
+# Daylight calibrates from its dark lines (calibration/lamps/daylight.toml) when no lamp is at hand.
+_LIGHT_TO_LAMP = {"fluorescent": "cfl", "discharge": "hg", "daylight": "daylight"}
 
 
 @dataclass
@@ -407,7 +408,7 @@ class Viewer:
         waves.grid(row=0, column=1, sticky="ns", padx=3)
         lamps = list(available_lamps())
         self.lamp = tk.StringVar(value="cfl" if "cfl" in lamps else (lamps[0] if lamps else ""))
-        self.lamp_box = ttk.Combobox(waves, textvariable=self.lamp, values=lamps, width=5, state="readonly")
+        self.lamp_box = ttk.Combobox(waves, textvariable=self.lamp, values=lamps, width=8, state="readonly")
         self.lamp_box.grid(row=0, column=0)
         self.buttons["calibrate"] = ttk.Button(waves, text="Calibrate", width=8, command=self.calibrate)
         self.buttons["calibrate"].grid(row=0, column=1, padx=(3, 0))
@@ -1159,8 +1160,12 @@ class Viewer:
             return
         lamp = self.lamp.get()
         self.action_frames = frames
+        if lamp == "daylight":  # the Sun's caution every time, whatever light was confirmed
+            _, items = cautions_for("daylight")
+            self.report(f"caution: {items[0]} {items[1]}")
         self._run("calibrate", lambda processor=self.processor: processor.calibrate(frames, lamp=lamp),
-                  message=f"calibrating on {len(frames)} frame(s) with the {lamp} lamp…")
+                  message=f"calibrating on {len(frames)} frame(s) with the {lamp} "
+                          f"{'dark lines (coarser than a lamp)' if lamp == 'daylight' else 'lamp'}…")
 
     def _done_calibrate(self, summary: CalibrationSummary) -> None:
         _freeze_heap()
