@@ -1024,8 +1024,17 @@ def _search(peaks: _Peaks, reference, *, pixel_range, d_range, pairs, max_order)
         edge *= 1.6
     candidates: list[_Candidate] = []
     seeds = []
+    # Neighbouring bands whose blends cluster the same way share one set of hypotheses (the ratio
+    # matching does not depend on the band, only the dispersion limits do).
+    groups: list = []
     for low, high in bands:
         features = _cluster(reference, 1.2 * fwhm * math.sqrt(low * high))
+        if groups and np.array_equal(groups[-1][2].wavelength, features.wavelength) \
+                and np.array_equal(groups[-1][2].sigma, features.sigma):
+            groups[-1] = (groups[-1][0], high, groups[-1][2], groups[-1][3] + 1)
+        else:
+            groups.append((low, high, features, 1))
+    for low, high, features, n_bands in groups:
         coeffs = _triplet_hypotheses(peaks, features, centre=centre, scale=scale, d_low=low, d_high=high)
         coeffs = np.concatenate([coeffs, _pair_hypotheses(pairs, centre=centre, scale=scale)])
         if coeffs.shape[0] == 0:
@@ -1035,7 +1044,7 @@ def _search(peaks: _Peaks, reference, *, pixel_range, d_range, pairs, max_order)
         finite = np.isfinite(score)
         if not finite.any():
             continue
-        order = np.argsort(-score)[: 400]
+        order = np.argsort(-score)[: 400 * n_bands]
         order = order[np.isfinite(score[order])]
         kept = []
         for k in order:
@@ -1047,7 +1056,7 @@ def _search(peaks: _Peaks, reference, *, pixel_range, d_range, pairs, max_order)
                 continue
             kept.append(probe)
             seeds.append((float(score[k]), c))
-            if len(kept) >= 12:
+            if len(kept) >= 12 * n_bands:
                 break
     seeds.sort(key=lambda s: -s[0])
     # First pass: every seed gets the cheap matching; seeds that converge to the same assignment
