@@ -384,3 +384,14 @@ def _covariance_scale(normalised_residual, leverage, tight):
     dof = float(np.sum(np.clip(1.0 - np.asarray(leverage, dtype=float)[tight], 0.0, 1.0)))
     chi2 = float(np.sum(r * r))
     return (chi2 + _SCALE_PRIOR_DOF) / (dof + _SCALE_PRIOR_DOF)
+
+
+def _grating_effective_parameters(params, cov, pixel, sigma, sign):
+    """Effective number of parameters of a grating fit: the trace of its hat matrix over the lines.
+
+    The prior on x0 takes part of one parameter's freedom away, so a well-anchored fit has
+    between 3 and 4 (Hastie, Tibshirani and Friedman, The Elements of Statistical Learning,
+    section 7.6, effective degrees of freedom of a penalised fit).
+    """
+    jac = _grating_jacobian(params, pixel, sign) / np.asarray(sigma, dtype=float)[:, None]
+    return float(np.einsum("ij,jk,ik->", jac, np.asarray(cov, dtype=float), jac))
