@@ -98,3 +98,22 @@ def test_featureless_spectrum_is_an_error():
     wl = np.arange(400.0, 700.0, 1.0)
     with pytest.raises(AnalysisError, match="no absorption lines"):
         identify_daylight_lines(as_spectrum(wl, np.full(wl.size, 100.0), uncertainty=np.full(wl.size, 0.1)))
+
+
+def test_no_false_dip_where_the_light_fades():
+    # The demo daylight frame through the demo CFL calibration: past the IR-cut filter (~670 nm) the
+    # continuum cannot follow the falling signal, and a false dip at the edge of the usable range used
+    # to be labelled B, 3 nm blue of the O2 B band (686.72 nm air, per calibration/fraunhofer.csv, from memory).
+    # Every label must now lie within 1.5 nm of its line, as in the G173 check above.
+    from pathlib import Path
+
+    from benchspec.pipeline import calibrate_frames, extract_frames
+
+    demo = Path(__file__).resolve().parents[1] / "demo_images"
+    calibration = calibrate_frames(str(demo / "cfl_1.png"), lamp="cfl")
+    spectrum = extract_frames(str(demo / "daylight.jpg"), calibration)
+    result = identify_daylight_lines(spectrum)
+    labelled = result.identified
+    assert {l.label for l in labelled} >= {"F", "G"}
+    for line in labelled:
+        assert abs(line.offset_nm) <= 1.5, (line.label, line.offset_nm)

@@ -17,6 +17,7 @@ import csv
 import dataclasses
 import functools
 import io
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -240,6 +241,8 @@ def find_absorption_features(
         # Significance against the local noise: the spectrum's noise changes along it.
         if props["prominences"][k] < min_snr * sigma[index] or not usable[index]:
             continue
+        if _touches_unusable(usable, int(index), float(props["widths"][k])):
+            continue
         vertex = parabolic_vertex(x, -y, sigma, int(index))
         if vertex is None:
             position, err = float(x[index]), step / np.sqrt(12)
@@ -268,6 +271,18 @@ def find_absorption_features(
             )
         )
     return tuple(features)
+
+
+def _touches_unusable(usable: np.ndarray, index: int, width_samples: float) -> bool:
+    """True when a dip lies within two of its widths of a region where the continuum is unusable.
+
+    Where the light fades (an IR-cut filter past ~670 nm, the blue end of the camera's range) the
+    continuum cannot follow the falling signal: the normalised spectrum sags towards the edge of the
+    unusable region and forms a false dip whose "centre" is the edge itself. On the demo daylight
+    frame that false dip sat 3 nm blue of the O2 B band (686.7 nm) and was labelled B.
+    """
+    reach = int(math.ceil(2.0 * max(width_samples, 1.0))) + 1
+    return not bool(np.all(usable[max(index - reach, 0): index + reach + 1]))
 
 
 @dataclass(frozen=True)
