@@ -836,6 +836,12 @@ def _measure_trace(band: np.ndarray, *, s0: float, t0: float, half_height: float
     else:
         span_lo, span_hi = 0, n_s
     chunk_px = max(24, n_s // 64)
+    # A band shorter than a few times its height (coarse dispersion, tall slit) has dense, curved
+    # slit images with no dark column between them: chunks of a third of the lit span each average
+    # over many lines, so a line cut at a chunk's side does not truncate the chunk's edges.
+    lit_span = (lit_cols[-1] - lit_cols[0] + 1) if lit_cols.size >= 8 else n_s
+    if lit_span < 1.0 * (2 * half_height):
+        chunk_px = max(chunk_px, (span_hi - span_lo) // 3)
     n_chunks = max(2, (span_hi - span_lo) // chunk_px)
     edges = np.linspace(span_lo, span_hi, n_chunks + 1).astype(int)
     # Move chunk boundaries to the darkest column nearby, so no line's stroke is cut in two.
