@@ -130,7 +130,7 @@ def _calibrate_from_dips(stacked, geometry, *, lamp, extraction, pairs, d_range,
     if best is None:
         if most_dips < 4:
             raise CalibrationError(
-                f"only {most_dips} dark lines deeper than 1.5% were found; --lamp daylight needs the Fraunhofer lines: "
+                f"only {most_dips} dark line{'' if most_dips == 1 else 's'} deeper than 1.5% found; --lamp daylight needs the Fraunhofer lines: "
                 "skylight or a white card in sunlight (not a lamp or a featureless source), in focus, exposed near full "
                 "scale without clipping, several frames stacked"
             )

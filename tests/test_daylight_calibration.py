@@ -158,7 +158,7 @@ def test_cli_refuses_a_lamp_frame_with_lamp_daylight(tmp_path, capsys):
 def test_featureless_continuum_is_refused(tmp_path):
     bench = simulate.load_bench(DEMO / "bench.toml").with_(source={"kind": "blackbody", "temperature_k": 5778.0})
     frame = simulate.render(bench, seed=2)
-    with pytest.raises(CalibrationError, match="dark lines"):
+    with pytest.raises(CalibrationError, match="dark lines? deeper than 1.5% found; --lamp daylight needs the Fraunhofer lines"):
         calibrate_frames(frame.image, lamp="daylight")
 
 
