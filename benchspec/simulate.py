@@ -323,7 +323,7 @@ def _validate(bench: Bench) -> None:
 SOURCE_KINDS = ("lamp", "blackbody", "led", "laser", "daylight", "sample", "flat", "dark")
 
 _SOURCE_FIELDS = {
-    "lamp": {"name": None},
+    "lamp": {"name": None, "lamp_unit": 0},
     "blackbody": {"temperature_k": 2900.0},
     "led": {"peak_nm": None, "fwhm_nm": 25.0, "asymmetry": 1.3},
     "laser": {"wavelength_nm": None},
@@ -347,6 +347,7 @@ _SOURCE_RANGES = {
     "absorbance": (0, 6),
     "absorbance_peak_nm": (250, 1100),
     "absorbance_fwhm_nm": (1, 500),
+    "lamp_unit": (0, 2**31 - 1),
 }
 
 
@@ -485,6 +486,12 @@ def source_spectrum(source: Mapping[str, Any]) -> _SourceModel:
         lamp = load_lamp(source["name"])
         lines = lamp.lines()
         wl = np.array([l.wavelength_nm for l in lines])
+        unit = int(source.get("lamp_unit") or 0)
+        if unit:
+            # One physical lamp of the type: each line sits at a draw within its listed tolerance
+            # (taken as 1 sigma), fixed for that lamp. Real phosphor peaks move by about a nanometre
+            # from lamp to lamp (common practice, no source); 0 gives the listed wavelengths.
+            wl = wl + np.random.default_rng(unit).normal(0.0, [l.tolerance_nm for l in lines])
         strength = np.array([l.relative_intensity for l in lines], dtype=float)
         # Phosphor and band emission is broad; atomic lines are far narrower than any webcam's LSF.
         width = np.array([2.0 if l.tolerance_nm >= 0.3 else 0.0 for l in lines])

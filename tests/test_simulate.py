@@ -226,3 +226,22 @@ def test_second_order_light_lands_where_twice_its_wavelength_would():
     doubled = np.interp(second[404.656]["rectified_column_px"], mapping["rectified_column_px"], mapping["wavelength_nm"])
     assert doubled == pytest.approx(2 * 404.656, abs=0.02)
     assert 546.075 in first and 546.075 not in second  # 1092 nm in order 2 misses the sensor
+
+
+def test_lamp_unit_draws_one_lamp_within_the_listed_tolerance():
+    # The listed tolerances (calibration/lines/CFL-phosphor.csv: "+-1 nm", common practice, no source)
+    # are the lamp-to-lamp spread the virtual bench draws from; 0 keeps the listed wavelengths.
+    from benchspec.refdata import load_lamp
+    from benchspec.simulate import source_spectrum
+
+    lines = load_lamp("cfl").lines()
+    listed = np.array([l.wavelength_nm for l in lines])
+    tolerance = np.array([l.tolerance_nm for l in lines])
+    assert np.array_equal(source_spectrum({"kind": "lamp", "name": "cfl"}).line_wavelength_nm, listed)
+    one = source_spectrum({"kind": "lamp", "name": "cfl", "lamp_unit": 7}).line_wavelength_nm
+    again = source_spectrum({"kind": "lamp", "name": "cfl", "lamp_unit": 7}).line_wavelength_nm
+    other = source_spectrum({"kind": "lamp", "name": "cfl", "lamp_unit": 8}).line_wavelength_nm
+    assert np.array_equal(one, again) and not np.array_equal(one, other)
+    assert np.all(np.abs(one - listed) <= 5 * tolerance)
+    # Atomic Hg lines (tolerance <= 0.01 nm) stay within a hundredth of a nanometre.
+    assert np.all(np.abs(one - listed)[tolerance <= 0.01] <= 0.05)
