@@ -7,19 +7,7 @@ from benchspec.errors import InputError, LineError
 from benchspec.lines import LineTable, estimate_noise, find_lines
 from benchspec.spectrum import Spectrum, as_spectrum
 
-FWHM_PER_SIGMA = 2 * np.sqrt(2 * np.log(2))  # Gaussian FWHM = 2 sqrt(2 ln 2) sigma (textbook)
-
-
-def gaussian_spectrum(rng, centres, *, sigma=1.5, height=1000.0, n=400, background=20.0, noise=None, clip=None):
-    x = np.arange(n, dtype=float)
-    truth = background + sum(height * np.exp(-0.5 * ((x - c) / sigma) ** 2) for c in np.atleast_1d(centres))
-    sd = np.sqrt(truth) if noise is None else np.full(n, noise)  # Poisson-like noise
-    y = truth + rng.normal(0, 1, n) * sd
-    saturated = np.zeros(n, bool)
-    if clip is not None:
-        saturated = y >= clip
-        y = np.minimum(y, clip)
-    return Spectrum(intensity=y, uncertainty=sd, pixel=x, saturated=saturated)
+from synthetic_lines import FWHM_PER_SIGMA, gaussian_spectrum
 
 
 def test_single_line_centre_width_height_and_area(rng):

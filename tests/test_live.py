@@ -17,19 +17,7 @@ from benchspec.errors import DegradedResultWarning, InputError, LineError
 from benchspec.spectrum import Spectrum
 from synthetic_band import synthetic_band
 
-FWHM_PER_SIGMA = 2 * np.sqrt(2 * np.log(2))  # Gaussian FWHM = 2 sqrt(2 ln 2) sigma (textbook)
-
-
-def _gaussian_lines(rng, centres, *, sigma=1.5, height=1000.0, n=400, background=20.0, clip=None):
-    x = np.arange(n, dtype=float)
-    truth = background + sum(height * np.exp(-0.5 * ((x - c) / sigma) ** 2) for c in centres)
-    sd = np.sqrt(truth)  # Poisson-like noise
-    y = truth + rng.normal(0, 1, n) * sd
-    saturated = np.zeros(n, bool)
-    if clip is not None:
-        saturated = y >= clip
-        y = np.minimum(y, clip)
-    return Spectrum(intensity=y, uncertainty=sd, pixel=x, saturated=saturated)
+from synthetic_lines import FWHM_PER_SIGMA, gaussian_spectrum as _gaussian_lines
 
 
 # ------------------------------------------------------------------ the quick line finder
