@@ -302,6 +302,33 @@ def _loo_residuals(t, lam, sigma, keep, order):
     return out
 
 
+def _deletion_z(t, lam, sigma, keep, order):
+    """Studentised deletion residuals of the kept lines of a polynomial fit (0 for the others).
+
+    Each kept line against the fit of the others, over the uncertainty of that difference:
+    z_i = (lam_i - pred_i) / sqrt(sigma_i**2 + var(pred_i)), which for a weighted linear fit
+    equals r_i / (sigma_i sqrt(1 - h_i)). An end line of high leverage is then judged against
+    how well the other lines can predict it, not against its own (small) sigma alone: a tightly
+    known end line that a loosely constrained extrapolation misses is not an outlier.
+    """
+    out = np.zeros(t.size)
+    index = np.flatnonzero(keep)
+    if index.size <= order + 1:
+        return out
+    vander = np.stack([t**k for k in range(order + 1)], axis=-1) / sigma[:, None]
+    for i in index:
+        others = index[index != i]
+        a = vander[others]
+        coeffs, *_ = np.linalg.lstsq(a, lam[others] / sigma[others], rcond=None)
+        basis = vander[i] * sigma[i]
+        try:
+            variance = float(basis @ np.linalg.pinv(a.T @ a) @ basis)
+        except np.linalg.LinAlgError:
+            variance = np.inf
+        out[i] = (lam[i] - basis @ coeffs) / math.sqrt(sigma[i] ** 2 + max(variance, 0.0))
+    return out
+
+
 def _select_order(t, lam, sigma, keep, *, max_order, monotonic_t):
     """Best polynomial order on the kept lines by BIC (each order must gain > 2); None if nothing fits."""
     best = None
@@ -342,7 +369,7 @@ def _robust_fit(t, lam, sigma, *, max_order, monotonic_t):
         z = (lam - np.polynomial.polynomial.polyval(t, coeffs)) / sigma
         # Leave-one-out residuals r / (1 - h): a line the polynomial bends to reach (typically an
         # end line assigned to the wrong reference) stands out although its own residual is small.
-        z_loo = np.where(keep, _loo_residuals(t, lam, sigma, keep, order) / sigma, z)
+        z_loo = np.where(keep, _deletion_z(t, lam, sigma, keep, order), z)
         spread = max(1.0, 1.4826 * float(np.median(np.abs(z[keep] - np.median(z[keep])))))
         worst = int(np.argmax(np.where(keep, np.abs(z_loo), -1)))
         if not (abs(z_loo[worst]) > 5.0 * spread and abs(z_loo[worst]) > 5.0):

@@ -123,3 +123,24 @@ def test_covariance_scale_follows_the_scatter_of_tight_lines(true_over_stated):
         leverage = np.einsum("ij,jk,ik->i", basis, cov, basis)
         factors.append(_covariance_scale(residual / sigma, leverage, tight))
     assert np.median(factors) == pytest.approx(true_over_stated**2, rel=0.25)
+
+
+def test_deletion_z_is_the_studentised_deletion_residual():
+    # Weighted least squares identity (textbook regression diagnostics, e.g. Cook & Weisberg 1982,
+    # from memory): (y_i - prediction without i) / sqrt(sigma_i^2 + var(prediction)) equals
+    # r_i / (sigma_i sqrt(1 - h_i)) with r_i and h_i from the fit on all lines.
+    from benchspec.wavefit import _deletion_z
+
+    rng = np.random.default_rng(3)
+    t = np.linspace(-1, 1, 9)
+    sigma = rng.uniform(0.05, 0.5, t.size)
+    lam = 550 + 120 * t + 4 * t**2 + rng.normal(0, 1, t.size) * sigma
+    keep = np.ones(t.size, dtype=bool)
+    z = _deletion_z(t, lam, sigma, keep, 2)
+    x = np.stack([t**k for k in range(3)], axis=-1) / sigma[:, None]
+    coeffs, *_ = np.linalg.lstsq(x, lam / sigma, rcond=None)
+    r = (lam - np.polynomial.polynomial.polyval(t, coeffs)) / sigma
+    h = np.einsum("ij,jk,ik->i", x, np.linalg.inv(x.T @ x), x)
+    assert np.allclose(z, r / np.sqrt(1 - h), rtol=1e-6, atol=1e-9)
+    # Clean Gaussian data: z is N(0, 1) per line, so none of the 9 looks like an outlier (|z| < 4).
+    assert np.all(np.abs(z) < 4)
