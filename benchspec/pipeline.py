@@ -141,6 +141,28 @@ def _calibrate_from_dips(stacked, geometry, *, lamp, extraction, pairs, d_range,
     return geometry, best, spectrum
 
 
+def _search_range(hint_lines_per_mm, hint_nm_per_px, *, frame_width_px: int) -> tuple[float, float]:
+    """The dispersion range (nm/px) the matcher searches: 0.1-3 nm/px, narrowed by the hints."""
+    d_range = (0.1, 3.0)
+    if hint_lines_per_mm is not None:
+        d_range = dispersion_range_for_grating(hint_lines_per_mm, frame_width_px=frame_width_px)
+    if hint_nm_per_px is not None:
+        try:
+            low, high = (float(v) for v in hint_nm_per_px)
+        except (TypeError, ValueError):
+            raise InputError(f"hint_nm_per_px must be two numbers (low, high) in nm/px, got {hint_nm_per_px!r}") from None
+        if not (np.isfinite(low) and np.isfinite(high) and 0 < low < high):
+            raise InputError(f"the dispersion hint (--hint-nm-per-px LOW HIGH) must have 0 < LOW < HIGH, got {low:g} {high:g} nm/px; "
+                             "give the range the setup planner predicts (benchspec plan --json)")
+        both = (max(d_range[0], low), min(d_range[1], high))
+        if both[0] >= both[1]:
+            raise InputError(f"the dispersion hint {low:g}-{high:g} nm/px does not overlap "
+                             f"{d_range[0]:g}-{d_range[1]:g} nm/px (the search range, or what --hint-lines-per-mm "
+                             "allows); check the planner's inputs against the grating")
+        d_range = both
+    return d_range
+
+
 def calibrate_frames(
     frames,
     *,
@@ -151,6 +173,7 @@ def calibrate_frames(
     stack: str = "mean",
     extraction: str = "optimal",
     hint_lines_per_mm: float | None = None,
+    hint_nm_per_px: tuple[float, float] | None = None,
     pairs: Sequence[ManualPair] = (),
     more_lamps: Sequence[tuple[Any, str]] = (),
     min_snr: float = 5.0,
@@ -171,6 +194,10 @@ def calibrate_frames(
     hint_lines_per_mm : float, optional
         Groove density of the grating; narrows the dispersion search
         (:func:`benchspec.wavecal.dispersion_range_for_grating`).
+    hint_nm_per_px : (low, high), optional
+        The dispersion range to search, e.g. the setup planner's prediction
+        (:func:`benchspec.analysis.planner.dispersion_hint`); with
+        ``hint_lines_per_mm`` too, the search covers where both agree.
     pairs : sequence of ManualPair
         Manual pixel=nm pairs (e.g. a laser), on the rectified-column axis.
     more_lamps : sequence of (frames, lamp)
@@ -191,15 +218,14 @@ def calibrate_frames(
     load_lamp(lamp)  # a wrong lamp name fails before any work
     for _, other in more_lamps:
         load_lamp(other)
+    _search_range(None, hint_nm_per_px, frame_width_px=0)  # so does a malformed hint
     stacked, records, dark_records = _stack(frames, dark=dark, gamma=gamma, channel=channel, method=stack)
     if min(stacked.shape) < 16:  # name the file: the geometry only sees an array
         names = ", ".join(Path(r["path"]).name for r in records if r.get("path"))[:120] or "the frames"
         raise FrameError(f"{names}: {stacked.shape[1]}x{stacked.shape[0]} px is too small to hold a spectrum "
                          "(frames must be at least 16x16 px); check the file is a camera frame")
     geometry = measure_geometry(stacked.image, saturated=stacked.saturated)
-    d_range = (0.1, 3.0)
-    if hint_lines_per_mm is not None:
-        d_range = dispersion_range_for_grating(hint_lines_per_mm, frame_width_px=geometry.frame_width_px)
+    d_range = _search_range(hint_lines_per_mm, hint_nm_per_px, frame_width_px=geometry.frame_width_px)
     for record in records:
         record["lamp"] = lamp
     lamps = [lamp]
@@ -242,6 +268,7 @@ def calibrate_frames(
         "extraction": extraction,
         "min_snr": min_snr,
         "hint_lines_per_mm": hint_lines_per_mm,
+        "hint_nm_per_px": None if hint_nm_per_px is None else [float(v) for v in hint_nm_per_px],
         "dispersion_range_nm_per_px": list(d_range),
         "pairs": [{"pixel": p.pixel, "wavelength_nm": p.wavelength_nm, "tolerance_nm": p.tolerance_nm} for p in pairs],
         "lamps": lamps,

@@ -35,6 +35,10 @@ def register(subparsers) -> None:
                      "card in sunlight, calibrated from its dark lines; never point the optics at the Sun)")
     cal.add_argument("--dark", nargs="+", metavar="FRAME", help="dark frames (same exposure, lamp off)")
     cal.add_argument("--hint-lines-per-mm", type=float, metavar="N", help="grating groove density, narrows the search")
+    cal.add_argument("--hint-nm-per-px", type=float, nargs=2, metavar=("LOW", "HIGH"),
+                     help="dispersion range to search (nm/px), e.g. from `benchspec plan`")
+    cal.add_argument("--hint-plan", metavar="PLAN.json",
+                     help="the output of `benchspec plan ... --json`: search the dispersion it predicts")
     cal.add_argument("--pair", action="append", default=[], metavar="PIXEL=NM",
                      help="a known line at a rectified column, e.g. 812.4=532.0 (or 812.4=532.0+-0.3); repeatable")
     cal.add_argument("--with", dest="more", action="append", default=[], metavar="LAMP=FRAME[,FRAME]",
@@ -85,6 +89,25 @@ def _parse_more(items):
     return out
 
 
+def _dispersion_hint(args):
+    """(low, high) nm/px from --hint-nm-per-px or --hint-plan, or None."""
+    if args.hint_plan and args.hint_nm_per_px:
+        raise InputError("give --hint-plan or --hint-nm-per-px, not both")
+    if args.hint_nm_per_px:
+        return tuple(args.hint_nm_per_px)
+    if not args.hint_plan:
+        return None
+    from ..io import read_json_file
+
+    plan = read_json_file(args.hint_plan, what="setup plan")
+    hint = plan.get("calibration_hint_nm_per_px") if isinstance(plan, dict) else None
+    if (not isinstance(hint, list) or len(hint) != 2
+            or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in hint)):
+        raise InputError(f"{args.hint_plan} has no `calibration_hint_nm_per_px` pair; write it with "
+                         "`benchspec plan ... --json > PLAN.json` (a plan whose range misses the sensor has none)")
+    return (float(hint[0]), float(hint[1]))
+
+
 def _calibrate(args) -> int:
     from ..calfile import write_calibration
     from ..pipeline import calibrate_frames
@@ -104,9 +127,11 @@ def _calibrate(args) -> int:
         print(f"caution ({title.lower()}): {' '.join(items)} See `benchspec cautions {lamp.source_type}`.", file=sys.stderr)
     pairs = [parse_pair(p) for p in args.pair]
     more = _parse_more(args.more)
+    hint = _dispersion_hint(args)
     calibration = calibrate_frames(
         args.frames, lamp=args.lamp, dark=args.dark, gamma=args.gamma, channel=args.channel, stack=args.stack,
-        extraction=args.extraction, hint_lines_per_mm=args.hint_lines_per_mm, pairs=pairs, more_lamps=more,
+        extraction=args.extraction, hint_lines_per_mm=args.hint_lines_per_mm, hint_nm_per_px=hint, pairs=pairs,
+        more_lamps=more,
     )
     geometry = calibration.geometry
     print(f"band: rotation {geometry.rotation_deg:+.2f} deg, {geometry.n_columns} columns, aperture rows "
