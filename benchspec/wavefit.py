@@ -260,45 +260,175 @@ def _grating_deletion_z(pixel, lam, sigma, params, chi2, sign, keep, refit):
 
 
 # --------------------------------------------------------------------------- fitting
+#
+# The polynomial problems are tiny (3-120 lines, 2-4 coefficients) and are solved thousands of times
+# per calibration, so numpy's per-call overhead, not arithmetic, sets their cost. They are solved on
+# the normal equations (one inverse gives the coefficients, with one step of iterative refinement, and
+# the covariance), the Vandermonde matrix is built once for the highest order (a lower order's problem
+# is its leading columns and the leading block of the normal matrix), and deletion residuals come
+# from the hat matrix of one fit. Squaring the condition number is harmless while cond(A^T A) stays
+# below _NORMAL_COND_LIMIT (rounding of ~1e-9 relative at worst); beyond it, and when a deletion
+# leaves the others nearly unable to predict a line (1 - h below _MIN_SPARE), the SVD least squares
+# (numpy lstsq) and explicit refits are used instead.
+
+_NORMAL_COND_LIMIT = 1e7
+_MIN_SPARE = 1e-3
 
 
-def _weighted_polyfit(t, lam, sigma, order):
-    vander = np.stack([t**k for k in range(order + 1)], axis=-1)
+def _vander(t, order):
+    """Columns t**0 .. t**order (the highest order once; lower orders are its leading columns)."""
+    out = np.empty((t.size, order + 1))
+    out[:, 0] = 1.0
+    if order >= 1:
+        out[:, 1] = t
+    for k in range(2, order + 1):
+        out[:, k] = t**k
+    return out
+
+
+def _polyval(x, coeffs):
+    """Horner's rule in the operation order of numpy.polynomial.polynomial.polyval (same results)."""
+    c = coeffs.tolist() if isinstance(coeffs, np.ndarray) else list(coeffs)
+    y = c[-1] + x * 0.0
+    for k in range(len(c) - 2, -1, -1):
+        y = c[k] + y * x
+    return y
+
+
+def _derivative_coeffs(coeffs):
+    """Coefficients of the derivative (as numpy.polynomial.polynomial.polyder: k * c_k)."""
+    c = np.asarray(coeffs, dtype=float)
+    if c.size <= 1:
+        return c[:1] * 0.0
+    return c[1:] * np.arange(1, c.size)
+
+
+def _median(x):
+    """Median of a small 1-D array (np.median's value, without its per-call overhead)."""
+    s = np.sort(x)
+    n = s.size
+    if n == 0 or not math.isfinite(s[-1]) or not math.isfinite(s[0]):
+        return float(np.median(x))
+    h = n // 2
+    return float(s[h]) if n % 2 else float((s[h - 1] + s[h]) / 2.0)
+
+
+def _normal_solve(a, b, normal, rhs):
+    """Least squares a c = b from the normal equations (``normal`` = a.T a, ``rhs`` = a.T b).
+
+    One step of iterative refinement brings the coefficients to the accuracy of an orthogonal
+    solver. Returns (coeffs, inverse of the normal matrix) or None when the normal matrix is
+    singular or too ill-conditioned (trace(N) trace(N^-1) >= cond_2(N), checked against
+    _NORMAL_COND_LIMIT): the caller then uses the SVD solver.
+    """
+    try:
+        inverse = np.linalg.inv(normal)
+    except np.linalg.LinAlgError:
+        return None
+    bound = float(np.trace(normal)) * float(np.trace(inverse))
+    if not 0.0 < bound < _NORMAL_COND_LIMIT:
+        return None
+    coeffs = inverse @ rhs
+    coeffs = coeffs + inverse @ ((b - a @ coeffs) @ a)
+    return coeffs, inverse
+
+
+def _lstsq_polyfit(vander, lam, sigma):
+    """The SVD path (numpy lstsq), for problems the normal equations would not solve accurately."""
     weights = 1.0 / sigma
     a = vander * weights[:, None]
-    b = lam * weights
-    coeffs, *_ = np.linalg.lstsq(a, b, rcond=None)
-    residual = lam - vander @ coeffs
-    chi2 = float(np.sum((residual / sigma) ** 2))
+    coeffs, *_ = np.linalg.lstsq(a, lam * weights, rcond=None)
     try:
         cov = np.linalg.inv(a.T @ a)
     except np.linalg.LinAlgError:
-        cov = np.full((order + 1, order + 1), np.inf)
+        cov = np.full((vander.shape[1], vander.shape[1]), np.inf)
+    return coeffs, cov
+
+
+def _weighted_polyfit(t, lam, sigma, order):
+    """Weighted least-squares polynomial (coefficients in t, lowest first).
+
+    Returns (coeffs, cov = (A^T A)^-1, residual lam - fit in nm, chi2).
+    """
+    t, lam, sigma = (np.asarray(v, dtype=float) for v in (t, lam, sigma))
+    vander = _vander(t, order)
+    weights = 1.0 / sigma
+    a = vander * weights[:, None]
+    b = lam * weights
+    solved = _normal_solve(a, b, a.T @ a, b @ a)
+    coeffs, cov = solved if solved is not None else _lstsq_polyfit(vander, lam, sigma)
+    residual = lam - vander @ coeffs
+    chi2 = float(np.sum((residual / sigma) ** 2))
     return coeffs, cov, residual, chi2
+
+
+def _hat_fit(t, lam, sigma, keep, order):
+    """Fit on the kept lines and the leverage of every line under it.
+
+    Returns (coeffs, vander of all lines, leverage h_i = a_i (A^T A)^-1 a_i of all lines) or None
+    (ill-conditioned: the callers then use explicit refits).
+    """
+    vander = _vander(t, order)
+    a = vander / sigma[:, None]
+    ak, bk = a[keep], lam[keep] / sigma[keep]
+    solved = _normal_solve(ak, bk, ak.T @ ak, bk @ ak)
+    if solved is None:
+        return None
+    coeffs, inverse = solved
+    leverage = np.einsum("ij,jk,ik->i", a, inverse, a)
+    return coeffs, vander, leverage
 
 
 def _loo_residuals(t, lam, sigma, keep, order):
     """Leave-one-out residuals (nm) of the kept lines: each line against the fit of the others.
 
-    r / (1 - h) from the hat matrix, except for lines of high leverage (h > 0.8, e.g. an end line
-    that alone sets the curvature), which are refitted without them: there r / (1 - h) is 0 / 0.
+    r / (1 - h) from the hat matrix of the fit on the kept lines (the exact leave-one-out residual
+    of a linear least-squares fit). Lines the others can hardly predict (1 - h < _MIN_SPARE, where
+    r / (1 - h) tends to 0 / 0) are refitted without them.
     """
     out = np.zeros(t.size)
     index = np.flatnonzero(keep)
     if index.size <= order + 1:
         return out
-    vander = np.stack([t**k for k in range(order + 1)], axis=-1) / sigma[:, None]
+    hat = _hat_fit(t, lam, sigma, keep, order)
+    if hat is None:
+        return _loo_residuals_svd(t, lam, sigma, keep, order)
+    coeffs, vander, leverage = hat
+    residual = lam[index] - vander[index] @ coeffs
+    spare = 1.0 - leverage[index]
+    good = spare >= _MIN_SPARE
+    out[index[good]] = residual[good] / spare[good]
+    if not good.all():
+        out[index[~good]] = _loo_residuals_refit(t, lam, sigma, keep, order, index[~good])[index[~good]]
+    return out
+
+
+def _loo_residuals_svd(t, lam, sigma, keep, order):
+    """Leave-one-out residuals on the SVD path: r / (1 - h) with the leverage from the pseudo-inverse,
+    and refits for lines of high leverage (h > 0.8)."""
+    out = np.zeros(t.size)
+    index = np.flatnonzero(keep)
+    vander = _vander(t, order) / sigma[:, None]
     coeffs, *_ = np.linalg.lstsq(vander[index], lam[index] / sigma[index], rcond=None)
-    residual = lam - np.polynomial.polynomial.polyval(t, coeffs)
+    residual = lam - _polyval(t, coeffs)
     inverse = np.linalg.pinv(vander[index].T @ vander[index])
     leverage = np.einsum("ij,jk,ik->i", vander, inverse, vander)
-    for i in index:
-        if leverage[i] <= 0.8:
-            out[i] = residual[i] / (1.0 - leverage[i])
-            continue
+    low = index[leverage[index] <= 0.8]
+    out[low] = residual[low] / (1.0 - leverage[low])
+    high = index[leverage[index] > 0.8]
+    out[high] = _loo_residuals_refit(t, lam, sigma, keep, order, high)[high]
+    return out
+
+
+def _loo_residuals_refit(t, lam, sigma, keep, order, lines):
+    """Leave-one-out residuals of ``lines`` by explicit refits of the other kept lines (SVD)."""
+    out = np.zeros(t.size)
+    index = np.flatnonzero(keep)
+    vander = _vander(t, order) / sigma[:, None]
+    for i in lines:
         others = index[index != i]
         refit, *_ = np.linalg.lstsq(vander[others], lam[others] / sigma[others], rcond=None)
-        out[i] = lam[i] - np.polynomial.polynomial.polyval(t[i], refit)
+        out[i] = lam[i] - _polyval(t[i], refit)
     return out
 
 
@@ -307,16 +437,35 @@ def _deletion_z(t, lam, sigma, keep, order):
 
     Each kept line against the fit of the others, over the uncertainty of that difference:
     z_i = (lam_i - pred_i) / sqrt(sigma_i**2 + var(pred_i)), which for a weighted linear fit
-    equals r_i / (sigma_i sqrt(1 - h_i)). An end line of high leverage is then judged against
+    equals r_i / (sigma_i sqrt(1 - h_i)) with r_i and the leverage h_i from the fit on all kept
+    lines (computed so, in one fit). An end line of high leverage is then judged against
     how well the other lines can predict it, not against its own (small) sigma alone: a tightly
     known end line that a loosely constrained extrapolation misses is not an outlier.
+    Lines with 1 - h < _MIN_SPARE (and ill-conditioned problems) are refitted explicitly.
     """
     out = np.zeros(t.size)
     index = np.flatnonzero(keep)
     if index.size <= order + 1:
         return out
-    vander = np.stack([t**k for k in range(order + 1)], axis=-1) / sigma[:, None]
-    for i in index:
+    hat = _hat_fit(t, lam, sigma, keep, order)
+    if hat is None:
+        return _deletion_z_refit(t, lam, sigma, keep, order, index)
+    coeffs, vander, leverage = hat
+    residual = (lam[index] - vander[index] @ coeffs) / sigma[index]
+    spare = 1.0 - leverage[index]
+    good = spare >= _MIN_SPARE
+    out[index[good]] = residual[good] / np.sqrt(spare[good])
+    if not good.all():
+        out[index[~good]] = _deletion_z_refit(t, lam, sigma, keep, order, index[~good])[index[~good]]
+    return out
+
+
+def _deletion_z_refit(t, lam, sigma, keep, order, lines):
+    """Studentised deletion residuals of ``lines`` by explicit refits of the other kept lines (SVD)."""
+    out = np.zeros(t.size)
+    index = np.flatnonzero(keep)
+    vander = _vander(t, order) / sigma[:, None]
+    for i in lines:
         others = index[index != i]
         a = vander[others]
         coeffs, *_ = np.linalg.lstsq(a, lam[others] / sigma[others], rcond=None)
@@ -330,28 +479,49 @@ def _deletion_z(t, lam, sigma, keep, order):
 
 
 def _select_order(t, lam, sigma, keep, *, max_order, monotonic_t):
-    """Best polynomial order on the kept lines by BIC (each order must gain > 2); None if nothing fits."""
-    best = None
+    """Best polynomial order on the kept lines by BIC (each order must gain > 2); None if nothing fits.
+
+    Returns (bic, coeffs, cov, chi2, order).
+    """
     m = int(keep.sum())
     # A flat sensor behind a grating always bends the dispersion (x = f tan(beta)), so with enough
     # lines the search starts at order 2; order 1 is only for three or four lines.
     lowest = 2 if m >= 5 and max_order >= 2 else 1
+    orders = []
     for order in range(lowest, max_order + 1):
         # order 3 needs two spare lines, lower orders one (or none for a line through two points)
         if m < order + (3 if order == 3 else 2) and not (order == 1 and m == 2):
             break
-        coeffs, cov, residual, chi2 = _weighted_polyfit(t[keep], lam[keep], sigma[keep], order)
-        deriv = np.polynomial.polynomial.polyval(monotonic_t, np.polynomial.polynomial.polyder(coeffs))
-        if order > 1 and not (np.all(deriv > 0) or np.all(deriv < 0)):
-            continue  # a fold inside the range is never physical
-        bic = chi2 + (order + 1) * math.log(max(m, 2))
+        orders.append(order)
+    if not orders:
+        return None
+    tk, lk, sk = t[keep], lam[keep], sigma[keep]
+    vander = _vander(tk, orders[-1])
+    weights = 1.0 / sk
+    a = vander * weights[:, None]
+    b = lk * weights
+    normal = a.T @ a
+    rhs = b @ a
+    log_m = math.log(max(m, 2))
+    best = None
+    for order in orders:
+        p = order + 1
+        ap = a[:, :p]
+        solved = _normal_solve(ap, b, normal[:p, :p], rhs[:p])
+        coeffs, cov = solved if solved is not None else _lstsq_polyfit(vander[:, :p], lk, sk)
+        if order > 1:
+            deriv = _polyval(monotonic_t, _derivative_coeffs(coeffs))
+            if not (np.all(deriv > 0) or np.all(deriv < 0)):
+                continue  # a fold inside the range is never physical
+        chi2 = float(np.sum(((lk - vander[:, :p] @ coeffs) / sk) ** 2))
+        bic = chi2 + p * log_m
         if best is None or bic < best[0] - 2.0:
             best = (bic, coeffs, cov, chi2, order)
     return best
 
 
 def _robust_fit(t, lam, sigma, *, max_order, monotonic_t):
-    """Weighted polynomial fit, order 1-3 by BIC, outliers rejected one at a time at 4 robust sigma.
+    """Weighted polynomial fit, order 1-3 by BIC, outliers rejected one at a time at 5 robust sigma.
 
     The order is chosen again after each rejection, so a line that only a
     higher order explains is not thrown out by a lower-order fit.
@@ -366,11 +536,12 @@ def _robust_fit(t, lam, sigma, *, max_order, monotonic_t):
         if best is None or keep.sum() <= best[4] + 2:
             break
         coeffs, order = best[1], best[4]
-        z = (lam - np.polynomial.polynomial.polyval(t, coeffs)) / sigma
-        # Leave-one-out residuals r / (1 - h): a line the polynomial bends to reach (typically an
-        # end line assigned to the wrong reference) stands out although its own residual is small.
+        z = (lam - _polyval(t, coeffs)) / sigma
+        # Studentised deletion residuals: a line the polynomial bends to reach (typically an end
+        # line assigned to the wrong reference) stands out although its own residual is small.
         z_loo = np.where(keep, _deletion_z(t, lam, sigma, keep, order), z)
-        spread = max(1.0, 1.4826 * float(np.median(np.abs(z[keep] - np.median(z[keep])))))
+        zk = z[keep]
+        spread = max(1.0, 1.4826 * _median(np.abs(zk - _median(zk))))
         worst = int(np.argmax(np.where(keep, np.abs(z_loo), -1)))
         if not (abs(z_loo[worst]) > 5.0 * spread and abs(z_loo[worst]) > 5.0):
             break
