@@ -137,11 +137,25 @@ def _grating_polish(params, pixel, lam, sigma, *, sign, axis_px, axis_sigma, low
     Returns (params, jacobian of the residual vector, chi2) or None.
     """
     p = np.clip(np.asarray(params, dtype=float), lower, upper)
-    prior_row = np.array([[0.0, 0.0, 1.0 / axis_sigma, 0.0]])
+    n = pixel.size
+    prior_row = np.array([0.0, 0.0, 1.0 / axis_sigma, 0.0])
 
     def residual_and_jacobian(q):
-        r = np.r_[(_grating_eval(q, pixel, sign) - lam) / sigma, (q[2] - axis_px) / axis_sigma]
-        j = np.vstack([_grating_jacobian(q, pixel, sign) / sigma[:, None], prior_row])
+        # _grating_eval and _grating_jacobian (the same arithmetic), sharing the phase and its sine and cosine
+        a, theta, x0, f = q.tolist()
+        u = sign * (pixel - x0) / f
+        phi = theta + np.arctan(u)
+        sin, cos = np.sin(phi), np.cos(phi)
+        g = a * cos / (1.0 + u**2)
+        r = np.empty(n + 1)
+        r[:n] = (a * sin + 0.0 - lam) / sigma
+        r[n] = (q[2] - axis_px) / axis_sigma
+        j = np.empty((n + 1, 4))
+        j[:n, 0] = sin / sigma
+        j[:n, 1] = a * cos / sigma
+        j[:n, 2] = -g * sign / f / sigma
+        j[:n, 3] = -g * u / f / sigma
+        j[n] = prior_row
         return r, j
 
     r, j = residual_and_jacobian(p)
@@ -158,7 +172,7 @@ def _grating_polish(params, pixel, lam, sigma, *, sign, axis_px, axis_sigma, low
             except np.linalg.LinAlgError:
                 damping *= 10.0
                 continue
-            trial = np.clip(p + step, lower, upper)
+            trial = np.minimum(np.maximum(p + step, lower), upper)  # np.clip, without its overhead
             r_new, j_new = residual_and_jacobian(trial)
             chi2_new = float(r_new @ r_new)
             if np.isfinite(chi2_new) and chi2_new <= chi2:
