@@ -66,6 +66,8 @@ __all__ = [
     "SOURCE_KINDS",
     "load_bench",
     "parse_source",
+    "as_written",
+    "camera_tilt_deg",
     "render",
     "render_video",
     "write_frame",
@@ -577,6 +579,11 @@ def _camera_tilt_deg(bench: Bench) -> float:
         ) from None
 
 
+def camera_tilt_deg(bench: Bench) -> float:
+    """The camera's tilt towards the order (deg): ``camera.tilt_deg``, or the default that points it at 550 nm."""
+    return _camera_tilt_deg(bench)
+
+
 def _raw_columns(bench: Bench, proj: _Projection, wavelength_nm, row_offset_px):
     """Column of wavelength(s) on rows offset from the band centre, before any smile override.
 
@@ -1078,6 +1085,30 @@ def write_frame(rendered: Rendered, path: str | os.PathLike, *, bench: Bench | N
     if not ok:
         raise ExportError(f"OpenCV could not encode the frame as {suffix}")
     _atomic_write_bytes(path, buffer.tobytes(), force=force)
+
+
+def as_written(rendered: Rendered, *, jpeg_quality: int | None = None) -> np.ndarray:
+    """The frame as a camera program would hand it over: unchanged, or after a JPEG round trip in memory.
+
+    With ``jpeg_quality`` (10-100) the result is what :func:`write_frame` to a ``.jpg`` at that
+    quality gives when read back (8-bit frames only); ``None`` returns ``rendered.image`` itself.
+    """
+    if jpeg_quality is None:
+        return rendered.image
+    import cv2
+
+    low, high = _RANGES["output.jpeg_quality"]
+    if not (low <= int(jpeg_quality) <= high) or int(jpeg_quality) != jpeg_quality:
+        raise InputError(f"`jpeg_quality` must be a whole number in {low}-{high}, was {jpeg_quality!r}")
+    image = rendered.image
+    if image.dtype != np.uint8:
+        raise InputError("JPEG holds 8-bit frames only; set output.bit_depth = 8 or pass jpeg_quality=None")
+    bgr = image[..., ::-1] if image.ndim == 3 else image
+    ok, buffer = cv2.imencode(".jpg", np.ascontiguousarray(bgr), [cv2.IMWRITE_JPEG_QUALITY, int(jpeg_quality)])
+    if not ok:
+        raise ExportError("OpenCV could not encode the frame as JPEG")
+    decoded = cv2.imdecode(buffer, cv2.IMREAD_UNCHANGED)
+    return np.ascontiguousarray(decoded[..., ::-1] if decoded.ndim == 3 else decoded)
 
 
 def write_truth(truth: Mapping[str, Any], path: str | os.PathLike, *, force: bool = False) -> None:

@@ -8,7 +8,7 @@ weighted least-squares slope through the origin.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import constants, stats
@@ -71,6 +71,10 @@ class BalmerLine:
     fwhm_nm: float
     snr: float
     residual_nm: float | None = None
+    #: The parts of ``wavelength_uncertainty_nm`` (added in quadrature): the Gaussian fit's own
+    #: 1-sigma of the centre, and the wavelength solution's 1-sigma at the line. None when unknown.
+    statistical_uncertainty_nm: float | None = None
+    calibration_uncertainty_nm: float | None = None
 
 
 @dataclass(frozen=True)
@@ -81,6 +85,12 @@ class RydbergResult:
     uncertainties; it is multiplied by the Birge ratio sqrt(chi^2/dof) only
     when the lines disagree beyond chance (p < 0.01), and ``scaled`` says
     so. ``difference_sigma`` is (fitted - CODATA) / combined uncertainty.
+
+    ``budget`` splits ``uncertainty_per_m`` into its parts (added in quadrature, each already
+    multiplied by the Birge ratio when ``scaled``): ``statistical_per_m`` from the H line centres'
+    fit statistics, ``calibration_per_m`` from the wavelength solution's stated 1-sigma at the
+    lines, ``unattributed_per_m`` from lines whose uncertainty was given without its parts;
+    ``includes`` and ``excludes`` say in words what the uncertainty does and does not cover.
     """
 
     rydberg_per_m: float
@@ -96,6 +106,23 @@ class RydbergResult:
     scaled: bool
     lines: tuple[BalmerLine, ...]
     air_to_vacuum: str = "Edlén 1966"
+    budget: dict = field(default_factory=dict)
+
+
+_BUDGET_INCLUDES = (
+    "H line centres: the Gaussian fit's statistical 1-sigma (noise)",
+    "calibration: the wavelength solution's stated 1-sigma at each line (its line centres with their floor, "
+    "the reference wavelengths' tolerances, the model floor, scaled by the lines' scatter where that is larger)",
+    "the Birge ratio sqrt(chi^2/dof) when the lines disagree beyond chance (p < 0.01)",
+)
+_BUDGET_EXCLUDES = (
+    "the correlation of the calibration's error between lines: treated as independent, since a spectrum "
+    "carries each wavelength's 1-sigma but not the solution's covariance",
+    "biases of the H line centres beyond their fit statistics (frame encoding, blends with H2 bands)",
+    "fine structure and the Lamb shift: the Bohr formula places the real line centroids about 1e-5 "
+    "(relative) off",
+    "CODATA's own uncertainty (it is in codata_uncertainty_per_m and difference_sigma)",
+)
 
 
 def find_balmer_lines(
@@ -169,6 +196,8 @@ def find_balmer_lines(
                 expected_air_wavelength_nm=expected,
                 fwhm_nm=fit["sigma_width"] * FWHM_PER_SIGMA,
                 snr=float(snr),
+                statistical_uncertainty_nm=float(fit["centre_uncertainty"]),
+                calibration_uncertainty_nm=cal_sigma,
             )
         )
     return tuple(found)
@@ -217,6 +246,8 @@ def fit_rydberg(lines) -> RydbergResult:
             f"the Balmer lines disagree beyond their uncertainties (chi^2 = {chi2:.1f} for {dof} degrees of freedom); "
             f"the uncertainty is scaled by {birge:.2f} - check the calibration and the line assignments"
         )
+    budget = _budget(lines, lam_m, lam_err_m, w, x, sxx, birge if scaled else 1.0)
+    budget["total_per_m"] = err
     codata, codata_err = codata_rydberg_hydrogen_per_m()
     difference = rydberg - codata
     combined = float(np.hypot(err, codata_err))
@@ -237,7 +268,30 @@ def fit_rydberg(lines) -> RydbergResult:
         birge_ratio=birge,
         scaled=scaled,
         lines=with_residuals,
+        budget=budget,
     )
+
+
+def _budget(lines, lam_m, lam_err_m, weight, x, sxx, scale) -> dict:
+    """The parts of the fit's 1-sigma: each line's variance parts propagated with dR/dlambda_i."""
+    # R = sum(w x y) / sum(w x^2) with y = 1/lambda, so dR/dlambda_i = -w_i x_i / (lambda_i^2 sum(w x^2)).
+    slope = -weight * x / (lam_m**2 * sxx)
+    stat = np.array([np.nan if l.statistical_uncertainty_nm is None else l.statistical_uncertainty_nm for l in lines]) * 1e-9
+    cal = np.array([np.nan if l.calibration_uncertainty_nm is None else l.calibration_uncertainty_nm for l in lines]) * 1e-9
+    known = np.isfinite(stat) & np.isfinite(cal)
+    stat, cal = np.where(known, stat, 0.0), np.where(known, cal, 0.0)
+    rest = np.where(known, lam_err_m**2 - stat**2 - cal**2, lam_err_m**2)
+    rest = np.where(rest > 1e-9 * lam_err_m**2, rest, 0.0)  # rounding, not a part
+    part = lambda variance: float(scale * np.sqrt(np.sum(slope**2 * variance)))
+    return {
+        "statistical_per_m": part(stat**2),
+        "calibration_per_m": part(cal**2),
+        "unattributed_per_m": part(rest),
+        "birge_scale": float(scale),
+        "calibration_between_lines": "independent",
+        "includes": list(_BUDGET_INCLUDES),
+        "excludes": list(_BUDGET_EXCLUDES),
+    }
 
 
 def rydberg_from_spectrum(spectrum: Spectrum, *, window_nm: float | None = None, min_snr: float = 5.0) -> RydbergResult:
