@@ -532,7 +532,10 @@ def measure_geometry(
     Rotation: the coarse angle maximises the sum of squares of the band's
     projection along sheared lines (a projection-profile search, common
     practice); it is refined by a robust straight-line fit to the mid-points
-    of the band's outer half-maximum edges in chunks along the band.
+    of the band's outer half-maximum edges in chunks along the band. A band
+    shorter than about twice its height gets a second start from the angle
+    at which its column profile (across the slit images) is sharpest, taken
+    when the first start fails or traces no line.
     Curvature: each isolated line is tracked outwards from the centre rows,
     bin by bin, with a three-point Gaussian peak interpolation, and fitted
     with ``x0 + b t + c t**2``; ``b(s)`` and ``c(s)`` are then fitted across
@@ -549,10 +552,33 @@ def measure_geometry(
         saturated = np.asarray(saturated, dtype=bool)
         if saturated.shape != frame.shape:
             raise InputError(f"`saturated` has shape {saturated.shape} but the image has {frame.shape}")
+    coarse = _coarse_band(frame, max_rotation_deg=max_rotation_deg)
+    options = dict(saturated=saturated, max_rotation_deg=max_rotation_deg, background_gap_px=background_gap_px,
+                   background_width_px=background_width_px, min_line_snr=min_line_snr, iterations=iterations)
+    try:
+        first, failure = _measure_from(frame, coarse, **options), None
+    except GeometryError as exc:
+        first, failure = None, exc
+    alternative = coarse.get("alternative_theta_deg")
+    if alternative is not None and (first is None or not first.curvature_known):
+        # A short, tall band: the row profile's angle led nowhere (no edges, no traceable lines);
+        # start again from the angle of the slit images, and keep that if it traces the lines.
+        try:
+            second = _measure_from(frame, {**coarse, "theta_deg": alternative}, **options)
+        except GeometryError:
+            second = None
+        if second is not None and (first is None or second.curvature_known):
+            return second
+    if first is None:
+        raise failure
+    return first
+
+
+def _measure_from(frame, coarse, *, saturated, max_rotation_deg, background_gap_px, background_width_px,
+                  min_line_snr, iterations) -> Geometry:
+    """measure_geometry from a coarse start (angle, centre, half-height)."""
     height, width = frame.shape
     notes: list[str] = []
-
-    coarse = _coarse_band(frame, max_rotation_deg=max_rotation_deg)
     theta, cx, cy, half_height = coarse["theta_deg"], coarse["cx"], coarse["cy"], coarse["half_height"]
     tilt = np.zeros(1)
     curv = np.zeros(1)
@@ -733,6 +759,44 @@ def _updated_axis(theta, cx, cy, trace, *, s_ref: float):
     return theta + math.degrees(math.atan(m)), new_cx, new_cy, trace["half_height"]
 
 
+def _best_projection_angle(score, max_rotation_deg: float) -> float:
+    """Angle (deg) that maximises ``score``: 2 deg steps, then 0.5 deg, then a parabola's vertex."""
+    angles = np.arange(-max_rotation_deg, max_rotation_deg + 0.01, 2.0)
+    scores = np.array([score(a) for a in angles])
+    best = int(np.argmax(scores))
+    fine = np.arange(angles[best] - 1.5, angles[best] + 1.51, 0.5)
+    fine_scores = np.array([score(a) for a in fine])
+    j = int(np.argmax(fine_scores))
+    angle = float(fine[j])
+    if 0 < j < fine.size - 1:
+        a, b, c = fine_scores[j - 1: j + 2]
+        denom = a - 2 * b + c
+        if denom < 0:
+            angle += 0.5 * 0.5 * (a - c) / denom
+    return angle
+
+
+def _coarse_rows_and_columns(profile: np.ndarray, sheared: np.ndarray):
+    """(top, bottom, lit columns) of the band in a sheared copy: the rows above a quarter of the
+    row profile's peak around it, and the columns of those rows above a fifth of their brightest.
+    (None, None, empty) when the frame is uniform."""
+    smooth = np.convolve(profile, np.ones(3) / 3, mode="same")
+    r0 = int(np.argmax(smooth))
+    peak = smooth[r0]
+    if peak <= 0:
+        return None, None, np.array([], dtype=int)
+    level = 0.25 * peak
+    top = r0
+    while top > 0 and smooth[top - 1] > level:
+        top -= 1
+    bottom = r0
+    while bottom < smooth.size - 1 and smooth[bottom + 1] > level:
+        bottom += 1
+    column_profile = np.convolve(sheared[top: bottom + 1].mean(axis=0), np.ones(3) / 3, mode="same")
+    lit = np.flatnonzero(column_profile > 0.2 * float(column_profile.max()))
+    return top, bottom, lit
+
+
 def _coarse_band(frame: np.ndarray, *, max_rotation_deg: float) -> dict:
     """Rough angle, centre and half-height from a downsampled copy; raises GeometryError when no band."""
     height, width = frame.shape
@@ -748,35 +812,36 @@ def _coarse_band(frame: np.ndarray, *, max_rotation_deg: float) -> dict:
         profile, _ = _shear_projection(work, math.tan(math.radians(angle)), pad)
         return float(np.dot(profile, profile))
 
-    angles = np.arange(-max_rotation_deg, max_rotation_deg + 0.01, 2.0)
-    scores = np.array([score(a) for a in angles])
-    best = int(np.argmax(scores))
-    fine = np.arange(angles[best] - 1.5, angles[best] + 1.51, 0.5)
-    fine_scores = np.array([score(a) for a in fine])
-    j = int(np.argmax(fine_scores))
-    angle = float(fine[j])
-    if 0 < j < fine.size - 1:
-        a, b, c = fine_scores[j - 1: j + 2]
-        denom = a - 2 * b + c
-        if denom < 0:
-            angle += 0.5 * 0.5 * (a - c) / denom
+    angle = _best_projection_angle(score, max_rotation_deg)
     slope = math.tan(math.radians(angle))
     profile, sheared = _shear_projection(work, slope, pad)
     # Row profile (mean over columns) -> band rows; column profile -> brightest region.
-    smooth = np.convolve(profile, np.ones(3) / 3, mode="same")
-    r0 = int(np.argmax(smooth))
-    peak = smooth[r0]
-    if peak <= 0:
+    top, bottom, lit = _coarse_rows_and_columns(profile, sheared)
+    alternative = None
+    if top is not None and lit.size and (lit[-1] - lit[0] + 1) < 2 * (bottom - top + 1):
+        # A band shorter than about twice its height (coarse dispersion behind a tall slit): the
+        # row profile hardly changes with the angle (its edges are only as long as the band), but
+        # the slit images are long, so the column profile across them (projected along the slit
+        # direction, perpendicular to the band) is sharpest at the band's angle. Sharpness: the
+        # sum of squares of its (lightly smoothed) derivative, which the band's overall shape
+        # hardly feeds. Offered as a second start; measure_geometry takes it when the first fails.
+        from scipy.ndimage import gaussian_filter1d
+
+        work_t = np.ascontiguousarray(work.T)
+        pad_t = int(math.ceil(hs * math.tan(math.radians(max_rotation_deg)) / 2)) + 2
+
+        def column_score(angle):
+            columns, _ = _shear_projection(work_t, -math.tan(math.radians(angle)), pad_t)
+            slope_profile = np.diff(gaussian_filter1d(columns.astype(np.float64), 1.0))
+            return float(np.dot(slope_profile, slope_profile))
+
+        column_angle = _best_projection_angle(column_score, max_rotation_deg)
+        if abs(column_angle - angle) > 1.0:
+            alternative = column_angle
+    if top is None:
         raise GeometryError(
             "no spectral band found: the frame is uniform; check the lamp is on and the slit is in view"
         )
-    level = 0.25 * peak
-    top = r0
-    while top > 0 and smooth[top - 1] > level:
-        top -= 1
-    bottom = r0
-    while bottom < smooth.size - 1 and smooth[bottom + 1] > level:
-        bottom += 1
     rows = sheared[top: bottom + 1]
     column_profile = rows.mean(axis=0)
     column_profile = np.convolve(column_profile, np.ones(3) / 3, mode="same")
@@ -801,14 +866,13 @@ def _coarse_band(frame: np.ndarray, *, max_rotation_deg: float) -> dict:
     cy = (ys + 0.5) * k - 0.5
     half_height = max(2.0, (bottom - top + 1) * k / 2.0 * math.cos(math.radians(angle)))
     # If the band is short, put the centre at its lit part so the refinement sees it.
-    lit = np.flatnonzero(column_profile > 0.2 * brightest)
     if lit.size:
         mid = (lit[0] + lit[-1]) / 2.0
         shift = (mid - xs) * k
         cx += shift
         cy += shift * slope
     return {"theta_deg": math.degrees(math.atan(slope)), "cx": cx, "cy": cy, "half_height": half_height,
-            "background": background, "noise": noise}
+            "background": background, "noise": noise, "alternative_theta_deg": alternative}
 
 
 def _measure_trace(band: np.ndarray, *, s0: float, t0: float, half_height: float) -> dict:
@@ -1172,6 +1236,10 @@ def _measure_curvature(band, sat_band, *, centre_index, half_height, s0, min_snr
         w = (strengths[i, found] / bin_noise) ** 2
         coef, cov, keep, rms = _robust_line_fit(t, x, np.minimum(w, 1e4), degree=2, floor=0.05)
         if keep.sum() < 5 or not np.isfinite(cov).all():
+            continue
+        if rms > max(1.0, 0.5 * fwhm):
+            # One slit image is a smooth curve: a trace this far off a parabola has jumped
+            # between neighbouring lines (dense spectra, tall slits) and measures nothing.
             continue
         line_s.append(coef[0] + s0)
         line_b.append(coef[1])

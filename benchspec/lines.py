@@ -412,6 +412,78 @@ def _fit_group(x, y, sigma, use, guesses):
     return params, cov, float(np.sum(residual**2) / dof)
 
 
+def _fit_censored(x, y, sigma, window, saturated, guesses, *, min_width: float = 0.3):
+    """Least-squares fit of Gaussians on a linear background to a window holding clipped samples.
+
+    A saturated sample is a lower bound on the signal (extraction keeps the clipped pixels, so such
+    a column holds at least that much): it adds a residual only where the model falls below it
+    (a censored, one-sided fit), while unsaturated samples count as usual. The lower bounds pin a
+    clipped line's height and width, which its few unclipped wing samples alone leave free when the
+    clip is deep or the line narrow. Lower bounds cannot stop a line from growing ever taller and
+    narrower, so its Gaussian sigma is held at ``min_width`` or more (a little under the sigma of
+    the spectrum's unclipped lines: no line is narrower than the line-spread function); a width at
+    that bound is held fixed in the covariance. Returns (params, covariance, reduced_chi2) or None.
+    """
+    xs, ys, ss, clipped = x[window], y[window], sigma[window], saturated[window]
+    n_params = 2 + 3 * len(guesses)
+    if np.count_nonzero(~clipped) < 3 or xs.size < n_params + 1:
+        return None
+    x0 = float(np.mean(xs))
+    model = _gaussian_model(x0)
+    jacobian = _gaussian_jacobian(x0)
+    p0 = [0.0, float(np.min(ys[~clipped]))]
+    lower = [-np.inf, -np.inf]
+    upper = [np.inf, np.inf]
+    span = float(xs.max() - xs.min())
+    # The bounds of _fit_group, with the height allowed above the clipped samples.
+    ceiling = 6.0 * max(float(np.ptp(ys)), 1e-12)
+    for amplitude, centre, width in guesses:
+        p0 += [min(max(amplitude, 1e-12), ceiling), centre, max(width, 0.5, 1.2 * min_width)]
+        lower += [0.0, centre - max(2.0, width), min_width]
+        upper += [ceiling, centre + max(2.0, width), max(span, 1.0, 1.5 * min_width)]
+    p0 = np.minimum(np.maximum(p0, lower), upper)
+
+    def residuals(params):
+        r = (ys - model(xs, *params)) / ss
+        return np.where(clipped & (r < 0), 0.0, r)  # clipped: only a model below the recorded value counts
+
+    def jac(params):
+        r = (ys - model(xs, *params)) / ss
+        active = ~(clipped & (r < 0))
+        return -jacobian(xs, *params) / ss[:, None] * active[:, None]
+
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            fit = optimize.least_squares(residuals, p0, jac=jac, bounds=(lower, upper), x_scale="jac", max_nfev=4000)
+    except (ValueError, np.linalg.LinAlgError):
+        return None
+    if not fit.success:
+        return None
+    params = fit.x
+    # Covariance: a lower bound the model meets (within one sigma) pins the fit like a measurement,
+    # one the model clears by more constrains nothing nearby; counting only the strictly violated
+    # ones would leave a deeply clipped line's height and width, and with them its centre, free.
+    r = (ys - model(xs, *params)) / ss
+    binding = ~clipped | (r > -1.0)
+    j = -jacobian(xs, *params) / ss[:, None] * binding[:, None]
+    free = np.ones(n_params, dtype=bool)
+    free[4::3] = params[4::3] > min_width * (1 + 1e-6)  # widths at their floor are held
+    j = j[:, free]
+    _, singular, vt = np.linalg.svd(j, full_matrices=False)
+    if singular.size == 0 or singular[0] <= 0:
+        return None
+    keep = singular > np.finfo(float).eps * max(j.shape) * singular[0]
+    cov = np.zeros((n_params, n_params))
+    cov[np.ix_(free, free)] = (vt[keep].T / singular[keep] ** 2) @ vt[keep]
+    if not np.all(np.isfinite(cov)):
+        return None
+    r = residuals(params)
+    n_active = int(np.count_nonzero(~clipped) + np.count_nonzero(clipped & (r > 0)))
+    dof = max(1, n_active - n_params)
+    return params, cov, float(np.sum(r**2) / dof)
+
+
 # ----------------------------------------------------------------------------- main entry
 
 
@@ -459,6 +531,10 @@ def find_lines(
     chi-square where that exceeds 1 (so model mismatch widens it). The
     photon-noise floor is about sigma/sqrt(N) px for N detected counts.
     Overlapping lines (closer than 2.5 mean FWHM) are fitted jointly.
+    Where a line's window holds saturated samples, each of them counts as a
+    lower bound on the model (a censored fit), the unsaturated ones as usual;
+    such lines are flagged ``saturated`` and their uncertainty can be
+    conservative.
     """
     if not isinstance(spectrum, Spectrum):
         raise InputError(f"`spectrum` must be a benchspec Spectrum, got {type(spectrum).__name__}")
@@ -545,8 +621,17 @@ def find_lines(
         guesses = [(float(prominence[k]), float(peaks[k]), float(widths[k] / _FWHM_PER_SIGMA)) for k in group]
         prepared.append((group, window, use, clipped_group, guesses))
     # All groups at once (vectorised); a group the batch does not settle is fitted alone with bounds.
-    batch = _fit_groups(x, y, sigma, [p[2] for p in prepared], [p[4] for p in prepared])
+    # Groups with clipped samples get the censored fit instead (the batch sees no sample of them).
+    batch = _fit_groups(x, y, sigma, [np.zeros_like(p[2]) if p[3] else p[2] for p in prepared], [p[4] for p in prepared])
+    # Narrowest width a clipped line may take: 0.8 x the median sigma of the lines fitted unclipped
+    # and alone (the line-spread function), or the generic 0.3 px floor when there are fewer than 3.
+    alone = [r[0][4] for p, r in zip(prepared, batch) if r is not None and len(p[0]) == 1 and not p[3]]
+    min_width = max(0.3, 0.8 * float(np.median(alone))) if len(alone) >= 3 else 0.3
     for (group, window, use, clipped_group, guesses), result in zip(prepared, batch):
+        if result is None and clipped_group:
+            result = _fit_censored(x, y, sigma, window, saturated, guesses, min_width=min_width)
+            if result is not None:
+                use = window
         if result is None:
             result = _fit_group(x, y, sigma, use, guesses)
         if result is None and len(group) > 1:
@@ -568,6 +653,10 @@ def find_lines(
             base = 2 + 3 * j
             amplitude, centre, width_sigma = params[base : base + 3]
             centre_sigma = float(np.sqrt(cov[base + 1, base + 1] * scale))
+            # The fit holds each centre within +-max(2, width) of its guess: a covariance wider than
+            # that interval (a degenerate fit, e.g. two lines inside one clipped run) says only that
+            # the centre is somewhere in it, i.e. the interval's uniform sigma.
+            centre_sigma = min(centre_sigma, 2.0 * max(2.0, guesses[j][2]) / math.sqrt(12.0))
             background = float(params[1] + params[0] * (centre - x0))
             core = np.abs(x - centre) <= max(1.0, 1.2 * width_sigma)
             fitted.append((float(centre), centre_sigma, float(width_sigma), float(amplitude), background, chi2,

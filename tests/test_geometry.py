@@ -47,6 +47,33 @@ def test_round_trip_on_synthetic_band(rotation_deg, curvature):
     assert g.band_height_px == pytest.approx(2 * truth["half_height"], abs=1.5)
 
 
+@pytest.mark.parametrize(
+    "rotation_deg, curvature",
+    [
+        (-8.0, (0.0004, 0.0)),  # 6.8 px sag at the band's top and bottom
+        (-12.0, (0.0, 0.0)),
+        (8.0, (-0.0003, 1e-6)),
+    ],
+)
+def test_round_trip_on_short_tall_band(rotation_deg, curvature):
+    # Coarse dispersion behind a tall slit: the band (about 130 px long, 260 px high) is shorter
+    # than it is high, so its row profile barely depends on the angle; the angle must come from
+    # the slit images (they used to give e.g. -4.9 deg for -8, or +9.9 for -12).
+    image, truth = synthetic_band(shape=(540, 960), rotation_deg=rotation_deg, half_height=130.0,
+                                  lines_s=(-60.0, -41.0, -25.0, -8.0, 12.0, 30.0, 47.0, 66.0), line_sigma=1.6,
+                                  curvature=curvature, noise_sigma=3.0, rng=np.random.default_rng(11))
+    g = geometry.measure_geometry(image)
+    assert abs(g.rotation_deg - rotation_deg) < ROTATION_TOLERANCE_DEG
+    assert g.curvature_known and g.n_lines_traced >= 4
+    u = np.array(rectified_columns(g, truth))
+    true_c = curvature[0] + curvature[1] * np.asarray(truth["lines_s"])
+    # 5e-5 / px^2 -> 0.7 px of sag at 0.9 of the half-height
+    np.testing.assert_allclose(g.curvature_at(g.first_column_s_px + u), true_c, atol=5e-5)
+    rect = geometry.rectify(image, g)
+    deviations = line_straightness(rect.image, g, columns=u, half_rows=0.9 * truth["half_height"])
+    assert max(deviations) < STRAIGHTNESS_TOLERANCE_PX, deviations
+
+
 @pytest.mark.parametrize("rotation_deg, smile_px", [(-12.0, 20.0), (9.0, -15.0), (4.0, 8.0)])
 def test_round_trip_on_virtual_bench(rotation_deg, smile_px):
     bench = simulate.Bench().with_(camera={"rotation_deg": rotation_deg}, slit={"smile_px": smile_px})

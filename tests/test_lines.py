@@ -67,6 +67,46 @@ def test_saturated_line_is_flagged_and_centred_from_its_wings(rng):
         assert line.centre_px == pytest.approx(true, abs=0.1)
 
 
+def _clipped_as_extracted(rng, centre, *, sigma, height, clip, n=200, background=20.0):
+    """A Gaussian line clipped the way an extracted spectrum clips it (invented test data).
+
+    Extraction keeps clipped pixels, so a column with some clipped pixels records a varying part of
+    what it received above the clip level (a lower bound, not a flat top), and the columns beside
+    the clipped core are flagged too (a curved slit image clips at a neighbouring column in some
+    rows) while losing a little. Three unclipped lines (30, 60, 160 px) show the line width.
+    """
+    x = np.arange(n, dtype=float)
+    truth = background + height * np.exp(-0.5 * ((x - centre) / sigma) ** 2)
+    truth += sum(0.2 * clip * np.exp(-0.5 * ((x - c) / sigma) ** 2) for c in (30.0, 60.0, 160.0))
+    sd = np.sqrt(truth)
+    y = truth + rng.normal(0, 1, n) * sd
+    core = truth >= clip
+    saturated = core | np.r_[core[1:], False] | np.r_[False, core[:-1]]
+    deficit = rng.uniform(0.0, 0.6, n)
+    y = np.where(core, clip + (1 - deficit) * (y - clip), y)
+    y = np.where(saturated & ~core, y * (1 - 0.1 * deficit), y)
+    return Spectrum(intensity=y, uncertainty=sd, pixel=x, saturated=saturated)
+
+
+def test_deeply_clipped_narrow_line_is_centred_with_an_honest_uncertainty(rng):
+    # A narrow line (sigma 0.8 px) 4x over the clip leaves one or two unclipped samples per wing:
+    # a wings-only Gaussian fit is degenerate there (it used to lose the line in about a third of
+    # the draws and miss by ~1 px RMS otherwise). The clipped samples bound the line from below.
+    errors, pulls = [], []
+    for _ in range(30):
+        centre = 100.0 + rng.uniform(0.0, 1.0)
+        table = find_lines(_clipped_as_extracted(rng, centre, sigma=0.8, height=4000.0, clip=1000.0))
+        near = [l for l in table if abs(l.centre_px - centre) < 3.0]
+        assert len(near) == 1 and near[0].saturated
+        errors.append(near[0].centre_px - centre)
+        pulls.append(errors[-1] / near[0].centre_uncertainty_px)
+    # 0.2 px: the 0.2 px target of the issue for a calibration line. The stated uncertainty may be
+    # conservative (the wings leave height and width partly free, and that widens the covariance)
+    # but must not understate the scatter: pull RMS below 1.6 (common practice, no source).
+    assert np.sqrt(np.mean(np.square(errors))) < 0.2
+    assert np.sqrt(np.mean(np.square(pulls))) < 1.6
+
+
 def test_pure_noise_gives_no_line(rng):
     x = np.arange(3000.0)
     spectrum = Spectrum(intensity=50 + rng.normal(0, 2.0, x.size), uncertainty=np.full(x.size, 2.0), pixel=x)
