@@ -791,8 +791,9 @@ class LiveExtractor:
             profile = np.full(a1 - a0, 1.0 / (a1 - a0), np.float32)
         self._profile = (profile / profile.sum())[:, None]
         self._pixel = np.arange(n_cols, dtype=np.float64)
-        self._roi_preparer = None
-        self._region_preparer()._table(np.uint8)  # built now: prepare_raw may be called from another thread
+        self._roi_preparers: dict = {}
+        for bgr in (False, True):  # built now: prepare_raw may be called from another thread
+            self._region_preparer(bgr)._table(np.uint8)
         self._prepare_buffers: dict = {}  # the linearised region, reused between frames
         self._buffer = np.empty((n_rows, n_cols), np.float32)
         self._sat_buffer = np.empty((n_rows, n_cols), np.uint8)
@@ -1030,33 +1031,41 @@ class LiveExtractor:
         """Spectrum of one linear frame (H, W) of the geometry's size."""
         return self._spectrum(*self.process_arrays(image, saturated))
 
-    def _region_preparer(self) -> FramePreparer:
-        if self._roi_preparer is None:
+    def _region_preparer(self, bgr: bool = False) -> FramePreparer:
+        """The preparer of the region read; ``bgr``: for colour frames in the decoder's B, G, R order."""
+        preparer = self._roi_preparers.get(bgr)
+        if preparer is None:
             p = self.preparer
             dark = None if p.dark is None else p.dark[self.y0:self.y1, self.x0:self.x1]
-            self._roi_preparer = FramePreparer(gamma=p.gamma, channel_weights=p.weights,
-                                               saturation_level=p.saturation_level, dark=dark)
-        return self._roi_preparer
+            weights = tuple(reversed(p.weights)) if bgr else p.weights
+            preparer = FramePreparer(gamma=p.gamma, channel_weights=weights, saturation_level=p.saturation_level,
+                                     dark=dark)
+            self._roi_preparers[bgr] = preparer
+        return preparer
 
-    def process_raw_arrays(self, frame: np.ndarray):
-        """(intensity, variance, saturated) for one raw frame (uint8/uint16, RGB or mono)."""
+    def process_raw_arrays(self, frame: np.ndarray, *, bgr: bool = False):
+        """(intensity, variance, saturated) for one raw frame (uint8/uint16, RGB or mono).
+
+        ``bgr=True``: a colour frame in B, G, R order, as OpenCV decodes it
+        (the channel weights are reversed instead of converting the frame).
+        """
         frame = np.asarray(frame)
         check_frame_size(frame.shape, self.geometry)
         roi = frame[self.y0:self.y1, self.x0:self.x1]
-        return self.process_prepared(*self._region_preparer().prepare_live(roi, buffers=self._prepare_buffers))
+        return self.process_prepared(*self._region_preparer(bgr).prepare_live(roi, buffers=self._prepare_buffers))
 
-    def prepare_raw(self, frame: np.ndarray) -> tuple[np.ndarray, np.ndarray | None]:
+    def prepare_raw(self, frame: np.ndarray, *, bgr: bool = False) -> tuple[np.ndarray, np.ndarray | None]:
         """The linearised region of one raw frame and its clipping mask (None when nothing clipped).
 
         Safe to call from another thread than :meth:`process_prepared`
         (its arrays are new, no buffer is shared): a batch reader can
         linearise frame n+1 while frame n is extracted.
         ``process_prepared(*prepare_raw(frame))`` equals
-        ``process_raw_arrays(frame)``.
+        ``process_raw_arrays(frame)``; ``bgr`` as there.
         """
         frame = np.asarray(frame)
         check_frame_size(frame.shape, self.geometry)
-        return self._region_preparer().prepare_live(frame[self.y0:self.y1, self.x0:self.x1])
+        return self._region_preparer(bgr).prepare_live(frame[self.y0:self.y1, self.x0:self.x1])
 
     def process_prepared(self, image_roi: np.ndarray, sat_roi: np.ndarray | None = None):
         """(intensity, variance, saturated) from :meth:`prepare_raw`'s region and mask."""

@@ -233,6 +233,15 @@ def _to_rgb(decoded: np.ndarray) -> np.ndarray:
     raise FileFormatError(f"frame has {channels} channels; benchspec reads mono, RGB or RGBA frames")
 
 
+def _to_bgr(decoded: np.ndarray) -> np.ndarray:
+    """As :func:`_to_rgb`, but colour stays in OpenCV's B, G, R order (no copy for 3 channels)."""
+    if decoded.ndim == 3 and decoded.shape[2] == 3:
+        return decoded
+    if decoded.ndim == 3 and decoded.shape[2] == 4:
+        return cv2.cvtColor(decoded, cv2.COLOR_BGRA2BGR)
+    return _to_rgb(decoded)
+
+
 def read_image(path, *, max_pixels: int = MAX_FRAME_PIXELS) -> np.ndarray:
     """Decode one image file.
 
@@ -295,7 +304,8 @@ def _decode_image_bytes(data: bytes, path: Path) -> np.ndarray:
     return _to_rgb(decoded)
 
 
-def iter_video(path, *, max_frames: int | None = None, max_pixels: int = MAX_FRAME_PIXELS) -> Iterator[np.ndarray]:
+def iter_video(path, *, max_frames: int | None = None, max_pixels: int = MAX_FRAME_PIXELS,
+               bgr: bool = False) -> Iterator[np.ndarray]:
     """Stream the frames of a video, one at a time (memory stays bounded).
 
     Parameters
@@ -307,11 +317,15 @@ def iter_video(path, *, max_frames: int | None = None, max_pixels: int = MAX_FRA
         Stop after this many frames.
     max_pixels : int, keyword-only
         Refuse videos whose frames are larger.
+    bgr : bool, keyword-only
+        Colour frames in the decoder's B, G, R order, not converted (a
+        full-frame pass saved: about a fifth of the decoding time at
+        1280x720); a reader that combines the channels reverses its weights.
 
     Yields
     ------
-    ndarray, shape (H, W, 3), uint8
-        Frames in RGB order.
+    ndarray, shape (H, W, 3) or (H, W), uint8
+        Frames in RGB order (B, G, R with ``bgr``); mono videos as (H, W).
 
     Raises
     ------
@@ -344,7 +358,7 @@ def iter_video(path, *, max_frames: int | None = None, max_pixels: int = MAX_FRA
                 ended_early = True
                 break
             count += 1
-            yield _to_rgb(frame)
+            yield _to_bgr(frame) if bgr else _to_rgb(frame)
         if count == 0:
             raise FileFormatError(
                 f"{_display(path)}: no frame could be decoded (unreadable or truncated video); "

@@ -24,6 +24,7 @@ import warnings
 from pathlib import Path
 from typing import Any, Iterable, Mapping, Sequence
 
+import cv2
 import numpy as np
 
 from .calfile import Calibration, read_calibration, write_calibration
@@ -512,6 +513,10 @@ def iter_extract_frames(
         cv2.setNumThreads(previous)
 
 
+#: the decoding thread linearises a frame itself while at least this many decoded frames wait (see _decoded_ahead)
+_PREPARE_AHEAD = 2
+
+
 def _iter_extract(frames, calibration, *, dark, extraction, band_check_every, interpolation, cal_path):
     """The body of :func:`iter_extract_frames` (arguments checked there)."""
     from .extract import LiveExtractor, estimate_noise_model
@@ -538,27 +543,31 @@ def _iter_extract(frames, calibration, *, dark, extraction, band_check_every, in
         else:
             dark_stack = stack_frames(iter_frames(dark), gamma=gamma, channel=channel, check=False)
             dark_records = [{"path": str(p), "sha256": file_sha256(p)} for p in expand_sources(dark)]
-    # once the extractor exists, the decoding thread also linearises each frame's region (OpenCV
-    # releases the lock meanwhile), so the two cores share the work more evenly
-    ahead_work: dict = {}
+    # once the extractor exists, the decoding thread also linearises frames' regions while it is ahead
+    # (OpenCV releases the lock meanwhile), so the two cores share the work evenly
+    ahead_work: dict = {"ahead": _PREPARE_AHEAD}
     if _is_array_input(frames):
         arrays = [frames] if isinstance(frames, np.ndarray) else list(frames)
-        sources = ((None, k, a, None) for k, a in enumerate(arrays))
+        sources = ((None, k, a, False, None) for k, a in enumerate(arrays))
     else:
-        sources = _decoded_ahead(_iter_labelled(frames), work=ahead_work)
+        # video frames stay in the decoder's B, G, R order: the channel weights are reversed instead
+        sources = _decoded_ahead(_iter_labelled(frames, bgr=True), work=ahead_work)
     extractor = None
     band: dict = {}
     gamma_resolved = None
     axis = None  # the calibrated axis, the same for every frame: computed on the first
-    for series_index, (path, index, frame, prepared) in enumerate(sources):
+    for series_index, (path, index, frame, bgr, prepared) in enumerate(sources):
         label = f"{path or 'array'} frame {index}"
         if extractor is None:
-            stacked = stack_frames([frame], gamma=gamma, channel=channel, dark=dark_stack)
+            rgb = cv2.cvtColor(frame, cv2.COLOR_BGR2RGB) if bgr else frame
+            stacked = stack_frames([rgb], gamma=gamma, channel=channel, dark=dark_stack)
             _check_frame_size(stacked.shape, calibration, cal_path, label)
             band = _check_band(stacked.image, calibration, label)
             gamma_resolved = stacked.settings.get("gamma")
             noise = estimate_noise_model(stacked, geometry=calibration.geometry)
             preparer = FramePreparer(gamma=gamma, channel=channel, dark=None if dark_stack is None else dark_stack.image)
+            preparer_bgr = FramePreparer(gamma=gamma, channel_weights=tuple(reversed(preparer.weights)),
+                                         dark=preparer.dark)
             extractor = LiveExtractor(calibration.geometry, noise_model=noise, method=extraction,
                                       preparer=preparer, interpolation=interpolation)
             ahead_work["prepare"] = extractor.prepare_raw
@@ -566,7 +575,7 @@ def _iter_extract(frames, calibration, *, dark, extraction, band_check_every, in
         elif series_index % band_check_every == 0:
             _check_frame_size(np.shape(frame), calibration, cal_path, label)
             # the linear frame is all the check needs: no stack statistics (a stack of one costs 5 times more)
-            band = _check_band(preparer.prepare(frame)[0], calibration, label)
+            band = _check_band((preparer_bgr if bgr else preparer).prepare(frame)[0], calibration, label)
             base = None
         if base is None:  # the record shared by the frames until the next band check
             base = build_provenance(
@@ -580,7 +589,7 @@ def _iter_extract(frames, calibration, *, dark, extraction, band_check_every, in
         if prepared is not None:
             flux, variance, saturated = extractor.process_prepared(*prepared)
         else:
-            flux, variance, saturated = extractor.process_raw_arrays(frame)
+            flux, variance, saturated = extractor.process_raw_arrays(frame, bgr=bgr)
         # per frame only the frame, its index and the time change; the nested settings, calibration and
         # band-check records are shared by the frames of one band-check period (read them, do not edit them)
         provenance = dict(base)
@@ -607,11 +616,17 @@ def _utc_now() -> str:
 def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None):
     """The same items, produced by a second thread at most ``depth`` ahead (OpenCV decodes without the GIL).
 
-    With ``work``, each item ``(path, index, frame)`` comes out as
-    ``(path, index, frame, prepared)``: ``prepared`` is ``work["prepare"](frame)``
-    computed on the second thread once the consumer has put a callable there
-    (None before, or when it raised: the consumer then does the work and
-    meets the error itself).
+    With ``work``, each item ``(path, index, frame, is_bgr)`` comes out as
+    ``(path, index, frame, is_bgr, prepared)``: ``prepared`` is
+    ``work["prepare"](frame, bgr=is_bgr)`` computed on the second thread once
+    the consumer has put a callable there (None before, or when it raised:
+    the consumer then does the work and meets the error itself).
+
+    The work is shared out as the two threads keep pace: the second thread
+    does it only while at least ``work["ahead"]`` items (default 2) wait in
+    the queue, i.e. while decoding is ahead of the consumer; when the
+    consumer waits for frames it gets them raw and prepares them itself.
+    Which thread prepares a frame does not change the result.
     """
     import queue
     import threading
@@ -626,9 +641,9 @@ def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None):
                 if work is not None:
                     prepare = work.get("prepare")
                     prepared = None
-                    if prepare is not None:
+                    if prepare is not None and mailbox.qsize() >= work.get("ahead", 2):
                         try:
-                            prepared = prepare(item[2])
+                            prepared = prepare(item[2], bgr=item[3])
                         except Exception:  # the consumer repeats the work and reports the error
                             prepared = None
                     item = (*item, prepared)
@@ -671,13 +686,16 @@ def _check_frame_size(shape, calibration: Calibration, cal_path, what: str) -> N
         )
 
 
-def _iter_labelled(frames):
-    """(path, index within the file, frame) for every frame named by ``frames``."""
+def _iter_labelled(frames, *, bgr: bool = False):
+    """(path, index within the file, frame, is_bgr) for every frame named by ``frames``.
+
+    ``bgr``: colour video frames come in the decoder's B, G, R order (``is_bgr`` True), unconverted.
+    """
     from .frames import _is_video, iter_video, read_image
 
     for path in expand_sources(frames):
         if _is_video(path):
-            for index, frame in enumerate(iter_video(path)):
-                yield path, index, frame
+            for index, frame in enumerate(iter_video(path, bgr=bgr)):
+                yield path, index, frame, bgr and frame.ndim == 3
         else:
-            yield path, 0, read_image(path)
+            yield path, 0, read_image(path), False

@@ -214,7 +214,10 @@ def test_a_video_series_prepared_on_the_decoding_thread_equals_the_same_frames_a
         from_arrays = list(pipeline.iter_extract_frames(decoded, calibration, band_check_every=4))
     assert len(from_video) == len(from_arrays) == 6
     for a, b in zip(from_video, from_arrays):
-        np.testing.assert_allclose(a.intensity, b.intensity, rtol=1e-6, atol=1e-6)
+        # video frames stay in B, G, R order with the channel weights reversed: the three channels are
+        # summed in another order, so samples agree to float32 rounding of the spectrum's scale
+        scale = float(np.max(np.abs(b.intensity)))
+        np.testing.assert_allclose(a.intensity, b.intensity, rtol=1e-6, atol=1e-6 * scale)
         np.testing.assert_allclose(a.uncertainty, b.uncertainty, rtol=1e-6)
     assert [s.provenance["frames"][0]["frame_index"] for s in from_video] == list(range(6))
     live = extract.LiveExtractor(calibration.geometry, noise_model=extract.NoiseModel(50.0, 1.0), method="optimal")
