@@ -8,6 +8,7 @@ weighted least-squares slope through the origin.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -22,6 +23,7 @@ __all__ = [
     "BalmerLine",
     "RydbergResult",
     "BALMER_NAMES",
+    "calibration_covariance_nm2",
     "codata_rydberg_hydrogen_per_m",
     "expected_balmer_air_nm",
     "find_balmer_lines",
@@ -203,18 +205,26 @@ def find_balmer_lines(
     return tuple(found)
 
 
-def fit_rydberg(lines) -> RydbergResult:
+def fit_rydberg(lines, *, calibration_covariance_nm2=None) -> RydbergResult:
     """Weighted fit of 1/lambda_vac = R_H (1/4 - 1/n^2) through the origin.
 
     Parameters
     ----------
     lines : sequence of BalmerLine
         At least two lines with positive uncertainties.
+    calibration_covariance_nm2 : array (n, n), optional
+        Covariance of the calibration's error between the lines (nm^2), e.g. from
+        :func:`calibration_covariance_nm2`. With it the fit is generalised least squares
+        on the full covariance (the lines' statistical 1-sigma on the diagonal plus this);
+        without it each line's ``wavelength_uncertainty_nm`` is taken as independent.
 
     Raises
     ------
     AnalysisError
         Fewer than two lines.
+    InputError
+        A non-positive uncertainty; a covariance of the wrong shape, not symmetric positive
+        semi-definite, or given for lines without their statistical 1-sigma.
     """
     lines = tuple(lines)
     if len(lines) < 2:
@@ -230,13 +240,26 @@ def fit_rydberg(lines) -> RydbergResult:
         raise InputError("every Balmer line needs a positive, finite wavelength uncertainty")
     x = 0.25 - 1.0 / n**2
     y = 1.0 / lam_m
-    y_err = lam_err_m / lam_m**2
-    w = 1.0 / y_err**2
-    sxx = float(np.sum(w * x * x))
-    rydberg = float(np.sum(w * x * y) / sxx)
+    if calibration_covariance_nm2 is None:
+        # independent lines: a diagonal covariance of 1/lambda
+        y_err = lam_err_m / lam_m**2
+        inverse = np.diag(1.0 / y_err**2)
+        covariance_nm2 = None
+    else:
+        covariance_nm2 = _checked_covariance(calibration_covariance_nm2, lines)
+        stat_nm = np.array([l.statistical_uncertainty_nm for l in lines])
+        # 1/lambda moves by -d lambda / lambda^2: the covariance of y is J (stat + calibration) J
+        jac = 1.0 / lam_m**2
+        cov_y = (np.diag(stat_nm**2) + covariance_nm2) * 1e-18 * np.outer(jac, jac)
+        try:
+            inverse = np.linalg.inv(cov_y)
+        except np.linalg.LinAlgError:
+            raise InputError("the Balmer lines' covariance is singular; check the lines' statistical uncertainties") from None
+    sxx = float(x @ inverse @ x)
+    rydberg = float(x @ inverse @ y / sxx)
     err = float(1.0 / np.sqrt(sxx))
     residual = y - rydberg * x
-    chi2 = float(np.sum(w * residual**2))
+    chi2 = float(residual @ inverse @ residual)
     dof = len(lines) - 1
     birge = float(np.sqrt(chi2 / dof))
     scaled = bool(stats.chi2.sf(chi2, dof) < 0.01)
@@ -246,7 +269,9 @@ def fit_rydberg(lines) -> RydbergResult:
             f"the Balmer lines disagree beyond their uncertainties (chi^2 = {chi2:.1f} for {dof} degrees of freedom); "
             f"the uncertainty is scaled by {birge:.2f} - check the calibration and the line assignments"
         )
-    budget = _budget(lines, lam_m, lam_err_m, w, x, sxx, birge if scaled else 1.0)
+    # dR/dlambda_i: the fit's gain on y_i times dy_i/dlambda_i
+    slope_per_m = -(inverse @ x) / sxx / lam_m**2
+    budget = _budget(lines, slope_per_m, lam_err_m, covariance_nm2, birge if scaled else 1.0)
     budget["total_per_m"] = err
     codata, codata_err = codata_rydberg_hydrogen_per_m()
     difference = rydberg - codata
@@ -272,35 +297,102 @@ def fit_rydberg(lines) -> RydbergResult:
     )
 
 
-def _budget(lines, lam_m, lam_err_m, weight, x, sxx, scale) -> dict:
-    """The parts of the fit's 1-sigma: each line's variance parts propagated with dR/dlambda_i."""
-    # R = sum(w x y) / sum(w x^2) with y = 1/lambda, so dR/dlambda_i = -w_i x_i / (lambda_i^2 sum(w x^2)).
-    slope = -weight * x / (lam_m**2 * sxx)
+def _checked_covariance(covariance, lines) -> np.ndarray:
+    c = np.asarray(covariance, dtype=float)
+    k = len(lines)
+    if c.shape != (k, k) or not np.all(np.isfinite(c)):
+        raise InputError(f"`calibration_covariance_nm2` must be a finite {k} x {k} matrix (one row per line), was shape {c.shape}")
+    size = max(float(np.abs(c).max()), 1e-30)
+    if np.abs(c - c.T).max() > 1e-6 * size or np.linalg.eigvalsh(0.5 * (c + c.T)).min() < -1e-6 * size:
+        raise InputError("`calibration_covariance_nm2` must be symmetric and positive semi-definite")
+    if any(l.statistical_uncertainty_nm is None or not l.statistical_uncertainty_nm > 0 for l in lines):
+        raise InputError("a calibration covariance needs every line's positive statistical_uncertainty_nm "
+                         "(lines from find_balmer_lines have it)")
+    return 0.5 * (c + c.T)
+
+
+def calibration_covariance_nm2(solution, pixels) -> np.ndarray:
+    """Covariance (nm^2) of a wavelength solution's error between ``pixels``: J C J^T.
+
+    ``solution`` is a ``WavelengthSolution`` (or a calibration holding one); J is its wavelength's
+    derivative with respect to its coefficients at each pixel, by central differences a thousandth
+    of each coefficient's own 1-sigma wide (exact for a polynomial, linear within the uncertainty
+    for the grating model).
+    """
+    solution = _solution_of(solution)
+    pixels = np.atleast_1d(np.asarray(pixels, dtype=float))
+    coefficients = np.asarray(solution.coefficients, dtype=float)
+    cov = np.asarray(solution.covariance, dtype=float)
+    jac = np.zeros((pixels.size, coefficients.size))
+    for j in range(coefficients.size):
+        step = 1e-3 * float(np.sqrt(max(cov[j, j], 0.0))) or 1e-9 * max(abs(coefficients[j]), 1.0)
+        up, down = coefficients.copy(), coefficients.copy()
+        up[j] += step
+        down[j] -= step
+        jac[:, j] = (dataclasses.replace(solution, coefficients=tuple(up)).wavelength_nm(pixels)
+                     - dataclasses.replace(solution, coefficients=tuple(down)).wavelength_nm(pixels)) / (2 * step)
+    out = jac @ cov @ jac.T
+    return 0.5 * (out + out.T)
+
+
+def _solution_of(calibration):
+    from ..wavecal import WavelengthSolution
+
+    value = calibration
+    for name in ("wavelength", "solution"):  # Calibration -> WavelengthCalibration -> WavelengthSolution
+        if not isinstance(value, WavelengthSolution):
+            value = getattr(value, name, value)
+    if not isinstance(value, WavelengthSolution):
+        raise InputError(f"`calibration` must be a Calibration, WavelengthCalibration or WavelengthSolution, "
+                         f"got {type(calibration).__name__}")
+    return value
+
+
+def _budget(lines, slope_per_m, lam_err_m, covariance_nm2, scale) -> dict:
+    """The parts of the fit's 1-sigma: each part's (co)variance propagated with dR/dlambda_i."""
     stat = np.array([np.nan if l.statistical_uncertainty_nm is None else l.statistical_uncertainty_nm for l in lines]) * 1e-9
     cal = np.array([np.nan if l.calibration_uncertainty_nm is None else l.calibration_uncertainty_nm for l in lines]) * 1e-9
     known = np.isfinite(stat) & np.isfinite(cal)
     stat, cal = np.where(known, stat, 0.0), np.where(known, cal, 0.0)
     rest = np.where(known, lam_err_m**2 - stat**2 - cal**2, lam_err_m**2)
     rest = np.where(rest > 1e-9 * lam_err_m**2, rest, 0.0)  # rounding, not a part
-    part = lambda variance: float(scale * np.sqrt(np.sum(slope**2 * variance)))
+    part = lambda variance: float(scale * np.sqrt(np.sum(slope_per_m**2 * variance)))
+    if covariance_nm2 is None:
+        calibration = part(cal**2)
+        between = "independent"
+    else:
+        rest = np.zeros_like(rest)  # the full covariance replaces the lines' combined 1-sigma
+        calibration = float(scale * np.sqrt(max(float(slope_per_m @ (covariance_nm2 * 1e-18) @ slope_per_m), 0.0)))
+        between = "covariance of the wavelength solution"
+    excludes = [e for e in _BUDGET_EXCLUDES if covariance_nm2 is None or not e.startswith("the correlation")]
     return {
         "statistical_per_m": part(stat**2),
-        "calibration_per_m": part(cal**2),
+        "calibration_per_m": calibration,
         "unattributed_per_m": part(rest),
         "birge_scale": float(scale),
-        "calibration_between_lines": "independent",
+        "calibration_between_lines": between,
         "includes": list(_BUDGET_INCLUDES),
-        "excludes": list(_BUDGET_EXCLUDES),
+        "excludes": excludes,
     }
 
 
-def rydberg_from_spectrum(spectrum: Spectrum, *, window_nm: float | None = None, min_snr: float = 5.0) -> RydbergResult:
+def rydberg_from_spectrum(spectrum: Spectrum, *, window_nm: float | None = None, min_snr: float = 5.0,
+                          calibration=None) -> RydbergResult:
     """Find the Balmer lines of a hydrogen spectrum and fit the Rydberg constant.
+
+    Parameters
+    ----------
+    calibration : Calibration, WavelengthCalibration or WavelengthSolution, optional
+        The calibration that gave ``spectrum`` its wavelengths. With it the calibration's
+        error is carried with its covariance between the lines (their errors come from one
+        solution, so they are correlated); without it, as independent per-line 1-sigma.
 
     Raises
     ------
     AnalysisError
         When fewer than two Balmer lines are found.
+    InputError
+        ``calibration`` is not the one that gave the spectrum its wavelengths.
     """
     spectrum = require_calibrated(spectrum)
     lines = find_balmer_lines(spectrum, window_nm=window_nm, min_snr=min_snr)
@@ -312,4 +404,15 @@ def rydberg_from_spectrum(spectrum: Spectrum, *, window_nm: float | None = None,
             f"need at least 2 of H-alpha 656.3, H-beta 486.1, H-gamma 434.0, H-delta 410.2 nm; "
             "check the tube is hydrogen, the spectrum is calibrated and the lines are above the noise"
         )
-    return fit_rydberg(lines)
+    if calibration is None:
+        return fit_rydberg(lines)
+    solution = _solution_of(calibration)
+    wl = spectrum.wavelength_nm
+    own = solution.wavelength_nm(spectrum.pixel)
+    mismatch = float(np.max(np.abs(own - wl)))
+    if not mismatch <= 1e-6 * float(np.max(np.abs(wl))):
+        raise InputError(f"`calibration` is not the one that gave this spectrum its wavelengths (they differ by up to "
+                         f"{mismatch:.3g} nm); pass the spectrum's own calibration, or none")
+    order = np.argsort(wl)
+    pixels = np.interp([l.air_wavelength_nm for l in lines], wl[order], np.asarray(spectrum.pixel, dtype=float)[order])
+    return fit_rydberg(lines, calibration_covariance_nm2=calibration_covariance_nm2(solution, pixels))

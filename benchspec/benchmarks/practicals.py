@@ -160,6 +160,7 @@ def _rydberg_series(n_seeds: int, setup) -> dict:
     from ..pipeline import calibrate_frames, extract_frames
 
     pulls, values, sigmas, failures, records = [], [], [], [], []
+    covariance_pulls, covariance_sigmas = [], []
     for k in range(n_seeds):
         bench, cfl, jpeg, drawn = setup(k)
 
@@ -174,24 +175,34 @@ def _rydberg_series(n_seeds: int, setup) -> dict:
             failures.append({"seed": k, "stage": "calibration", "jpeg_quality": jpeg, "reason": f"{type(exc).__name__}: {exc}"[:240]})
             continue
         try:
-            result = rydberg_from_spectrum(extract_frames(frames("h", (100 + 2 * k, 101 + 2 * k)), own))
+            hydrogen = extract_frames(frames("h", (100 + 2 * k, 101 + 2 * k)), own)
+            result = rydberg_from_spectrum(hydrogen)
+            # the same lines with the calibration's error carried with its covariance between them
+            with_covariance = rydberg_from_spectrum(hydrogen, calibration=own)
         except Exception as exc:
             failures.append({"seed": k, "stage": "rydberg", "jpeg_quality": jpeg, "reason": f"{type(exc).__name__}: {exc}"[:240]})
             continue
         pulls.append(result.difference_sigma)
         values.append(result.rydberg_per_m)
         sigmas.append(result.uncertainty_per_m)
+        covariance_pulls.append(with_covariance.difference_sigma)
+        covariance_sigmas.append(with_covariance.uncertainty_per_m)
         record.update(model=own.wavelength.solution.model, pull=float(result.difference_sigma),
-                      uncertainty_per_m=float(result.uncertainty_per_m), lines=len(result.lines), scaled=bool(result.scaled))
+                      uncertainty_per_m=float(result.uncertainty_per_m), lines=len(result.lines), scaled=bool(result.scaled),
+                      pull_with_covariance=float(with_covariance.difference_sigma),
+                      uncertainty_with_covariance_per_m=float(with_covariance.uncertainty_per_m))
         records.append(record)
     out = {"seeds": n_seeds, "failures": len(failures), "failed": failures, **_pull_summary(pulls, sigmas),
-           "mean_rydberg_per_m": float(np.mean(values)) if values else None}
+           "mean_rydberg_per_m": float(np.mean(values)) if values else None,
+           "with_covariance": _pull_summary(covariance_pulls, covariance_sigmas)}
     by = {}
     for label, keep in (("png", lambda r: r["jpeg_quality"] is None), ("jpeg", lambda r: r["jpeg_quality"] is not None),
                         ("grating_model", lambda r: r["model"] == "grating"), ("polynomial", lambda r: r["model"] == "polynomial")):
         chosen = [r for r in records if keep(r)]
         if chosen and len(chosen) < len(records):
             by[label] = _pull_summary([r["pull"] for r in chosen], [r["uncertainty_per_m"] for r in chosen])
+            by[label]["with_covariance"] = _pull_summary([r["pull_with_covariance"] for r in chosen],
+                                                         [r["uncertainty_with_covariance_per_m"] for r in chosen])
     out["by"] = by
     out["per_seed"] = records
     return out
@@ -359,8 +370,13 @@ def format_report(figures: dict) -> str:
                      + (f" (68%: {interval[0]:.2f}-{interval[1]:.2f}; an honest sigma gives {honest[0]:.2f}-{honest[1]:.2f})"
                         if interval and honest else "")
                      + f"; median sigma {f(rv['median_uncertainty_per_m'], '.0f')} /m")
+        cv = rv.get("with_covariance")
+        if cv and cv["pulls"]:
+            lines.append(f"    with the calibration's covariance between lines: pull mean {f(cv['pull_mean'], '+.2f')}, "
+                         f"width {f(cv['pull_width'], '.2f')}; median sigma {f(cv['median_uncertainty_per_m'], '.0f')} /m")
         for label, part in rv.get("by", {}).items():
-            lines.append(f"    {label}: {part['pulls']} pulls, mean {f(part['pull_mean'], '+.2f')}, width {f(part['pull_width'], '.2f')}, "
+            lines.append(f"    {label}: {part['pulls']} pulls, mean {f(part['pull_mean'], '+.2f')}, width {f(part['pull_width'], '.2f')} "
+                         f"(with covariance {f(part['with_covariance']['pull_width'], '.2f')}), "
                          f"median sigma {f(part['median_uncertainty_per_m'], '.0f')} /m")
     lines.append(f"  response (virtual halogen 2900 K): worst deviation {100 * v['response']['max_deviation']:.2f}% (target <= 2%), "
                  f"valid {v['response']['valid_range_nm'][0]:.0f}-{v['response']['valid_range_nm'][1]:.0f} nm")
