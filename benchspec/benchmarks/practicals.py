@@ -199,7 +199,7 @@ def _rydberg_series(n_seeds: int, setup) -> dict:
     for label, keep in (("png", lambda r: r["jpeg_quality"] is None), ("jpeg", lambda r: r["jpeg_quality"] is not None),
                         ("grating_model", lambda r: r["model"] == "grating"), ("polynomial", lambda r: r["model"] == "polynomial")):
         chosen = [r for r in records if keep(r)]
-        if chosen and len(chosen) < len(records):
+        if len(chosen) >= 2 and len(chosen) < len(records):  # a breakdown, of groups that have a width
             by[label] = _pull_summary([r["pull"] for r in chosen], [r["uncertainty_per_m"] for r in chosen])
             by[label]["with_covariance"] = _pull_summary([r["pull_with_covariance"] for r in chosen],
                                                          [r["uncertainty_with_covariance_per_m"] for r in chosen])
