@@ -207,7 +207,7 @@ class BenchProcessor:
         self.last_spectrum: Spectrum | None = None
         self._columns_kept: tuple[int, int] | None = None
         self._live_lines_cache: tuple[int, tuple[LiveLine, ...]] = (-999, ())
-        self.lines_every_n_frames = 12
+        self.lines_every_n_frames = 1
         self._geometry_failure: tuple[float, BenchspecError] | None = None
         # Lines are named after the calibration lamp's lines only while that lamp is in view
         # (until another source is opened); afterwards only an identification names them.
@@ -346,21 +346,26 @@ class BenchProcessor:
                           note=note)
 
     def _live_lines(self, frame_index, axis, is_wl, intensity, saturated, variance=None) -> tuple[LiveLine, ...]:
-        """Line marks from the core's line finder (``lines.find_lines``), refreshed every few frames.
+        """Line marks of the spectrum shown.
 
-        Fitting takes 10-40 ms, so the live view refits every
-        :attr:`lines_every_n_frames` frames and reuses the marks in between.
+        Live frames (``frame_index >= 0``) get the live finder,
+        ``lines.find_lines_quick`` (well under a millisecond), on every frame,
+        refreshed every :attr:`lines_every_n_frames` frames (1: every frame).
+        A held spectrum (``frame_index < 0``: a held frame or stack) gets the
+        full least-squares ``lines.find_lines`` (10-40 ms), as saved spectra do.
         """
         last, cached = self._live_lines_cache
         if frame_index >= 0 and 0 <= frame_index - last < self.lines_every_n_frames and cached:
             return cached
-        marks = _core_marks(axis, is_wl, intensity, saturated, variance)
-        labelled = tuple(self._label(m) if is_wl else m for m in marks)
-        self._live_lines_cache = (frame_index, labelled)
-        return labelled
+        marks = _core_marks(axis, is_wl, intensity, saturated, variance, quick=frame_index >= 0)
+        if is_wl and marks:
+            known = self._known_lines()
+            marks = tuple(self._label(m, known) for m in marks)
+        self._live_lines_cache = (frame_index, marks)
+        return marks
 
-    def _label(self, mark: LiveLine) -> LiveLine:
-        """Name a mark on the wavelength axis after the reference line it matches (identification first)."""
+    def _known_lines(self) -> tuple[np.ndarray, list[tuple[float, float, str]]]:
+        """(observed nm, [(observed, reference, species)]) the marks are named after: identification first."""
         known: list[tuple[float, float, str]] = []  # observed, reference, species
         if self.identification is not None:
             for match in self.identification.ranked:
@@ -368,9 +373,13 @@ class BenchProcessor:
                     known.append((float(line["observed_nm"]), float(line["reference_nm"]), match["symbol"]))
         if self.calibration is not None and self.label_with_lamp:
             known += [(row["wavelength_nm"], row["wavelength_nm"], row["species"]) for row in self.calibration.rows]
+        return np.array([k[0] for k in known], dtype=float), known
+
+    def _label(self, mark: LiveLine, known=None) -> LiveLine:
+        """Name a mark on the wavelength axis after the reference line it matches (``known``: :meth:`_known_lines`)."""
+        observed, known = self._known_lines() if known is None else known
         species, reference = "", None
         if known:
-            observed = np.array([k[0] for k in known])
             nearest = int(np.argmin(np.abs(observed - mark.position)))
             if abs(observed[nearest] - mark.position) <= 1.5:
                 _, reference, species = known[nearest]
@@ -676,12 +685,15 @@ def _overlay_of(geometry) -> BandOverlay:
                        description=f"band at {geometry.rotation_deg:+.2f} deg, {curvature}")
 
 
-def _core_marks(axis, is_wl, intensity, saturated, variance, *, max_marks: int = 14) -> tuple[LiveLine, ...]:
-    """The strongest emission lines of a live spectrum, fitted by ``benchspec.lines.find_lines``."""
+def _core_marks(axis, is_wl, intensity, saturated, variance, *, max_marks: int = 14,
+                quick: bool = False) -> tuple[LiveLine, ...]:
+    """The strongest emission lines of a spectrum, by ``lines.find_lines`` (``quick``: ``lines.find_lines_quick``)."""
     import warnings
 
     from ..errors import LineError
-    from ..lines import find_lines
+    from ..lines import find_lines, find_lines_quick
+
+    finder = find_lines_quick if quick else find_lines
 
     if intensity.size < 16 or not np.any(intensity > 0):
         return ()
@@ -695,7 +707,7 @@ def _core_marks(axis, is_wl, intensity, saturated, variance, *, max_marks: int =
                             saturated=saturated[order], **kwargs)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            table = find_lines(spectrum, min_snr=10.0, max_lines=max_marks)
+            table = finder(spectrum, min_snr=10.0, max_lines=max_marks)
     except (LineError, BenchspecError):
         return ()
     marks = []
