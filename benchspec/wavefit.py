@@ -310,11 +310,12 @@ def _polyval(x, coeffs):
 
 
 def _derivative_coeffs(coeffs):
-    """Coefficients of the derivative (as numpy.polynomial.polynomial.polyder: k * c_k)."""
+    """Coefficients of the derivative (as numpy.polynomial.polynomial.polyder: k * c_k, the same values)."""
     c = np.asarray(coeffs, dtype=float)
     if c.size <= 1:
         return c[:1] * 0.0
-    return c[1:] * np.arange(1, c.size)
+    values = c.tolist()
+    return np.array([k * values[k] for k in range(1, len(values))])
 
 
 def _median(x):
@@ -339,7 +340,7 @@ def _normal_solve(a, b, normal, rhs):
         inverse = np.linalg.inv(normal)
     except np.linalg.LinAlgError:
         return None
-    bound = float(np.trace(normal)) * float(np.trace(inverse))
+    bound = float(normal.trace()) * float(inverse.trace())
     if not 0.0 < bound < _NORMAL_COND_LIMIT:
         return None
     coeffs = inverse @ rhs
@@ -524,7 +525,8 @@ def _select_order(t, lam, sigma, keep, *, max_order, monotonic_t):
         solved = _normal_solve(ap, b, normal[:p, :p], rhs[:p])
         coeffs, cov = solved if solved is not None else _lstsq_polyfit(vander[:, :p], lk, sk)
         if order > 1:
-            deriv = _polyval(monotonic_t, _derivative_coeffs(coeffs))
+            c = coeffs.tolist()
+            deriv = _polyval(monotonic_t, [k * c[k] for k in range(1, p)])  # the derivative, by Horner
             if not (np.all(deriv > 0) or np.all(deriv < 0)):
                 continue  # a fold inside the range is never physical
         chi2 = float(np.sum(((lk - vander[:, :p] @ coeffs) / sk) ** 2))
