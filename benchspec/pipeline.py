@@ -613,8 +613,27 @@ def _utc_now() -> str:
     return _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")
 
 
-def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None):
-    """The same items, produced by a second thread at most ``depth`` ahead (OpenCV decodes without the GIL).
+def _nbytes(item) -> int:
+    """Bytes of the arrays an item holds (a frame, or a tuple with a frame and its prepared arrays)."""
+    if isinstance(item, np.ndarray):
+        return item.nbytes
+    if isinstance(item, tuple):
+        return sum(_nbytes(part) for part in item)
+    return 0
+
+
+#: decoded frames may wait in the queue up to this many bytes (and always ``depth`` frames): while the
+#: first frame sets up the series (noise model, extractor, band check: some 50-100 ms) the decoding
+#: thread keeps decoding instead of idling after ``depth`` frames
+_AHEAD_BYTES = 64_000_000
+
+
+def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None, max_bytes: int | None = None):
+    """The same items, produced by a second thread ahead of the consumer (OpenCV decodes without the GIL).
+
+    At most ``depth`` items wait, or more while they hold at most
+    ``max_bytes`` (default :data:`_AHEAD_BYTES`): memory stays bounded
+    whatever the length of the series.
 
     With ``work``, each item ``(path, index, frame, is_bgr)`` comes out as
     ``(path, index, frame, is_bgr, prepared)``: ``prepared`` is
@@ -623,17 +642,31 @@ def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None):
     the consumer then does the work and meets the error itself).
 
     The work is shared out as the two threads keep pace: the second thread
-    does it only while at least ``work["ahead"]`` items (default 2) wait in
-    the queue, i.e. while decoding is ahead of the consumer; when the
-    consumer waits for frames it gets them raw and prepares them itself.
-    Which thread prepares a frame does not change the result.
+    does it only while at least ``work["ahead"]`` items (default 2) wait,
+    i.e. while decoding is ahead of the consumer; when the consumer waits for
+    frames it gets them raw and prepares them itself. Which thread prepares a
+    frame does not change the result.
     """
-    import queue
+    import collections
     import threading
 
-    mailbox: queue.Queue = queue.Queue(maxsize=depth)  # bounded: memory stays flat whatever the length
+    budget = _AHEAD_BYTES if max_bytes is None else int(max_bytes)
+    waiting: collections.deque = collections.deque()  # (item, bytes)
+    state = {"bytes": 0}
+    changed = threading.Condition()
     stop = threading.Event()
     done = object()
+
+    def put(item, size: int) -> bool:
+        with changed:
+            while len(waiting) >= depth and state["bytes"] + size > budget:
+                if stop.is_set():
+                    return False
+                changed.wait(0.1)
+            waiting.append((item, size))
+            state["bytes"] += size
+            changed.notify_all()
+        return True
 
     def produce():
         try:
@@ -641,29 +674,30 @@ def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None):
                 if work is not None:
                     prepare = work.get("prepare")
                     prepared = None
-                    if prepare is not None and mailbox.qsize() >= work.get("ahead", 2):
+                    if prepare is not None and len(waiting) >= work.get("ahead", 2):
                         try:
                             prepared = prepare(item[2], bgr=item[3])
                         except Exception:  # the consumer repeats the work and reports the error
                             prepared = None
                     item = (*item, prepared)
-                while not stop.is_set():
-                    try:
-                        mailbox.put(item, timeout=0.1)
-                        break
-                    except queue.Full:
-                        continue
-                if stop.is_set():
+                if stop.is_set() or not put(item, _nbytes(item)):
                     return
-            mailbox.put(done)
+            put(done, 0)
         except BaseException as exc:  # handed to the consumer, raised there
-            mailbox.put(exc)
+            with changed:
+                waiting.append((exc, 0))
+                changed.notify_all()
 
     worker = threading.Thread(target=produce, name="benchspec-decode", daemon=True)
     worker.start()
     try:
         while True:
-            item = mailbox.get()
+            with changed:
+                while not waiting:
+                    changed.wait()
+                item, size = waiting.popleft()
+                state["bytes"] -= size
+                changed.notify_all()
             if item is done:
                 return
             if isinstance(item, BaseException):
@@ -671,6 +705,8 @@ def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None):
             yield item
     finally:
         stop.set()
+        with changed:
+            changed.notify_all()
         worker.join(timeout=5)
 
 

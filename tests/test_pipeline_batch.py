@@ -131,3 +131,36 @@ def test_live_extractor_bgr_frames_equal_rgb_frames(video, mean_calibration):
         # the channels really are weighed unequally: the frame read as RGB gives another spectrum
         wrong = live.process_raw_arrays(bgr)
         assert not np.allclose(wrong[0], rgb_result[0], rtol=1e-3, atol=1e-3 * scale)
+
+
+def test_frames_decoded_ahead_are_bounded_by_count_and_bytes():
+    """While the consumer is busy the decoding thread runs ahead: past ``depth`` frames, up to the byte budget."""
+    import time
+
+    produced = []
+
+    def frames_of_one_megabyte(n):
+        for k in range(n):
+            produced.append(k)
+            yield np.full(1_000_000, k % 256, np.uint8)
+
+    ahead = pipeline._decoded_ahead(frames_of_one_megabyte(40), depth=2, max_bytes=5_500_000)
+    first = next(ahead)
+    deadline = time.monotonic() + 10.0
+    while len(produced) < 7 and time.monotonic() < deadline:  # 5 waiting (5.5 MB), one in the producer's hands
+        time.sleep(0.01)
+    time.sleep(0.05)
+    assert len(produced) == 7, len(produced)  # past depth=2, and no further than the budget
+    seen = [int(first[0])] + [int(item[0]) for item in ahead]
+    assert seen == [k % 256 for k in range(40)]  # every frame once, in order
+
+
+def test_an_error_while_decoding_ahead_reaches_the_consumer_after_the_frames_before_it():
+    def failing():
+        yield np.zeros(10, np.uint8)
+        raise OSError("disk went away")
+
+    ahead = pipeline._decoded_ahead(failing())
+    assert next(ahead).size == 10
+    with pytest.raises(OSError, match="disk went away"):
+        next(ahead)
