@@ -1054,18 +1054,23 @@ class LiveExtractor:
         roi = frame[self.y0:self.y1, self.x0:self.x1]
         return self.process_prepared(*self._region_preparer(bgr).prepare_live(roi, buffers=self._prepare_buffers))
 
-    def prepare_raw(self, frame: np.ndarray, *, bgr: bool = False) -> tuple[np.ndarray, np.ndarray | None]:
+    def prepare_raw(self, frame: np.ndarray, *, bgr: bool = False,
+                    buffers: dict | None = None) -> tuple[np.ndarray, np.ndarray | None]:
         """The linearised region of one raw frame and its clipping mask (None when nothing clipped).
 
         Safe to call from another thread than :meth:`process_prepared`
-        (its arrays are new, no buffer is shared): a batch reader can
-        linearise frame n+1 while frame n is extracted.
+        (its arrays are new, no buffer of the extractor is shared): a batch
+        reader can linearise frame n+1 while frame n is extracted.
+        ``buffers`` (a dict kept by the caller, as in
+        :meth:`benchspec.frames.FramePreparer.prepare_live`) is written
+        instead of new arrays: the image returned is then overwritten by the
+        next call with the same dict.
         ``process_prepared(*prepare_raw(frame))`` equals
         ``process_raw_arrays(frame)``; ``bgr`` as there.
         """
         frame = np.asarray(frame)
         check_frame_size(frame.shape, self.geometry)
-        return self._region_preparer(bgr).prepare_live(frame[self.y0:self.y1, self.x0:self.x1])
+        return self._region_preparer(bgr).prepare_live(frame[self.y0:self.y1, self.x0:self.x1], buffers=buffers)
 
     def process_prepared(self, image_roi: np.ndarray, sat_roi: np.ndarray | None = None):
         """(intensity, variance, saturated) from :meth:`prepare_raw`'s region and mask."""

@@ -466,9 +466,14 @@ def iter_extract_frames(
 ):
     """One calibrated spectrum per frame, streamed: a time series of any length in bounded memory.
 
-    Frames are decoded on a second thread, a few ahead (a bounded queue), and
-    go through one :class:`~benchspec.extract.LiveExtractor` built from the
-    calibration's geometry (remap tables and aperture weights computed once).
+    Frames are decoded on a second thread, a few ahead (a bounded queue; up
+    to 64 MB while the first frame sets the series up), and go through one
+    :class:`~benchspec.extract.LiveExtractor` built from the calibration's
+    geometry (remap tables and aperture weights computed once). Video frames
+    stay in the decoder's B, G, R order (the channel weights are reversed
+    instead of converting every frame); the decoding thread also linearises a
+    frame's region while it is ahead of the extraction, so the two threads
+    share the work. Neither changes a spectrum beyond float32 rounding.
     The default bilinear resampling is about three times faster than the
     bicubic one used for stacked frames; lines come out about 7% wider, their
     centres and fluxes are unchanged (``interpolation="cubic"`` to match the
@@ -622,18 +627,19 @@ def _nbytes(item) -> int:
     return 0
 
 
-#: decoded frames may wait in the queue up to this many bytes (and always ``depth`` frames): while the
-#: first frame sets up the series (noise model, extractor, band check: some 50-100 ms) the decoding
-#: thread keeps decoding instead of idling after ``depth`` frames
+#: while the first frame sets up the series (noise model, extractor, band check: some 50-100 ms), decoded
+#: frames may wait up to this many bytes instead of ``depth`` frames: the decoding thread keeps decoding
+#: instead of idling (afterwards ``depth`` again: frames handed over soon are still in the caches)
 _AHEAD_BYTES = 64_000_000
 
 
 def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None, max_bytes: int | None = None):
     """The same items, produced by a second thread ahead of the consumer (OpenCV decodes without the GIL).
 
-    At most ``depth`` items wait, or more while they hold at most
-    ``max_bytes`` (default :data:`_AHEAD_BYTES`): memory stays bounded
-    whatever the length of the series.
+    At most ``depth`` items wait; while the consumer is still setting up
+    (``work`` given, no ``"prepare"`` in it yet) more may, as long as they
+    hold at most ``max_bytes`` (default :data:`_AHEAD_BYTES`). Memory stays
+    bounded whatever the length of the series.
 
     With ``work``, each item ``(path, index, frame, is_bgr)`` comes out as
     ``(path, index, frame, is_bgr, prepared)``: ``prepared`` is
@@ -657,9 +663,12 @@ def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None, max_bytes
     stop = threading.Event()
     done = object()
 
+    def warming() -> bool:  # the consumer is still setting up (work given, no "prepare" in it yet)
+        return work is not None and work.get("prepare") is None
+
     def put(item, size: int) -> bool:
         with changed:
-            while len(waiting) >= depth and state["bytes"] + size > budget:
+            while len(waiting) >= depth and (not warming() or state["bytes"] + size > budget):
                 if stop.is_set():
                     return False
                 changed.wait(0.1)
@@ -668,15 +677,19 @@ def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None, max_bytes
             changed.notify_all()
         return True
 
+    # once the consumer is set up at most ``depth`` items wait, one is being used and one is being made:
+    # the prepared arrays cycle through depth + 3 buffers, so none is overwritten while still in use
+    rings = [{} for _ in range(depth + 3)]
+
     def produce():
         try:
-            for item in items:
+            for count, item in enumerate(items):
                 if work is not None:
                     prepare = work.get("prepare")
                     prepared = None
                     if prepare is not None and len(waiting) >= work.get("ahead", 2):
                         try:
-                            prepared = prepare(item[2], bgr=item[3])
+                            prepared = prepare(item[2], bgr=item[3], buffers=rings[count % len(rings)])
                         except Exception:  # the consumer repeats the work and reports the error
                             prepared = None
                     item = (*item, prepared)

@@ -133,8 +133,8 @@ def test_live_extractor_bgr_frames_equal_rgb_frames(video, mean_calibration):
         assert not np.allclose(wrong[0], rgb_result[0], rtol=1e-3, atol=1e-3 * scale)
 
 
-def test_frames_decoded_ahead_are_bounded_by_count_and_bytes():
-    """While the consumer is busy the decoding thread runs ahead: past ``depth`` frames, up to the byte budget."""
+def test_frames_decoded_ahead_are_bounded_by_bytes_while_setting_up_then_by_count():
+    """While the consumer sets up, the decoding thread runs past ``depth`` frames up to the byte budget."""
     import time
 
     produced = []
@@ -142,17 +142,28 @@ def test_frames_decoded_ahead_are_bounded_by_count_and_bytes():
     def frames_of_one_megabyte(n):
         for k in range(n):
             produced.append(k)
-            yield np.full(1_000_000, k % 256, np.uint8)
+            yield None, k, np.full(1_000_000, k % 256, np.uint8), False
 
-    ahead = pipeline._decoded_ahead(frames_of_one_megabyte(40), depth=2, max_bytes=5_500_000)
+    def wait_for(count):
+        deadline = time.monotonic() + 10.0
+        while len(produced) < count and time.monotonic() < deadline:
+            time.sleep(0.01)
+        time.sleep(0.05)
+        return len(produced)
+
+    work: dict = {"ahead": 10**6}  # no "prepare" yet: the consumer is setting up
+    ahead = pipeline._decoded_ahead(frames_of_one_megabyte(40), depth=2, work=work, max_bytes=5_500_000)
     first = next(ahead)
-    deadline = time.monotonic() + 10.0
-    while len(produced) < 7 and time.monotonic() < deadline:  # 5 waiting (5.5 MB), one in the producer's hands
-        time.sleep(0.01)
-    time.sleep(0.05)
-    assert len(produced) == 7, len(produced)  # past depth=2, and no further than the budget
-    seen = [int(first[0])] + [int(item[0]) for item in ahead]
-    assert seen == [k % 256 for k in range(40)]  # every frame once, in order
+    # 5 waiting (5.5 MB), one taken, one in the producer's hands: past depth=2, no further than the budget
+    assert wait_for(7) == 7
+    work["prepare"] = lambda frame, bgr, buffers: (frame, None)  # set up: from now on at most depth=2 wait
+    seen = [first]
+    for _ in range(5):  # the five waiting frames
+        seen.append(next(ahead))
+    assert wait_for(9) == 9  # frames 6 and 7 waiting (depth=2), frame 8 in hand
+    seen += list(ahead)
+    assert [int(item[1]) for item in seen] == list(range(40))  # every frame once, in order
+    assert all(int(item[2][0]) == item[1] % 256 for item in seen)
 
 
 def test_an_error_while_decoding_ahead_reaches_the_consumer_after_the_frames_before_it():
