@@ -119,8 +119,8 @@ def _problem(rng, kind, n, order=3):
     """(t, lam, sigma): a calibration-like curve (400-700 nm over t in [-1, 1]) with noise and outliers.
 
     ``well``: lines spread over the span, sigma 0.02-0.3 nm (tight centres and loose features);
-    ``ill``: lines bunched into a small part of the span and sigma over 4 decades, which drives
-    cond(A^T A) to 1e6-1e14; ``outliers``: a few lines moved by 20-60 sigma.
+    ``ill``: lines bunched into a small part of the span and sigma over 4 decades (cond(A^T A) from
+    about 1e3 to 1e18, median 6e8: most take the SVD path); ``outliers``: a few lines moved by 20-60 sigma.
     """
     if kind == "ill":
         t = np.sort(rng.uniform(0.6, 0.6 + rng.choice([0.02, 0.2, 0.4]), n))
