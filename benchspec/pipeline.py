@@ -579,8 +579,15 @@ def _iter_extract(frames, calibration, *, dark, extraction, band_check_every, in
             base = None
         elif series_index % band_check_every == 0:
             _check_frame_size(np.shape(frame), calibration, cal_path, label)
-            # the linear frame is all the check needs: no stack statistics (a stack of one costs 5 times more)
-            band = _check_band((preparer_bgr if bgr else preparer).prepare(frame)[0], calibration, label)
+            # the linear frame is all the check needs: no stack statistics (a stack of one costs 5 times more);
+            # meanwhile the decoding thread may run further ahead (a check costs some 5-10 frames' extraction)
+            ahead_work["busy"] = True
+            if "wake" in ahead_work:
+                ahead_work["wake"]()
+            try:
+                band = _check_band((preparer_bgr if bgr else preparer).prepare(frame)[0], calibration, label)
+            finally:
+                ahead_work["busy"] = False
             base = None
         if base is None:  # the record shared by the frames until the next band check
             base = build_provenance(
@@ -627,9 +634,10 @@ def _nbytes(item) -> int:
     return 0
 
 
-#: while the first frame sets up the series (noise model, extractor, band check: some 50-100 ms), decoded
-#: frames may wait up to this many bytes instead of ``depth`` frames: the decoding thread keeps decoding
-#: instead of idling (afterwards ``depth`` again: frames handed over soon are still in the caches)
+#: while the first frame sets up the series (noise model, extractor, band check: some 50-100 ms) and during
+#: the later band checks, decoded frames may wait up to this many bytes instead of ``depth`` frames: the
+#: decoding thread keeps decoding instead of idling (otherwise ``depth``: frames handed over soon are still
+#: in the caches)
 _AHEAD_BYTES = 64_000_000
 
 
@@ -637,9 +645,10 @@ def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None, max_bytes
     """The same items, produced by a second thread ahead of the consumer (OpenCV decodes without the GIL).
 
     At most ``depth`` items wait; while the consumer is still setting up
-    (``work`` given, no ``"prepare"`` in it yet) more may, as long as they
-    hold at most ``max_bytes`` (default :data:`_AHEAD_BYTES`). Memory stays
-    bounded whatever the length of the series.
+    (``work`` given, no ``"prepare"`` in it yet) or says it is busy
+    (``work["busy"]`` true, then ``work["wake"]()``) more may, as long as
+    they hold at most ``max_bytes`` (default :data:`_AHEAD_BYTES`). Memory
+    stays bounded whatever the length of the series.
 
     With ``work``, each item ``(path, index, frame, is_bgr)`` comes out as
     ``(path, index, frame, is_bgr, prepared)``: ``prepared`` is
@@ -648,8 +657,9 @@ def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None, max_bytes
     the consumer then does the work and meets the error itself).
 
     The work is shared out as the two threads keep pace: the second thread
-    does it only while at least ``work["ahead"]`` items (default 2) wait,
-    i.e. while decoding is ahead of the consumer; when the consumer waits for
+    does it only while at least ``work["ahead"]`` items (default 2) and at
+    most ``depth`` wait, i.e. while decoding is ahead of the consumer but not
+    with a backlog from the set-up or a band check; when the consumer waits for
     frames it gets them raw and prepares them itself. Which thread prepares a
     frame does not change the result.
     """
@@ -663,8 +673,15 @@ def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None, max_bytes
     stop = threading.Event()
     done = object()
 
-    def warming() -> bool:  # the consumer is still setting up (work given, no "prepare" in it yet)
-        return work is not None and work.get("prepare") is None
+    def warming() -> bool:  # the consumer is setting up (no "prepare" yet) or busy with a band check
+        return work is not None and (work.get("prepare") is None or bool(work.get("busy")))
+
+    def wake() -> None:
+        with changed:
+            changed.notify_all()
+
+    if work is not None:
+        work["wake"] = wake
 
     def put(item, size: int) -> bool:
         with changed:
@@ -677,8 +694,9 @@ def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None, max_bytes
             changed.notify_all()
         return True
 
-    # once the consumer is set up at most ``depth`` items wait, one is being used and one is being made:
-    # the prepared arrays cycle through depth + 3 buffers, so none is overwritten while still in use
+    # a frame is prepared only while at most ``depth`` items wait (never into a backlog left by the set-up
+    # or a band check): then the consumer holds one of the last depth + 1 items and is done with all
+    # older ones, so prepared arrays cycling through depth + 3 buffers are never overwritten in use
     rings = [{} for _ in range(depth + 3)]
 
     def produce():
@@ -687,7 +705,7 @@ def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None, max_bytes
                 if work is not None:
                     prepare = work.get("prepare")
                     prepared = None
-                    if prepare is not None and len(waiting) >= work.get("ahead", 2):
+                    if prepare is not None and work.get("ahead", 2) <= len(waiting) <= depth:
                         try:
                             prepared = prepare(item[2], bgr=item[3], buffers=rings[count % len(rings)])
                         except Exception:  # the consumer repeats the work and reports the error

@@ -175,3 +175,35 @@ def test_an_error_while_decoding_ahead_reaches_the_consumer_after_the_frames_bef
     assert next(ahead).size == 10
     with pytest.raises(OSError, match="disk went away"):
         next(ahead)
+
+
+def test_buffers_prepared_ahead_are_not_overwritten_while_waiting_or_in_use():
+    """The decoding thread reuses a ring of buffers; across busy spells (band checks) none is overwritten early."""
+    import time
+
+    def numbered(n):
+        for k in range(n):
+            yield None, k, np.full(200_000, k, np.int32), False
+
+    def prepare(frame, bgr, buffers):
+        image = buffers.setdefault("image", np.empty(frame.shape, np.int32))
+        image[...] = frame  # the frame's number, written into a reused buffer
+        return image, None
+
+    work: dict = {"ahead": 0}
+    ahead = pipeline._decoded_ahead(numbered(300), depth=3, work=work, max_bytes=20_000_000)
+    work["prepare"] = prepare
+    prepared = 0
+    for path, index, frame, bgr, ready in ahead:
+        if ready is not None:
+            prepared += 1
+            assert np.all(ready[0] == index)  # still this frame's numbers
+        if index % 37 == 0:  # a busy spell: the decoding thread may run up to 20 MB (12 frames) ahead
+            work["busy"] = True
+            work["wake"]()
+            time.sleep(0.02)
+            work["busy"] = False
+        if ready is not None and index % 5 == 0:
+            time.sleep(0.002)  # hold the buffer a while, as an extraction does
+            assert np.all(ready[0] == index)
+    assert prepared > 100  # the decoding thread did prepare most frames
