@@ -1237,10 +1237,6 @@ def _measure_curvature(band, sat_band, *, centre_index, half_height, s0, min_snr
         coef, cov, keep, rms = _robust_line_fit(t, x, np.minimum(w, 1e4), degree=2, floor=0.05)
         if keep.sum() < 5 or not np.isfinite(cov).all():
             continue
-        if rms > max(1.0, 0.5 * fwhm):
-            # One slit image is a smooth curve: a trace this far off a parabola has jumped
-            # between neighbouring lines (dense spectra, tall slits) and measures nothing.
-            continue
         line_s.append(coef[0] + s0)
         line_b.append(coef[1])
         line_c.append(coef[2])
