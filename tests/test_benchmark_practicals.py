@@ -71,3 +71,17 @@ def test_a_refused_calibration_is_counted_with_its_reason():
     assert series["seeds"] == 1 and series["failures"] == 1 and series["pulls"] == 0
     assert series["failed"][0]["stage"] == "calibration" and series["failed"][0]["reason"]
     assert series["pull_width"] is None and series["per_seed"] == []
+
+
+def test_line_summary_is_the_rms_over_seeds():
+    rows = [{"calibration_error_nm": e, "calibration_sigma_nm": s, "centre_error_px": c, "centre_statistical_px": 0.01}
+            for e, s, c in ((0.03, 0.02, 0.01), (-0.01, 0.02, -0.03))]
+    records = [{"lines_vs_truth": {"H-beta": rows[0], "H-alpha": rows[0]}}, {"lines_vs_truth": {"H-beta": rows[1]}}]
+    summary = practicals._summarise_lines(records)
+    assert list(summary) == ["H-alpha", "H-beta"]  # by upper level
+    beta = summary["H-beta"]
+    assert beta["seeds"] == 2
+    assert beta["calibration_error_rms_nm"] == pytest.approx(np.sqrt((0.03**2 + 0.01**2) / 2))
+    assert beta["calibration_pull_rms"] == pytest.approx(np.sqrt((1.5**2 + 0.5**2) / 2))
+    assert beta["centre_error_rms_px"] == pytest.approx(np.sqrt((0.01**2 + 0.03**2) / 2))
+    assert summary["H-alpha"]["seeds"] == 1

@@ -55,6 +55,7 @@ def _synthetic_rydberg(n_seeds: int) -> dict:
     pulls, values = [], []
     for _ in range(n_seeds):
         result = rydberg_from_spectrum(as_spectrum(wl, rng.poisson(mean).astype(float), uncertainty=np.sqrt(mean)))
+        record["lines_vs_truth"] = _lines_vs_truth(result, hydrogen, own, simulate.render(bench, seed=100 + 2 * k, source="h").truth)
         pulls.append(result.difference_sigma)
         values.append(result.rydberg_per_m)
     pulls = np.array(pulls)
@@ -182,6 +183,7 @@ def _rydberg_series(n_seeds: int, setup) -> dict:
         except Exception as exc:
             failures.append({"seed": k, "stage": "rydberg", "jpeg_quality": jpeg, "reason": f"{type(exc).__name__}: {exc}"[:240]})
             continue
+        record["lines_vs_truth"] = _lines_vs_truth(result, hydrogen, own, simulate.render(bench, seed=100 + 2 * k, source="h").truth)
         pulls.append(result.difference_sigma)
         values.append(result.rydberg_per_m)
         sigmas.append(result.uncertainty_per_m)
@@ -204,8 +206,55 @@ def _rydberg_series(n_seeds: int, setup) -> dict:
             by[label]["with_covariance"] = _pull_summary([r["pull_with_covariance"] for r in chosen],
                                                          [r["uncertainty_with_covariance_per_m"] for r in chosen])
     out["by"] = by
+    out["lines_vs_truth"] = _summarise_lines(records)
     out["per_seed"] = records
     return out
+
+
+def _lines_vs_truth(result, spectrum, calibration, truth) -> dict:
+    """Per Balmer line: the calibration's true error at the line's pixel and the line centre's own error.
+
+    The truth is the simulator's pixel-to-wavelength mapping and its rendered lines (the H lines at
+    their NIST ASD wavelengths from calibration/lines/H.csv): ``calibration_error_nm`` = solution
+    minus truth at the measured pixel, against ``calibration_sigma_nm`` the solution's stated
+    1-sigma there; ``centre_error_px`` = measured minus true pixel of the line, against
+    ``centre_statistical_px`` the line fit's own 1-sigma.
+    """
+    from .accuracy import truth_wavelength_at
+
+    solution = calibration.wavelength.solution
+    order = np.argsort(spectrum.wavelength_nm)
+    rendered = np.array([l["wavelength_nm"] for l in truth["lines"]])
+    out = {}
+    for line in result.lines:
+        pixel = float(np.interp(line.air_wavelength_nm, spectrum.wavelength_nm[order], np.asarray(spectrum.pixel, float)[order]))
+        true_nm = float(truth_wavelength_at([pixel], calibration.geometry, truth)[0])
+        listed = rendered[np.argmin(np.abs(rendered - line.expected_air_wavelength_nm))]
+        dispersion = abs(float(solution.dispersion_nm_per_px(pixel)))
+        out[line.name] = {
+            "calibration_error_nm": float(solution.wavelength_nm(pixel)) - true_nm,
+            "calibration_sigma_nm": float(solution.uncertainty_nm(pixel)),
+            "centre_error_px": (true_nm - float(listed)) / dispersion,
+            "centre_statistical_px": float(line.statistical_uncertainty_nm) / dispersion,
+        }
+    return out
+
+
+def _summarise_lines(records) -> dict:
+    """RMS over seeds of each Balmer line's calibration pull and centre error (see _lines_vs_truth)."""
+    out = {}
+    for name in {n for r in records for n in r["lines_vs_truth"]}:
+        rows = [r["lines_vs_truth"][name] for r in records if name in r["lines_vs_truth"]]
+        get = lambda key: np.array([row[key] for row in rows])
+        rms = lambda v: float(np.sqrt(np.mean(v**2)))
+        cal, sig = get("calibration_error_nm"), get("calibration_sigma_nm")
+        out[name] = {"seeds": len(rows), "calibration_error_rms_nm": rms(cal), "calibration_sigma_rms_nm": rms(sig),
+                     "calibration_pull_rms": rms(cal / sig), "centre_error_rms_px": rms(get("centre_error_px")),
+                     "centre_statistical_rms_px": rms(get("centre_statistical_px"))}
+    return dict(sorted(out.items(), key=lambda item: _BALMER_ORDER.get(item[0], 99)))
+
+
+_BALMER_ORDER = {"H-alpha": 3, "H-beta": 4, "H-gamma": 5, "H-delta": 6, "H-epsilon": 7, "H-zeta": 8, "H-eta": 9}
 
 
 def _virtual_bench(n_seeds: int, n_setups: int) -> dict:
@@ -374,6 +423,12 @@ def format_report(figures: dict) -> str:
         if cv and cv["pulls"]:
             lines.append(f"    with the calibration's covariance between lines: pull mean {f(cv['pull_mean'], '+.2f')}, "
                          f"width {f(cv['pull_width'], '.2f')}; median sigma {f(cv['median_uncertainty_per_m'], '.0f')} /m")
+        truth = rv.get("lines_vs_truth") or {}
+        for name, t in truth.items():
+            if name in ("H-alpha", "H-beta", "H-gamma", "H-delta"):
+                lines.append(f"    {name} against the truth (RMS of {t['seeds']}): calibration error {t['calibration_error_rms_nm']:.3f} nm, "
+                             f"stated {t['calibration_sigma_rms_nm']:.3f} (pull {t['calibration_pull_rms']:.2f}); centre error "
+                             f"{t['centre_error_rms_px']:.3f} px, fit {t['centre_statistical_rms_px']:.3f} px")
         for label, part in rv.get("by", {}).items():
             lines.append(f"    {label}: {part['pulls']} pulls, mean {f(part['pull_mean'], '+.2f')}, width {f(part['pull_width'], '.2f')} "
                          f"(with covariance {f(part['with_covariance']['pull_width'], '.2f')}), "
