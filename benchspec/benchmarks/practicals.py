@@ -7,8 +7,11 @@
   noise and a new lamp unit per seed, and everything redrawn per seed (a
   rebuilt setup, PNG or JPEG, its own lamp: :func:`draw_setup`). Only the last
   redraws the per-bench systematics the calibration's uncertainty claims to
-  cover, so only its width tests that uncertainty. Target: pull width 0.8-1.2
-  (honest uncertainty), |mean| < 0.3; widths come with their 68% interval.
+  cover, so only its width tests that uncertainty. Each series also fits with
+  the calibration's covariance between the lines, and checks every Balmer line
+  against the simulator's truth (calibration error vs its stated sigma, line
+  centre error vs its fit sigma). Target: pull width 0.8-1.2 (honest
+  uncertainty), |mean| < 0.3; widths come with their 68% interval.
 * Response: a virtual-bench halogen at 2900 K corrected with the response
   from another exposure; worst deviation from Planck over the valid range.
   Target: <= 2%.
@@ -169,7 +172,7 @@ def _rydberg_series(n_seeds: int, setup) -> dict:
             return [simulate.as_written(simulate.render(bench, seed=int(s), source=source), jpeg_quality=jpeg)
                     for s in seeds]
 
-        record = {"seed": k, "jpeg_quality": jpeg}
+        record = {"seed": k, "jpeg_quality": jpeg, **({"setup": drawn} if drawn else {})}
         try:
             own = calibrate_frames(frames(cfl, (1000 + 2 * k, 1001 + 2 * k)), lamp="cfl")
         except Exception as exc:  # a failed seed is counted, not hidden
