@@ -508,7 +508,12 @@ def _run_rydberg(args) -> int:
 
     _caution("discharge")
     spectrum = _load_inputs(args.spectrum, calibration=args.calibration, what="spectrum")
-    result = rydberg_from_spectrum(spectrum, min_snr=args.min_snr)
+    calibration = None
+    if args.calibration:  # its covariance correlates the Balmer lines' wavelengths (generalised least squares)
+        from ..calfile import read_calibration
+
+        calibration = read_calibration(args.calibration)
+    result = rydberg_from_spectrum(spectrum, min_snr=args.min_snr, calibration=calibration)
     if args.plot:
         from ..analysis.plots import rydberg_figure
 
