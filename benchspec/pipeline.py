@@ -471,9 +471,8 @@ def iter_extract_frames(
     :class:`~benchspec.extract.LiveExtractor` built from the calibration's
     geometry (remap tables and aperture weights computed once). Video frames
     stay in the decoder's B, G, R order (the channel weights are reversed
-    instead of converting every frame); the decoding thread also linearises a
-    frame's region while it is ahead of the extraction, so the two threads
-    share the work. Neither changes a spectrum beyond float32 rounding.
+    instead of converting every frame: a spectrum changes by float32
+    rounding only).
     The default bilinear resampling is about three times faster than the
     bicubic one used for stacked frames; lines come out about 7% wider, their
     centres and fluxes are unchanged (``interpolation="cubic"`` to match the
@@ -518,8 +517,12 @@ def iter_extract_frames(
         cv2.setNumThreads(previous)
 
 
-#: the decoding thread linearises a frame itself while at least this many decoded frames wait (see _decoded_ahead)
-_PREPARE_AHEAD = 2
+#: the decoding thread linearises a frame itself while at least this many decoded frames wait (see
+#: _decoded_ahead); None: it only decodes. Measured at load 3 on the 2-core machine (300 frames 1280x720,
+#: 3-4 interleaved passes): CPU of all threads 4.8-5.4 ms a frame with None against 5.9 ms with 2, and
+#: 203-392 fps against 177-324: a frame linearised on one thread and extracted on the other costs more
+#: (its 1.6 MB region crosses between the cores' caches) than the decoding thread's idle time gives back
+_PREPARE_AHEAD: int | None = None
 
 
 def _iter_extract(frames, calibration, *, dark, extraction, band_check_every, interpolation, cal_path):
@@ -550,7 +553,7 @@ def _iter_extract(frames, calibration, *, dark, extraction, band_check_every, in
             dark_records = [{"path": str(p), "sha256": file_sha256(p)} for p in expand_sources(dark)]
     # once the extractor exists, the decoding thread also linearises frames' regions while it is ahead
     # (OpenCV releases the lock meanwhile), so the two cores share the work evenly
-    ahead_work: dict = {"ahead": _PREPARE_AHEAD}
+    ahead_work: dict = {"ahead": _PREPARE_AHEAD}  # "ahead" unused while there is no "prepare"
     if _is_array_input(frames):
         arrays = [frames] if isinstance(frames, np.ndarray) else list(frames)
         sources = ((None, k, a, False, None) for k, a in enumerate(arrays))
@@ -575,7 +578,9 @@ def _iter_extract(frames, calibration, *, dark, extraction, band_check_every, in
                                          dark=preparer.dark)
             extractor = LiveExtractor(calibration.geometry, noise_model=noise, method=extraction,
                                       preparer=preparer, interpolation=interpolation)
-            ahead_work["prepare"] = extractor.prepare_raw
+            ahead_work["ready"] = True  # set up: the read-ahead shrinks back to a few frames
+            if _PREPARE_AHEAD is not None:
+                ahead_work["prepare"] = extractor.prepare_raw
             base = None
         elif series_index % band_check_every == 0:
             _check_frame_size(np.shape(frame), calibration, cal_path, label)
@@ -645,7 +650,7 @@ def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None, max_bytes
     """The same items, produced by a second thread ahead of the consumer (OpenCV decodes without the GIL).
 
     At most ``depth`` items wait; while the consumer is still setting up
-    (``work`` given, no ``"prepare"`` in it yet) or says it is busy
+    (``work`` given, neither ``"ready"`` nor ``"prepare"`` in it yet) or says it is busy
     (``work["busy"]`` true, then ``work["wake"]()``) more may, as long as
     they hold at most ``max_bytes`` (default :data:`_AHEAD_BYTES`). Memory
     stays bounded whatever the length of the series.
@@ -653,8 +658,9 @@ def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None, max_bytes
     With ``work``, each item ``(path, index, frame, is_bgr)`` comes out as
     ``(path, index, frame, is_bgr, prepared)``: ``prepared`` is
     ``work["prepare"](frame, bgr=is_bgr)`` computed on the second thread once
-    the consumer has put a callable there (None before, or when it raised:
-    the consumer then does the work and meets the error itself).
+    the consumer has put a callable there (None before or without one, or
+    when it raised: the consumer then does the work and meets the error
+    itself).
 
     The work is shared out as the two threads keep pace: the second thread
     does it only while at least ``work["ahead"]`` items (default 2) and at
@@ -673,8 +679,11 @@ def _decoded_ahead(items, *, depth: int = 4, work: dict | None = None, max_bytes
     stop = threading.Event()
     done = object()
 
-    def warming() -> bool:  # the consumer is setting up (no "prepare" yet) or busy with a band check
-        return work is not None and (work.get("prepare") is None or bool(work.get("busy")))
+    def warming() -> bool:  # the consumer is setting up (neither "ready" nor "prepare" yet) or busy (a band check)
+        if work is None:
+            return False
+        ready = bool(work.get("ready")) or work.get("prepare") is not None
+        return not ready or bool(work.get("busy"))
 
     def wake() -> None:
         with changed:

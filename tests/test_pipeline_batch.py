@@ -1,8 +1,8 @@
 """The batch path (``extract --each``: ``pipeline.iter_extract_frames`` on a video) against slower references.
 
 A video's frames are decoded on a second thread and stay in the decoder's B, G, R order
-(the channel weights are reversed instead); the decoding thread linearises a frame only while
-it is ahead. None of that may change a spectrum: the references are the same frames decoded to
+(the channel weights are reversed instead); the decoding thread may also linearise frames
+(``pipeline._PREPARE_AHEAD``). None of that may change a spectrum: the references are the same frames decoded to
 RGB and given as arrays (``extract_frames(..., each=True)``, no second thread), and one
 ``LiveExtractor`` applied frame by frame. Differences allowed: float32 rounding of the sums
 (relative 1e-6 of the spectrum's largest value), nothing more. Invented virtual-bench frames,
@@ -93,7 +93,8 @@ def test_video_series_equals_extract_frames_of_the_decoded_frames(video, channel
     _assert_same(from_video, [pipeline.apply_calibration(live.process_raw(f), calibration) for f in decoded])
 
 
-@pytest.mark.parametrize("ahead", [0, 10**6])  # 0: the decoding thread prepares every frame; 10**6: none
+# 0: the decoding thread prepares every frame it can; 10**6: none; None (the default): it only decodes
+@pytest.mark.parametrize("ahead", [0, 10**6, None])
 def test_which_thread_prepares_a_frame_does_not_change_the_spectra(video, monkeypatch, ahead, mean_calibration):
     path, decoded, first = video
     calibration = _calibrate(mean_calibration, "luma")
