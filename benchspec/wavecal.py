@@ -30,7 +30,8 @@ Method
 5. *Decision.* The best refined solution is accepted only if it matches at
    least 3 lines used in the fit (4 matched without manual pairs), explains
    most of the bright lines, has an RMS under 1 px and is clearly better than
-   any distinct runner-up; otherwise :class:`~benchspec.errors.CalibrationError`
+   any distinct runner-up (two fits of one assignment that differ only
+   beyond the matched lines, or within their uncertainty, are not rivals); otherwise :class:`~benchspec.errors.CalibrationError`
    says why. A wrong lamp or lines that fit no lamp are refused, never
    returned as a wrong solution.
 
@@ -51,6 +52,7 @@ All wavelengths are in air (the line lists are in air).
 
 from __future__ import annotations
 
+import functools
 import itertools
 import math
 from dataclasses import dataclass, field
@@ -61,7 +63,7 @@ import numpy as np
 from .errors import CalibrationError, InputError
 from .lines import LineTable, find_lines
 from .physics import diffraction_angle_deg
-from .refdata import Lamp, available_lamps, load_lamp
+from .refdata import Lamp, available_lamps, load_lamp, load_line_list
 from .spectrum import Spectrum
 from .wavefit import (  # noqa: F401  (the fit stage lives in its own module)
     _grating_phase,
@@ -550,6 +552,9 @@ class _Candidate:
     anchor: np.ndarray = None
     resid_px: np.ndarray = None
 
+    def feature_wavelength_nm(self) -> list:
+        return self.features.wavelength[self.feature_index].tolist()
+
 
 def _peaks_from_table(table: LineTable, lamp_index: int = 0, kind: str = "emission") -> _Peaks:
     if not isinstance(table, LineTable):
@@ -926,7 +931,10 @@ def _final_score(c: _Candidate, peaks: _Peaks, *, centre, scale, t_ends, fwhm, n
     within |residual| of some feature is about 2 |residual| times the local
     feature density (features per px); the score sums -ln of those chances,
     charges the polynomial's free parameters, and charges strong features
-    that fall in the range with no detected line near them.
+    that fall in the range with no detected line near them, and bright
+    detected lines the solution leaves unexplained (not those that sit on one
+    of the lamp's listed lines too faint to be matched, such as the weak Hg
+    lines at 535.4, 567.6 and 671.6 nm that a real CFL shows).
     """
     f = c.features
     t_feat = _invert(c.coefficients, f.wavelength, t_ends)
@@ -972,11 +980,35 @@ def _final_score(c: _Candidate, peaks: _Peaks, *, centre, scale, t_ends, fwhm, n
     # Bright detected lines the solution leaves unexplained: a lamp's own frame is mostly its lines.
     unexplained = np.ones(peaks.pixel.size, dtype=bool)
     unexplained[c.peak_index] = False
-    score -= 1.0 * float(np.count_nonzero(unexplained & (peaks.snr >= 20.0)))
+    bright = unexplained & (peaks.snr >= 20.0)
+    if bright.any():
+        # A line that sits on one of the lamp's listed lines too faint to be matched (the weak Hg
+        # lines at 535.4, 567.6, 671.6 nm) is explained by the lamp, though it proves nothing.
+        listed = _listed_wavelengths(tuple(sorted(set(f.species))))
+        if listed.size:
+            t_bright = (peaks.pixel[bright] - centre) / scale
+            lam_bright = np.polynomial.polynomial.polyval(t_bright, c.coefficients)
+            disp_bright = np.abs(np.polynomial.polynomial.polyval(t_bright, derivative)) / scale
+            window = disp_bright * (1.0 + 3.0 * peaks.sigma[bright])  # 1 px: the solution's accuracy inside its span
+            on_listed = np.min(np.abs(lam_bright[:, None] - listed[None, :]), axis=1) < window
+            bright[np.flatnonzero(bright)[on_listed]] = False
+    score -= 1.0 * float(np.count_nonzero(bright))
     # ... and above all the brightest three: a lamp's brightest lines are its listed lines.
     score -= 4.0 * float(np.count_nonzero(unexplained[np.argsort(-peaks.amplitude)[:3]]))
     score -= 3.0 * max(0.0, c.rms_px - 0.5)
     return score
+
+
+@functools.lru_cache(maxsize=None)
+def _listed_wavelengths(species: tuple[str, ...]) -> np.ndarray:
+    """Every listed wavelength (nm) of these species' line lists, however faint."""
+    values = []
+    for name in species:
+        try:
+            values.extend(l.wavelength_nm for l in load_line_list(name).lines)
+        except Exception:  # a reference that is not a species line list (e.g. built from another table)
+            continue
+    return np.sort(np.array(values, dtype=float))
 
 
 def _invert(coeffs, wavelength, t_ends):
@@ -988,10 +1020,35 @@ def _invert(coeffs, wavelength, t_ends):
 
 
 def _distinct(a: _Candidate, b: _Candidate, t_probe, scale) -> bool:
-    la = np.polynomial.polynomial.polyval(t_probe, a.coefficients)
-    lb = np.polynomial.polynomial.polyval(t_probe, b.coefficients)
-    disp = np.abs(np.polynomial.polynomial.polyval(t_probe, np.polynomial.polynomial.polyder(a.coefficients))) / scale
-    return bool(np.max(np.abs(la - lb) / np.maximum(disp, 1e-9)) > 3.0)
+    """Whether two solutions are different answers, not two fits of the same one.
+
+    They are compared at the lines either of them matches (beyond those, both only extrapolate):
+    different answers differ there by more than 3 px and by more than 3 times their combined
+    1-sigma uncertainty (two fits of one assignment that differ in which faint line goes to a
+    loosely known feature stay well inside it). A line both match to different references makes
+    them different answers whatever the mapping.
+    """
+    pa = dict(zip(a.peak_index.tolist(), a.feature_wavelength_nm()))
+    for p, w in zip(b.peak_index.tolist(), b.feature_wavelength_nm()):
+        if p in pa and abs(pa[p] - w) > 1e-6:
+            return True
+    matched = np.union1d(a.peak_index[a.used], b.peak_index[b.used])
+    t = t_probe[matched] if matched.size else t_probe
+    la = np.polynomial.polynomial.polyval(t, a.coefficients)
+    lb = np.polynomial.polynomial.polyval(t, b.coefficients)
+    disp = np.maximum(np.abs(np.polynomial.polynomial.polyval(t, np.polynomial.polynomial.polyder(a.coefficients))) / scale,
+                      1e-9)
+    sigma = np.sqrt(_polynomial_variance(a, t) + _polynomial_variance(b, t))
+    return bool(np.any((np.abs(la - lb) > 3.0 * disp) & (np.abs(la - lb) > 3.0 * sigma)))
+
+
+def _polynomial_variance(c: _Candidate, t) -> np.ndarray:
+    """Variance (nm^2) of a candidate's polynomial at normalised pixels ``t``."""
+    cov = np.asarray(c.covariance, dtype=float)
+    if cov.shape != (c.coefficients.size, c.coefficients.size) or not np.all(np.isfinite(cov)):
+        return np.zeros(np.shape(t))
+    basis = np.stack([np.asarray(t, dtype=float) ** k for k in range(c.coefficients.size)], axis=-1)
+    return np.maximum(np.einsum("...i,ij,...j->...", basis, cov, basis), 0.0)
 
 
 # --------------------------------------------------------------------------- the search
@@ -1102,6 +1159,9 @@ def _explained(c: _Candidate, peaks: _Peaks):
 _MIN_EVIDENCE = 12.0
 # A distinct runner-up within this many nats makes the match ambiguous (e^4 = 55 times less likely).
 _MIN_MARGIN = 4.0
+# Extra evidence per tightly known line short of 3 (fitted to a few wide targets, a wrong scale
+# can look as tight as the right one).
+_ANCHOR_SURCHARGE = 3.0
 
 
 def _explained_top(c: _Candidate, peaks: _Peaks, k: int) -> float:
@@ -1152,7 +1212,7 @@ def _decide(candidates, peaks: _Peaks, *, lamp_label: str, pairs, context) -> _C
     # A solution resting on loosely known features (blends, phosphor bands) needs more evidence:
     # fitted to a few wide targets, a wrong scale can look as tight as the right one.
     n_anchor = int(np.count_nonzero(best.anchor)) if best.anchor is not None else n_used
-    need_evidence = _MIN_EVIDENCE + 3.0 * max(0, 3 - n_anchor)
+    need_evidence = _MIN_EVIDENCE + _ANCHOR_SURCHARGE * max(0, 3 - n_anchor)
     if not pairs and best.score < need_evidence:
         raise CalibrationError(
             f"the best match to {lamp_label} ({n_used} lines, {n_anchor} of them tightly known) is not convincing: "
