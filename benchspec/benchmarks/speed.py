@@ -40,7 +40,8 @@ spectrum per frame by :func:`benchspec.pipeline.iter_extract_frames` (what
 ``benchspec extract --each`` runs: decoding on a second thread, the live
 extractor, the calibrated axis), against reading the same video with OpenCV
 alone (``cv2.VideoCapture.read``); the bare live extractor on one and on two
-threads is timed beside it. Memory must
+threads is timed beside it. One more pass of the pipeline gives the time to
+its first spectrum (setting the series up) apart from the rate after it. Memory must
 stay bounded for a time series of any length: the growth of the process's
 resident memory and of the Python heap (:mod:`tracemalloc`) between frame 100
 and frame 300 is reported.
