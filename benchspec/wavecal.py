@@ -552,8 +552,9 @@ class _Candidate:
     anchor: np.ndarray = None
     resid_px: np.ndarray = None
 
-    def feature_wavelength_nm(self) -> list:
-        return self.features.wavelength[self.feature_index].tolist()
+    def feature_members_nm(self) -> list:
+        """The reference lines (nm) of each assigned feature (one for an isolated line, several for a blend)."""
+        return [self.features.members[k] for k in self.feature_index.tolist()]
 
 
 def _peaks_from_table(table: LineTable, lamp_index: int = 0, kind: str = "emission") -> _Peaks:
@@ -1026,11 +1027,12 @@ def _distinct(a: _Candidate, b: _Candidate, t_probe, scale) -> bool:
     different answers differ there by more than 3 px and by more than 3 times their combined
     1-sigma uncertainty (two fits of one assignment that differ in which faint line goes to a
     loosely known feature stay well inside it). A line both match to different references makes
-    them different answers whatever the mapping.
+    them different answers whatever the mapping, unless one reference is a blend holding the
+    other (the same line, resolved in one fit and blended in the other: Tb3+ 542.4 + Hg 546.07 nm).
     """
-    pa = dict(zip(a.peak_index.tolist(), a.feature_wavelength_nm()))
-    for p, w in zip(b.peak_index.tolist(), b.feature_wavelength_nm()):
-        if p in pa and abs(pa[p] - w) > 1e-6:
+    pa = dict(zip(a.peak_index.tolist(), a.feature_members_nm()))
+    for p, members in zip(b.peak_index.tolist(), b.feature_members_nm()):
+        if p in pa and not set(pa[p]) & set(members):  # a blend and one of its own lines are the same line
             return True
     matched = np.union1d(a.peak_index[a.used], b.peak_index[b.used])
     t = t_probe[matched] if matched.size else t_probe

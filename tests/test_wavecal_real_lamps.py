@@ -54,9 +54,9 @@ class _Fit:
         self.covariance = np.asarray(covariance, dtype=float)
         self.peak_index = np.asarray(peaks, dtype=int)
         self.used = np.ones(len(peaks), dtype=bool)
-        self._wavelengths = list(wavelengths)
+        self._wavelengths = [w if isinstance(w, tuple) else (w,) for w in wavelengths]
 
-    def feature_wavelength_nm(self):
+    def feature_members_nm(self):
         return self._wavelengths
 
 
@@ -82,3 +82,8 @@ def test_distinct_answers_are_judged_where_there_are_lines_and_against_their_unc
     # a line both match to different references makes them different answers whatever the mapping
     d = _Fit([500.0, 100.0], tight, [0, 1, 2, 3, 4], [400, 450, 500, 550, 611.6])
     assert _distinct(a, d, t, 100.0)
+    # ... but a blend holding the other's line is the same line (Tb3+ 542.4 + Hg 546.07 nm blend)
+    e = _Fit([500.0, 100.0], tight, [0, 1, 2, 3, 4], [400, 450, 500, 550, 600])
+    f = _Fit([500.0, 100.0], tight, [0, 1, 2, 3, 4], [400, 450, 500, (542.4, 546.075), 600])
+    e._wavelengths[3] = (546.075,)
+    assert not _distinct(e, f, t, 100.0)
