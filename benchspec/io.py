@@ -791,7 +791,7 @@ def _table_text(columns: Mapping[str, Any], *, comments: Sequence[str], provenan
         if values.dtype.kind == "f" and not allow_nan and not np.all(np.isfinite(values)):
             bad = int(np.flatnonzero(~np.isfinite(values))[0])
             raise InputError(f"column `{name}` has a non-finite value at row {bad}; mask or drop it before writing (readers refuse NaN/inf)")
-        arrays.append(values.tolist() if values.dtype.kind != "f" else [float(v) for v in values])
+        arrays.append(_format_column(values))
     out = _io.StringIO()
     for line in comments:
         for part in str(line).split("\n"):
@@ -803,9 +803,22 @@ def _table_text(columns: Mapping[str, Any], *, comments: Sequence[str], provenan
     if schema:
         out.write(f"# schema: {schema}\n")
     out.write(",".join(names) + "\n")
-    for row in zip(*arrays):
-        out.write(",".join(_format_cell(v) for v in row) + "\n")
+    if n:
+        out.write("\n".join(map(",".join, zip(*arrays))) + "\n")
     return out.getvalue()
+
+
+def _format_column(values: np.ndarray) -> list[str]:
+    """The cells of one column as text, as :func:`_format_cell` writes each (a column at a time: a
+    time series writes thousands of rows per frame)."""
+    kind = values.dtype.kind
+    if kind == "b":
+        return np.where(values, "1", "0").tolist()
+    if kind in "iu":
+        return list(map(str, values.tolist()))
+    if kind == "f":
+        return list(map(float.__repr__, values.astype(float).tolist()))
+    return [_format_cell(v) for v in values.tolist()]
 
 
 def write_table(

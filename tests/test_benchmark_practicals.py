@@ -85,3 +85,15 @@ def test_line_summary_is_the_rms_over_seeds():
     assert beta["calibration_pull_rms"] == pytest.approx(np.sqrt((1.5**2 + 0.5**2) / 2))
     assert beta["centre_error_rms_px"] == pytest.approx(np.sqrt((0.01**2 + 0.03**2) / 2))
     assert summary["H-alpha"]["seeds"] == 1
+
+
+def test_synthetic_rydberg_pulls_have_unit_width():
+    # 40 Poisson spectra of the Balmer lines (NIST ASD air wavelengths via expected_balmer_air_nm) against
+    # CODATA R_inf/(1+m_e/m_p) (scipy.constants): honest 1-sigma gives a pull width whose 99% range for
+    # 40 unit-Gaussian pulls is about 0.74-1.27 (chi-square with 39 dof).
+    from benchspec.benchmarks.practicals import _synthetic_rydberg
+
+    figures = _synthetic_rydberg(40)
+    assert figures["seeds"] == 40
+    assert 0.74 < figures["pull_width"] < 1.27
+    assert abs(figures["pull_mean"]) < 3 / 40 ** 0.5
