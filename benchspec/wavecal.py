@@ -65,6 +65,7 @@ from .lines import LineTable, find_lines
 from .physics import diffraction_angle_deg
 from .refdata import Lamp, available_lamps, load_lamp, load_line_list
 from .spectrum import Spectrum
+from .wavefit import _derivative_coeffs, _median, _polyval
 from .wavefit import (  # noqa: F401  (the fit stage lives in its own module)
     _grating_phase,
     _grating_eval,
@@ -622,11 +623,45 @@ def _reference_lines(lamp: Lamp, low_nm: float = 370.0, high_nm: float = 1000.0)
     return wavelength, intensity, tolerance, species
 
 
+# Blend features already built, keyed on the reference lines and the grouping (see _cluster and
+# _cluster_adaptive): the matching asks for them again at nearly the same resolution hundreds of
+# times per calibration. The cached arrays are read-only, so a cached feature set cannot be changed.
+_FEATURE_CACHE: dict = {}
+_FEATURE_CACHE_LIMIT = 256  # about ten calibrations (20-30 feature sets each)
+
+
+def _reference_key(reference):
+    wavelength, intensity, tolerance, species = reference
+    return (wavelength.tobytes(), intensity.tobytes(), tolerance.tobytes(), species)
+
+
+def _cached_features(key, build):
+    hit = _FEATURE_CACHE.get(key)
+    if hit is None:
+        hit = build()
+        for array in (hit.wavelength, hit.intensity, hit.sigma, hit.merged):
+            array.flags.writeable = False
+        if len(_FEATURE_CACHE) >= _FEATURE_CACHE_LIMIT:
+            _FEATURE_CACHE.clear()
+        _FEATURE_CACHE[key] = hit
+    return hit
+
+
 def _cluster(reference, resolution_nm: float) -> _Features:
     """Merge reference lines closer than ``resolution_nm`` into blend features (vectorised over groups)."""
+    return _cluster_split(reference, np.diff(reference[0]) >= resolution_nm)
+
+
+def _cluster_split(reference, split) -> _Features:
+    return _cached_features(("cluster", _reference_key(reference), split.tobytes()),
+                            lambda: _cluster_groups(reference, split))
+
+
+def _cluster_groups(reference, split) -> _Features:
+    """_cluster for a given grouping (``split[k]``: lines k and k + 1 are in different groups)."""
     wavelength, intensity, tolerance, species = reference
     n = wavelength.size
-    group = np.concatenate([[0], np.cumsum(np.diff(wavelength) >= resolution_nm)])
+    group = np.concatenate([[0], np.cumsum(split)])
     n_groups = int(group[-1]) + 1
     strongest = np.zeros(n_groups)
     np.maximum.at(strongest, group, intensity)
@@ -712,29 +747,35 @@ def _score_hypotheses(coeffs, peaks: _Peaks, features: _Features, *, centre, sca
     strongest = np.sort(np.argsort(-peaks.amplitude)[:30])
     amplitude = peaks.amplitude[strongest]
     t = (peaks.pixel[strongest] - centre) / scale
-    lam = coeffs[:, 0:1] + coeffs[:, 1:2] * t + coeffs[:, 2:3] * t**2
-    disp = (coeffs[:, 1:2] + 2 * coeffs[:, 2:3] * t) / scale
     end_disp = (coeffs[:, 1:2] + 2 * coeffs[:, 2:3] * t_ends[None, :]) / scale
     same_sign = np.sign(end_disp[:, 0]) == np.sign(end_disp[:, 1])
     magnitude = np.abs(end_disp)
     valid = same_sign & (magnitude.min(axis=1) >= d_low / 1.6) & (magnitude.max(axis=1) <= d_high * 1.6)
     valid &= magnitude.max(axis=1) <= 1.8 * magnitude.min(axis=1)
-    order = np.argsort(features.wavelength)
-    fw = features.wavelength[order]
-    index = np.clip(np.searchsorted(fw, lam), 1, fw.size - 1)
-    left, right = fw[index - 1], fw[index]
-    nearest = np.where(np.abs(lam - left) < np.abs(lam - right), index - 1, index)
-    distance = np.abs(lam - fw[nearest])
-    allowed = tol_px * np.abs(disp) + features.sigma[order][nearest]
-    hit = distance < allowed
-    weight = 1.0 + 0.5 * (np.argsort(np.argsort(-amplitude)) < 6)
-    score = (hit * weight[None, :]).sum(axis=1)
     for pair in pairs:
         tp = (pair.pixel - centre) / scale
         lp = coeffs[:, 0] + coeffs[:, 1] * tp + coeffs[:, 2] * tp**2
         dp = np.abs(coeffs[:, 1] + 2 * coeffs[:, 2] * tp) / scale
         valid &= np.abs(lp - pair.wavelength_nm) < 4.0 * dp + 3 * pair.tolerance_nm
-    return np.where(valid, score, -np.inf)
+    # Each hypothesis is scored on its own: only the valid ones need the line-by-line work.
+    rows = np.flatnonzero(valid)
+    full = coeffs
+    coeffs = full[rows]
+    lam = coeffs[:, 0:1] + coeffs[:, 1:2] * t + coeffs[:, 2:3] * t**2
+    disp = (coeffs[:, 1:2] + 2 * coeffs[:, 2:3] * t) / scale
+    order = np.argsort(features.wavelength)
+    fw = features.wavelength[order]
+    index = np.minimum(np.maximum(np.searchsorted(fw, lam), 1), fw.size - 1)  # np.clip, without its overhead
+    left, right = np.abs(lam - fw[index - 1]), np.abs(lam - fw[index])
+    closer_left = left < right
+    nearest = index - closer_left  # index - 1 where the left neighbour is closer
+    distance = np.where(closer_left, left, right)  # = |lam - fw[nearest]|
+    allowed = tol_px * np.abs(disp) + features.sigma[order][nearest]
+    hit = distance < allowed
+    weight = 1.0 + 0.5 * (np.argsort(np.argsort(-amplitude)) < 6)
+    score = np.full(full.shape[0], -np.inf)
+    score[rows] = (hit * weight[None, :]).sum(axis=1)
+    return score
 
 
 def _cluster_adaptive(reference, resolution_nm: float, predicted_nm: np.ndarray) -> _Features:
@@ -745,7 +786,27 @@ def _cluster_adaptive(reference, resolution_nm: float, predicted_nm: np.ndarray)
     if enough detected lines fall among them to account for each; otherwise
     the group is one blend feature at its intensity-weighted centroid.
     """
-    sub = _cluster(reference, 0.8 * resolution_nm)
+    split = np.diff(reference[0]) >= 0.8 * resolution_nm
+    sub = _cluster_split(reference, split)
+    n_sub = sub.wavelength.size
+    if n_sub == 0:
+        return _cluster_adaptive_groups(sub, resolution_nm, predicted_nm)
+    # The result depends on the resolution and the detected lines only through the groups (neighbours
+    # closer than 2 elements) and the count of detected lines inside each group's window.
+    sw = sub.wavelength
+    join = np.diff(sw) < 2.0 * resolution_nm
+    last = np.flatnonzero(~join)  # the last member of every group but the final one
+    starts = np.concatenate(([0], last + 1))
+    ends = np.concatenate((last, [n_sub - 1]))
+    multi = ends > starts
+    predicted = np.sort(predicted_nm)
+    seen = (np.searchsorted(predicted, sw[ends[multi]] + 0.6 * resolution_nm, side="right")
+            - np.searchsorted(predicted, sw[starts[multi]] - 0.6 * resolution_nm, side="left"))
+    key = ("adaptive", _reference_key(reference), split.tobytes(), join.tobytes(), seen.tobytes())
+    return _cached_features(key, lambda: _cluster_adaptive_groups(sub, resolution_nm, predicted_nm))
+
+
+def _cluster_adaptive_groups(sub: _Features, resolution_nm: float, predicted_nm: np.ndarray) -> _Features:
     groups: list[list[int]] = []
     for k in range(sub.wavelength.size):
         if groups and sub.wavelength[k] - sub.wavelength[groups[-1][-1]] < 2.0 * resolution_nm:
@@ -776,6 +837,11 @@ def _cluster_adaptive(reference, resolution_nm: float, predicted_nm: np.ndarray)
     return _Features(np.array(w), np.array(i), np.array(s), tuple(sp), tuple(m), np.array(merged, dtype=bool))
 
 
+def _with_pairs(values, extra):
+    """np.r_[values, extra] for a fresh float array ``values``, without np.r_'s overhead."""
+    return np.concatenate((values, np.asarray(extra, dtype=float))) if extra else values
+
+
 def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, pairs, max_order, n_trials=1, quick=False,
             seen=None):
     """Iterative matching + robust fit from a starting polynomial. Returns a _Candidate or None.
@@ -786,16 +852,20 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
     ``seen`` (a set, quick pass only) holds the first assignments of earlier seeds: a seed whose
     first assignment was already seen converges to the same solution and is dropped (None).
     """
-    coeffs = np.trim_zeros(np.asarray(initial, dtype=float), "b")
+    coeffs = np.asarray(initial, dtype=float)
+    nonzero = np.flatnonzero(coeffs)
+    coeffs = coeffs[: nonzero[-1] + 1] if nonzero.size else coeffs[:0]  # np.trim_zeros(coeffs, "b")
     if coeffs.size < 2:
         return None
     t = (peaks.pixel - centre) / scale
     previous = None
     result = None
+    pair_t = [(m.pixel - centre) / scale for m in pairs]
+    pair_nm = [m.wavelength_nm for m in pairs]
     for tol_px in ((4.0, 3.0, 2.0, 2.0, 2.0) if quick else (4.0, 3.0, 2.5, 2.0, 2.0, 2.0, 2.0)):
-        lam = np.polynomial.polynomial.polyval(t, coeffs)
-        disp = np.abs(np.polynomial.polynomial.polyval(t, np.polynomial.polynomial.polyder(coeffs))) / scale
-        median_disp = float(np.median(disp)) if disp.size else 1.0
+        lam = _polyval(t, coeffs)
+        disp = np.abs(_polyval(t, _derivative_coeffs(coeffs))) / scale
+        median_disp = _median(disp) if disp.size else 1.0
         if not median_disp > 0 or not np.all(disp > 0):
             return None
         features = _cluster_adaptive(reference, fwhm * median_disp, lam)
@@ -823,13 +893,13 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
             seen.add(assignment)
         p_idx = np.array([a for a, _ in assignment], dtype=int)
         f_idx = np.array([b for _, b in assignment], dtype=int)
-        tt = np.r_[t[p_idx], [(m.pixel - centre) / scale for m in pairs]]
-        ll = np.r_[fw[f_idx], [m.wavelength_nm for m in pairs]]
-        ss = np.r_[
+        tt = _with_pairs(t[p_idx], pair_t)
+        ll = _with_pairs(fw[f_idx], pair_nm)
+        ss = _with_pairs(
             np.sqrt((peaks.sigma[p_idx] * disp[p_idx]) ** 2 + features.sigma[f_idx] ** 2
                     + (_MATCH_MODEL_FLOOR_PX * disp[p_idx]) ** 2),
             [math.hypot(m.tolerance_nm, _CENTRE_FLOOR_PX * median_disp) for m in pairs],
-        ]
+        )
         # The solution must not fold where there is light: over the lines' span and a margin beyond it.
         margin = 0.15 * (tt.max() - tt.min())
         monotonic_t = np.linspace(max(t_ends[0], tt.min() - margin), min(t_ends[1], tt.max() + margin), 33)
@@ -943,7 +1013,7 @@ def _final_score(c: _Candidate, peaks: _Peaks, *, centre, scale, t_ends, fwhm, n
     inside = np.isfinite(feature_px)
     range_px = (t_ends[1] - t_ends[0]) * scale
     score = 0.0
-    derivative = np.polynomial.polynomial.polyder(c.coefficients)
+    derivative = _derivative_coeffs(c.coefficients)
     for k, (pi, fi) in enumerate(zip(c.peak_index, c.feature_index)):
         if not c.used[k]:
             continue
@@ -953,7 +1023,7 @@ def _final_score(c: _Candidate, peaks: _Peaks, *, centre, scale, t_ends, fwhm, n
         score += -math.log(min(1.0, width * density))
         # A true match misses by about its own uncertainty: charge misses of many sigma (Gaussian
         # log-likelihood, capped at 3 sigma so one bad line cannot sink a good solution).
-        disp = abs(float(np.polynomial.polynomial.polyval((peaks.pixel[pi] - centre) / scale, derivative))) / scale
+        disp = abs(float(_polyval((peaks.pixel[pi] - centre) / scale, derivative))) / scale
         sigma_px = math.hypot(peaks.sigma[pi], f.sigma[fi] / max(disp, 1e-12), 0.15)  # 0.15 px: model and JPEG
         score -= 0.5 * min((c.resid_px[k] / sigma_px) ** 2, 9.0)
         if abs(c.resid_px[k]) > max(2.0, 6.0 * sigma_px):
@@ -966,12 +1036,12 @@ def _final_score(c: _Candidate, peaks: _Peaks, *, centre, scale, t_ends, fwhm, n
     if use.sum() >= 3:
         log_peak = np.log(np.maximum(peaks.amplitude[c.peak_index[use]], 1e-12))
         log_ref = np.log(np.maximum(f.intensity[c.feature_index[use]], 1e-6))
-        delta = (log_peak - np.median(log_peak)) - (log_ref - np.median(log_ref))
+        delta = (log_peak - _median(log_peak)) - (log_ref - _median(log_ref))
         # Asymmetric: a weak camera response dims lines a lot, but nothing makes a faint line bright.
         spread = np.where(delta > 0, math.log(5.0), math.log(30.0))
         score -= float(np.sum(0.5 * (delta / spread) ** 2))
     if c.feature_index.size:
-        level = 0.5 * float(np.median(f.intensity[c.feature_index]))
+        level = 0.5 * _median(f.intensity[c.feature_index])
         matched = set(c.feature_index.tolist())
         for k in np.nonzero(inside & (f.intensity >= level))[0]:
             if k in matched:
@@ -1105,17 +1175,20 @@ def _search(peaks: _Peaks, reference, *, pixel_range, d_range, pairs, max_order)
             continue
         order = np.argsort(-score)[: 400 * n_bands]
         order = order[np.isfinite(score[order])]
-        kept = []
-        for k in order:
-            # keep hypotheses that differ (wavelengths at the ends and middle differ by > 3 px)
-            c = coeffs[k]
-            probe = c[0] + c[1] * np.array([-1.0, 0.0, 1.0]) + c[2] * np.array([1.0, 0.0, 1.0])
-            disp = abs(c[1]) / scale
-            if any(np.max(np.abs(probe - other)) < 3.0 * disp for other in kept):
+        # keep hypotheses that differ (wavelengths at the ends and middle differ by > 3 px)
+        ranked = coeffs[order]
+        probes = ranked[:, 0:1] + ranked[:, 1:2] * np.array([-1.0, 0.0, 1.0]) + ranked[:, 2:3] * np.array([1.0, 0.0, 1.0])
+        limits = 3.0 * (np.abs(ranked[:, 1]) / scale)
+        kept = np.empty((12 * n_bands, 3))
+        n_kept = 0
+        for j, k in enumerate(order):
+            probe = probes[j]
+            if n_kept and (np.abs(kept[:n_kept] - probe).max(axis=1) < limits[j]).any():
                 continue
-            kept.append(probe)
-            seeds.append((float(score[k]), c))
-            if len(kept) >= 12 * n_bands:
+            kept[n_kept] = probe
+            n_kept += 1
+            seeds.append((float(score[k]), coeffs[k]))
+            if n_kept >= 12 * n_bands:
                 break
     seeds.sort(key=lambda s: -s[0])
     # First pass: every seed gets the cheap matching; seeds that converge to the same assignment
