@@ -417,10 +417,13 @@ class WavelengthCalibration:
         low, high = self.solution.pixel_range
         disp = float(np.median(np.abs(self.solution.dispersion_nm_per_px(np.linspace(low, high, 9)))))
         w0, w1 = sorted(self.solution.wavelength_nm([low, high]))
+        used = [m.reference_nm for m in self.matches if m.used_in_fit]
+        span = f" (lines at {min(used):.1f}-{max(used):.1f} nm, extrapolated beyond)" if used else ""
         rows.append(
             f"{self.solution.description}, {self.n_used} lines used of {len(self.matches)} matched "
             f"({self.n_detected} detected); RMS {self.rms_px:.3f} px = {self.rms_nm:.4f} nm; "
-            f"range {w0:.1f}-{w1:.1f} nm at {disp:.3f} nm/px, blue on the {'right' if self.solution.blue_on_right else 'left'}; "
+            f"columns {low:.0f}-{high:.0f} px map to {w0:.1f}-{w1:.1f} nm{span} at {disp:.3f} nm/px, "
+            f"blue on the {'right' if self.solution.blue_on_right else 'left'}; "
             f"solution 1-sigma <= {self.max_uncertainty_nm:.4f} nm between the outer lines"
         )
         rows.append(f"verdict: {self.verdict} ({self.verdict_reason})")
