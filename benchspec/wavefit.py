@@ -437,14 +437,7 @@ def _loo_residuals_svd(t, lam, sigma, keep, order):
 
 def _loo_residuals_refit(t, lam, sigma, keep, order, lines):
     """Leave-one-out residuals of ``lines`` by explicit refits of the other kept lines (SVD)."""
-    out = np.zeros(t.size)
-    index = np.flatnonzero(keep)
-    vander = _vander(t, order) / sigma[:, None]
-    for i in lines:
-        others = index[index != i]
-        refit, *_ = np.linalg.lstsq(vander[others], lam[others] / sigma[others], rcond=None)
-        out[i] = lam[i] - _polyval(t[i], refit)
-    return out
+    return _refit_without(t, lam, sigma, keep, order, lines, studentise=False)
 
 
 def _deletion_z(t, lam, sigma, keep, order):
@@ -477,6 +470,12 @@ def _deletion_z(t, lam, sigma, keep, order):
 
 def _deletion_z_refit(t, lam, sigma, keep, order, lines):
     """Studentised deletion residuals of ``lines`` by explicit refits of the other kept lines (SVD)."""
+    return _refit_without(t, lam, sigma, keep, order, lines, studentise=True)
+
+
+def _refit_without(t, lam, sigma, keep, order, lines, *, studentise):
+    """Each of ``lines`` against the fit of the other kept lines: its residual (nm), or with
+    ``studentise`` that residual over sqrt(sigma**2 + var(prediction)). 0 for the other lines."""
     out = np.zeros(t.size)
     index = np.flatnonzero(keep)
     vander = _vander(t, order) / sigma[:, None]
@@ -485,11 +484,15 @@ def _deletion_z_refit(t, lam, sigma, keep, order, lines):
         a = vander[others]
         coeffs, *_ = np.linalg.lstsq(a, lam[others] / sigma[others], rcond=None)
         basis = vander[i] * sigma[i]
+        residual = lam[i] - basis @ coeffs
+        if not studentise:
+            out[i] = residual
+            continue
         try:
             variance = float(basis @ np.linalg.pinv(a.T @ a) @ basis)
         except np.linalg.LinAlgError:
             variance = np.inf
-        out[i] = (lam[i] - basis @ coeffs) / math.sqrt(sigma[i] ** 2 + max(variance, 0.0))
+        out[i] = residual / math.sqrt(sigma[i] ** 2 + max(variance, 0.0))
     return out
 
 
