@@ -160,6 +160,58 @@ def test_prepare_live_equals_prepare_and_reads_regions_in_place():
     assert saturated[50, 60] and saturated.sum() == 1
 
 
+def _rotated_bench_frame(seed: int = 4):
+    bench = simulate.Bench().with_(camera={"width_px": 640, "height_px": 360, "rotation_deg": 3.0},
+                                   slit={"height_px": 80.0})
+    return simulate.render(bench, source="cfl", seed=seed).image
+
+
+@pytest.mark.parametrize("method", ["optimal", "box"])
+@pytest.mark.parametrize("interpolation", ["linear", "cubic"])
+def test_strip_linearising_equals_the_whole_region(method, interpolation):
+    # process_raw_arrays linearises only the strips the remap reads; the result must be the one of
+    # linearising the whole region (FramePreparer.prepare_live), exactly: the same table, weights, dark
+    frame = _rotated_bench_frame()
+    stacked = frames.stack_frames([frame])
+    g = geometry.measure_geometry(stacked.image, saturated=stacked.saturated)
+    noise = extract.estimate_noise_model(stacked, geometry=g)
+    dark = np.random.default_rng(5).uniform(0.0, 2.0, frame.shape[:2]).astype(np.float32)
+    for preparer in (frames.FramePreparer(gamma="srgb"), frames.FramePreparer(gamma="srgb", dark=dark)):
+        live = extract.LiveExtractor(g, noise_model=noise, method=method, preparer=preparer,
+                                     interpolation=interpolation)
+        covered = sum((r1 - r0) * (c1 - c0) for r0, r1, c0, c1 in live._strips)
+        assert covered < (live.y1 - live.y0) * (live.x1 - live.x0)  # the rotated band leaves corners unread
+        region = preparer.prepare_live(frame)[0][live.y0:live.y1, live.x0:live.x1]
+        expected = live.process_prepared(np.ascontiguousarray(region))
+        for bgr, given in ((False, frame), (True, np.ascontiguousarray(frame[:, :, ::-1]))):
+            flux, variance, saturated = live.process_raw_arrays(given, bgr=bgr)
+            np.testing.assert_allclose(flux, expected[0], rtol=1e-6, atol=1e-4)
+            np.testing.assert_allclose(variance, expected[1], rtol=1e-6)
+            assert not saturated.any()
+        mono = frame[:, :, 1]
+        expected_mono = live.process_prepared(
+            np.ascontiguousarray(preparer.prepare_live(mono)[0][live.y0:live.y1, live.x0:live.x1]))
+        np.testing.assert_allclose(live.process_raw_arrays(mono)[0], expected_mono[0], rtol=1e-6, atol=1e-4)
+
+
+def test_strip_linearising_leaves_clipped_frames_to_the_general_path():
+    frame = _rotated_bench_frame().copy()
+    stacked = frames.stack_frames([frame])
+    g = geometry.measure_geometry(stacked.image, saturated=stacked.saturated)
+    live = extract.LiveExtractor(g, noise_model=extract.estimate_noise_model(stacked, geometry=g), method="optimal")
+    row = int(round(g.centre_row))
+    x0, y0, x1, y1 = live.region
+    rect_to_frame = geometry.remap_tables(g)
+    fx, fy = rect_to_frame[0][row, g.n_columns // 2], rect_to_frame[1][row, g.n_columns // 2]
+    frame[int(fy), int(fx)] = 255  # one clipped pixel inside the aperture
+    assert live._linearise_strips(frame[y0:y1, x0:x1], False) is None
+    flux, variance, saturated = live.process_raw_arrays(frame)
+    expected = live.process_prepared(*live.prepare_raw(frame))
+    np.testing.assert_array_equal(saturated, expected[2])
+    assert saturated.sum() >= 1
+    np.testing.assert_allclose(flux, expected[0], rtol=1e-6)
+
+
 def test_product_in_blocks_equals_matmul():
     rng = np.random.default_rng(3)
     a = rng.random((7, 171)).astype(np.float32)
