@@ -79,6 +79,25 @@ def test_extract_each_writes_a_series(capsys, frames, cal_file, tmp_path):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["series_0000.csv", "series_0001.csv"]
 
 
+def test_extract_each_keeps_an_existing_series_without_force(capsys, frames, cal_file, tmp_path):
+    out = tmp_path / "series.csv"
+    argv = ["extract", str(frames / "hg.png"), str(frames / "ne.png"), "--calibration", str(cal_file), "--each",
+            "--out", str(out)]
+    assert run(capsys, *argv)[0] == 0
+    first = {p.name: p.read_bytes() for p in tmp_path.iterdir()}
+    assert sorted(first) == ["series_0000.csv", "series_0001.csv"]
+    code, _, stderr = run(capsys, *argv)
+    assert code == 2 and len(stderr.strip().splitlines()) == 1 and "Traceback" not in stderr
+    assert "series_0000.csv already exists" in stderr and "--force" in stderr
+    assert {p.name: p.read_bytes() for p in tmp_path.iterdir()} == first  # nothing overwritten, no temporary file
+    assert run(capsys, *argv, "--force")[0] == 0
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["series_0000.csv", "series_0001.csv"]
+    # the rewritten files are whole spectra again (header and rows)
+    rows = [line for line in (tmp_path / "series_0001.csv").read_text().splitlines() if not line.startswith("#")]
+    assert rows[0].split(",")[:4] == ["wavelength_nm", "intensity", "uncertainty", "saturated"]
+    assert len(rows) > 100
+
+
 def test_lines_table_and_json(capsys, frames, cal_file, tmp_path):
     spec = tmp_path / "hg.csv"
     assert main(["extract", str(frames / "hg.png"), "--calibration", str(cal_file), "--out", str(spec)]) == 0

@@ -435,6 +435,82 @@ def test_a_failing_writer_body_leaves_nothing(tmp_path):
     assert _listing(tmp_path) == []
 
 
+# --------------------------------------------------------------------------- series: a writer thread, one flush at the end
+
+
+def _series(calibrated, n=5):
+    """A time series as the pipeline makes it: the axis repeats, the intensity changes (one sign of zero flips)."""
+    spectra = []
+    for k in range(n):
+        intensity = calibrated.intensity * (1.0 + 0.1 * k)
+        intensity[9] = 0.0 if k % 2 else -0.0  # "-0.0" and "0.0" print differently
+        spectra.append(calibrated.with_(intensity=intensity))
+    spectra[-1] = spectra[-1].with_(wavelength_nm=spectra[-1].wavelength_nm + 0.25)  # the axis changes once
+    return spectra
+
+
+@pytest.mark.parametrize("threaded", [True, False])
+def test_series_writer_writes_what_write_spectrum_writes(tmp_path, monkeypatch, calibrated, threaded):
+    spectra = _series(calibrated)
+    alone = tmp_path / "alone"
+    alone.mkdir()
+    for k, spectrum in enumerate(spectra):
+        bio.write_spectrum(spectrum, alone / f"s_{k}.csv")
+    synced = []
+    monkeypatch.setattr(bio.os, "fsync", lambda fd: synced.append(fd))  # no file is flushed one by one
+    if hasattr(os, "sync"):
+        monkeypatch.setattr(bio.os, "sync", lambda: synced.append("all"))
+    series = tmp_path / "series"
+    series.mkdir()
+    with bio.SeriesWriter(threaded=threaded) as writer:
+        for k, spectrum in enumerate(spectra):
+            writer.write(spectrum, series / f"s_{k}.csv")
+        assert "all" not in synced
+    assert writer.written == [series / f"s_{k}.csv" for k in range(len(spectra))]
+    # once closed: one flush of everything and one of the folder (POSIX)
+    assert synced.count("all") == (1 if hasattr(os, "sync") else 0)
+    for k in range(len(spectra)):
+        assert (series / f"s_{k}.csv").read_bytes() == (alone / f"s_{k}.csv").read_bytes(), k
+        _assert_same(bio.read_spectrum(series / f"s_{k}.csv"), spectra[k])
+    assert _listing(series) == [f"s_{k}.csv" for k in range(len(spectra))]  # no temporary file left
+
+
+def test_series_writer_keeps_existing_files_and_earlier_ones_on_errors(tmp_path, monkeypatch, calibrated):
+    spectra = _series(calibrated, 4)
+    existing = tmp_path / "s_2.csv"
+    existing.write_text("an earlier run\n")
+    with pytest.raises(ExportError, match=r"s_2\.csv already exists; pass --force"):
+        with bio.SeriesWriter() as writer:
+            for k, spectrum in enumerate(spectra):
+                writer.write(spectrum, tmp_path / f"s_{k}.csv")
+    assert existing.read_text() == "an earlier run\n"
+    assert _listing(tmp_path) == ["s_0.csv", "s_1.csv", "s_2.csv"]  # nothing after the error
+    with bio.SeriesWriter(force=True) as writer:
+        writer.write(spectra[2], existing)
+    _assert_same(bio.read_spectrum(existing), spectra[2])
+    # the disk fills during the third file: the first two stay whole, no temporary file is left
+    folder = tmp_path / "full"
+    folder.mkdir()
+    real_fdopen = os.fdopen
+    opened = []
+
+    def fdopen(fd, mode):
+        opened.append(fd)
+        return _FullDisk(real_fdopen(fd, mode), 10**9 if len(opened) < 3 else 100)
+
+    monkeypatch.setattr(bio.os, "fdopen", fdopen)
+    writer = bio.SeriesWriter()
+    with pytest.raises(ExportError, match="disk is full"):
+        for k, spectrum in enumerate(spectra):
+            writer.write(spectrum, folder / f"s_{k}.csv")
+        writer.close()
+    with pytest.raises(ExportError, match="disk is full"):
+        writer.close()  # the error stays the writer's answer
+    monkeypatch.undo()
+    assert _listing(folder) == ["s_0.csv", "s_1.csv"]
+    _assert_same(bio.read_spectrum(folder / "s_1.csv"), spectra[1])
+
+
 # --------------------------------------------------------------------------- provenance
 
 

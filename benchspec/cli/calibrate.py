@@ -178,10 +178,16 @@ def _extract(args) -> int:
 
 
 def _extract_series(args, out: Path, response) -> int:
-    """--each: stream one spectrum per frame to SPEC_0000.csv, SPEC_0001.csv, ... as they are made."""
+    """--each: stream one spectrum per frame to SPEC_0000.csv, SPEC_0001.csv, ... as they are made.
+
+    The files are written on a writer thread (``io.SeriesWriter``): each one
+    atomically (temporary name, then rename), and the whole series flushed
+    to disk once at the end instead of file by file.
+    """
     import re
 
     from ..analysis.response import apply_response
+    from ..io import DATA_EXTENSIONS, SeriesWriter
     from ..pipeline import iter_extract_frames
 
     pattern = re.compile(re.escape(out.stem) + r"_\d{4,}" + re.escape(out.suffix) + "$")
@@ -189,18 +195,17 @@ def _extract_series(args, out: Path, response) -> int:
     clash = sorted(p for p in folder.glob(f"{out.stem}_*{out.suffix}") if pattern.match(p.name))
     if clash and not args.force:
         raise ExportError(f"{clash[0]} already exists; pass --force to overwrite the series, or choose another name")
-    first = last = None
     count = 0
-    for spectrum in iter_extract_frames(args.frames, args.calibration, dark=args.dark, extraction=args.extraction):
-        if response is not None:
-            spectrum = apply_response(spectrum, response)
-        target = out.with_name(f"{out.stem}_{count:04d}{out.suffix}")
-        _write(spectrum, target, force=args.force)
-        first = first or target
-        last = target
-        count += 1
+    # plots (.png/.svg/.pdf) are drawn on this thread: matplotlib is not shared between threads
+    with SeriesWriter(force=args.force, threaded=out.suffix.lower() in DATA_EXTENSIONS) as writer:
+        for spectrum in iter_extract_frames(args.frames, args.calibration, dark=args.dark, extraction=args.extraction):
+            if response is not None:
+                spectrum = apply_response(spectrum, response)
+            writer.write(spectrum, out.with_name(f"{out.stem}_{count:04d}{out.suffix}"))
+            count += 1
     if count == 0:
         raise ExportError("no frames to extract; pass image files, a folder, a glob pattern or a video")
+    first, last = (out.with_name(f"{out.stem}_{k:04d}{out.suffix}") for k in (0, count - 1))
     print(f"wrote {count} spectra: {first.name} ... {last.name}")
     return 0
 
