@@ -834,15 +834,16 @@ class LiveExtractor:
         self._profile = (profile / profile.sum())[:, None]
         self._pixel = np.arange(n_cols, dtype=np.float64)
         self._roi_preparers: dict = {}
+        self._strip_weights: dict = {}
         for bgr in (False, True):  # built now: prepare_raw may be called from another thread
             self._region_preparer(bgr)._table(np.uint8)
+            self._strip_weights[bgr] = np.asarray(self._region_preparer(bgr).weights, np.float32).reshape(1, 3)
         self._prepare_buffers: dict = {}  # the linearised region, reused between frames
         # the strip-wise linearisation of process_raw_arrays: the region's image (pixels no sample reads stay 0)
         # and one strip of the three linearised channels, both reused between frames
         roi_shape = (self.y1 - self.y0, self.x1 - self.x0)
         self._strip_image = np.zeros(roi_shape, np.float32)
         self._strip_channels = np.empty((_STRIP_ROWS, roi_shape[1], 3), np.float32)
-        self._strip_weights: dict = {}
         self._buffer = np.empty((n_rows, n_cols), np.float32)
         self._sat_buffer = np.empty((n_rows, n_cols), np.uint8)
         area = jacobian(geometry)  # None when 1 everywhere
@@ -1114,7 +1115,8 @@ class LiveExtractor:
             return flux, var, np.zeros(flux.shape, dtype=bool)
         return self.process_prepared(*self._region_preparer(bgr).prepare_live(roi, buffers=self._prepare_buffers))
 
-    def _linearise_strips(self, roi: np.ndarray, bgr: bool) -> np.ndarray | None:
+    def _linearise_strips(self, roi: np.ndarray, bgr: bool, *, image: np.ndarray | None = None,
+                          channels: np.ndarray | None = None) -> np.ndarray | None:
         """The linear image of an 8-bit region with nothing clipped, strip by strip; None otherwise.
 
         The same look-up table, channel weights and dark as
@@ -1132,11 +1134,9 @@ class LiveExtractor:
         preparer = self._region_preparer(bgr)
         full = preparer.full_scale(np.uint8)
         table = preparer._table(np.uint8)
-        image = self._strip_image
-        channels = self._strip_channels
-        weights = self._strip_weights.get(bgr)
-        if weights is None:
-            weights = self._strip_weights[bgr] = np.asarray(preparer.weights, np.float32).reshape(1, 3)
+        image = self._strip_image if image is None else image  # another thread passes its own buffers
+        channels = self._strip_channels if channels is None else channels
+        weights = self._strip_weights[bgr]
         dark = preparer.dark
         if dark is not None and dark.shape != image.shape:
             return None  # the general path names the mismatch
@@ -1173,7 +1173,16 @@ class LiveExtractor:
         """
         frame = np.asarray(frame)
         check_frame_size(frame.shape, self.geometry)
-        return self._region_preparer(bgr).prepare_live(frame[self.y0:self.y1, self.x0:self.x1], buffers=buffers)
+        roi = frame[self.y0:self.y1, self.x0:self.x1]
+        if buffers is None:
+            buffers = {}
+        if "strip_image" not in buffers:
+            buffers["strip_image"] = np.zeros_like(self._strip_image)
+            buffers["strip_channels"] = np.empty_like(self._strip_channels)
+        image = self._linearise_strips(roi, bgr, image=buffers["strip_image"], channels=buffers["strip_channels"])
+        if image is not None:
+            return image, None
+        return self._region_preparer(bgr).prepare_live(roi, buffers=buffers)
 
     def process_prepared(self, image_roi: np.ndarray, sat_roi: np.ndarray | None = None):
         """(intensity, variance, saturated) from :meth:`prepare_raw`'s region and mask."""

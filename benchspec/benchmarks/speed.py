@@ -41,7 +41,10 @@ spectrum per frame by :func:`benchspec.pipeline.iter_extract_frames` (what
 extractor, the calibrated axis), against reading the same video with OpenCV
 alone (``cv2.VideoCapture.read``); the bare live extractor on one and on two
 threads is timed beside it. One more pass of the pipeline gives the time to
-its first spectrum (setting the series up) apart from the rate after it. Memory must
+its first spectrum (setting the series up) apart from the rate after it. The
+command itself, ``benchspec extract --each VIDEO --calibration CAL.json --out
+S.csv`` (a CSV file per frame), is run in the same process (imports done) and
+timed the same way, as files per second against the decode-only rate. Memory must
 stay bounded for a time series of any length: the growth of the process's
 resident memory and of the Python heap (:mod:`tracemalloc`) between frame 100
 and frame 300 is reported.
@@ -504,10 +507,12 @@ def _write_video(frames_rgb, path: Path, n_frames: int, fps: float = 30.0) -> No
         writer.release()
 
 
-def _decode_only(path: Path) -> tuple[float, int]:
+def _decode_only(path: Path, cpu: list | None = None) -> tuple[float, int]:
+    """(seconds, frames) of reading the video with OpenCV alone; ``cpu`` gets the process CPU seconds appended."""
     capture = cv2.VideoCapture(str(path))
     count = 0
     start = time.perf_counter()
+    start_cpu = time.process_time()
     try:
         while True:
             ok, _ = capture.read()
@@ -516,6 +521,8 @@ def _decode_only(path: Path) -> tuple[float, int]:
             count += 1
     finally:
         capture.release()
+    if cpu is not None:
+        cpu.append(time.process_time() - start_cpu)
     return time.perf_counter() - start, count
 
 
@@ -550,25 +557,37 @@ def _streaming_runner(scene: _Scene, *, threaded: bool):
     return chain, f"frames.iter_video + {what}"
 
 
-def _rates(runner, path: Path, passes: int = 2) -> tuple[float, float, int, int]:
-    """(decode-only seconds, runner seconds, frames decoded, items produced), best of ``passes`` interleaved."""
-    decode_runs, runner_runs = [], []
+def _rates(runner, path: Path, passes: int = 2, cpu: dict | None = None) -> tuple[float, float, int, int]:
+    """(decode-only seconds, runner seconds, frames decoded, items produced), best of ``passes`` interleaved.
+
+    ``runner(path)`` is iterated (an iterator of spectra) or, when it returns an int, taken as the
+    count it produced. ``cpu`` (a dict) gets the smallest process CPU seconds of each kind.
+    """
+    decode_runs, runner_runs, decode_cpu, runner_cpu = [], [], [], []
     count = produced = 0
     for _ in range(passes):
-        seconds, count = _decode_only(path)
+        seconds, count = _decode_only(path, decode_cpu)
         decode_runs.append(seconds)
         start = time.perf_counter()
+        start_cpu = time.process_time()
         produced = 0
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            for _item in runner(path):
-                produced += 1
+            items = runner(path)
+            if isinstance(items, int):
+                produced = items
+            else:
+                for _item in items:
+                    produced += 1
         runner_runs.append(time.perf_counter() - start)
+        runner_cpu.append(time.process_time() - start_cpu)
+    if cpu is not None:
+        cpu.update(decode_s=min(decode_cpu), each_s=min(runner_cpu))
     return min(decode_runs), min(runner_runs), count, produced
 
 
-def _rate_record(what: str, decode_s: float, each_s: float, count: int, produced: int) -> dict:
-    return {
+def _rate_record(what: str, decode_s: float, each_s: float, count: int, produced: int, cpu: dict | None = None) -> dict:
+    record = {
         "available": True,
         "what": what,
         "frames_decoded": count,
@@ -579,6 +598,10 @@ def _rate_record(what: str, decode_s: float, each_s: float, count: int, produced
         "each_ms_per_frame": 1000.0 * each_s / max(produced, 1),
         "ratio": (produced / each_s) / (count / decode_s),
     }
+    if cpu:
+        record["decode_only_cpu_ms_per_frame"] = 1000.0 * cpu["decode_s"] / max(count, 1)
+        record["each_cpu_ms_per_frame"] = 1000.0 * cpu["each_s"] / max(produced, 1)
+    return record
 
 
 def _batch(scene: _Scene, *, n_frames: int, folder: Path, progress, quick: bool) -> dict:
@@ -637,8 +660,9 @@ def _pipeline_each(scene: _Scene, folder: Path, path: Path, *, n_frames: int, pr
 
     name = "pipeline.iter_extract_frames" if streaming else "pipeline.extract_frames(each=True)"
     extraction = str(calibration.settings.get("extraction", "optimal"))
+    cpu: dict = {}
     record = _rate_record(f"{name} ({extraction} extraction, the calibration's; what extract --each runs)",
-                          *_rates(runner, path, passes=2))
+                          *_rates(runner, path, passes=2, cpu=cpu), cpu=cpu)
     record["frames"] = n_frames
     record.update(_first_and_rest(runner, path, decode_fps=record["decode_only_fps"]))
     record["memory"] = _memory_growth(runner, path, n_frames)
@@ -658,6 +682,54 @@ def _pipeline_each(scene: _Scene, folder: Path, path: Path, *, n_frames: int, pr
         tracemalloc.stop()
     record["list_memory_held_per_frame_kb"] = per_frame / 1e3
     record["list_memory_one_hour_30fps_gb"] = per_frame * 30 * 3600 / 1e9
+    record["command"] = _command_each(calibration, folder, path, n_frames=n_frames, progress=progress)
+    return record
+
+
+def _command_each(calibration, folder: Path, path: Path, *, n_frames: int, progress) -> dict:
+    """``benchspec extract --each VIDEO --calibration CAL.json --out S.csv``, in this process (imports done).
+
+    The whole command: reading the calibration file, the series, one CSV per
+    frame (each written atomically) and the flush of the series at the end.
+    Interpreter start-up and the imports are not in it (they are the same
+    for every command).
+    """
+    try:
+        from ..calfile import write_calibration
+        from ..cli import main
+    except ImportError as exc:
+        return {"available": False, "reason": str(exc)}
+    cal_path = folder / "series_calibration.json"
+    write_calibration(calibration, cal_path, force=True)
+    if progress:
+        progress(f"batch {n_frames} frames, benchspec extract --each (CSV per frame)")
+    passes = {"count": 0}
+
+    def runner(p):
+        out = folder / f"each_{passes['count']}"
+        passes["count"] += 1
+        out.mkdir()
+        import contextlib
+        import io as _stdio
+        import shutil
+
+        try:
+            with contextlib.redirect_stdout(_stdio.StringIO()):
+                code = main(["extract", str(p), "--calibration", str(cal_path), "--each", "--out", str(out / "S.csv")])
+            written = sum(1 for _ in out.glob("S_*.csv"))
+        finally:
+            shutil.rmtree(out, ignore_errors=True)
+        if code != 0:
+            raise RuntimeError(f"benchspec extract --each exited with {code}")
+        return written
+
+    try:
+        cpu: dict = {}
+        record = _rate_record("benchspec extract --each (a CSV per frame, written atomically on a writer thread, "
+                              "the series flushed once at the end; after the imports)",
+                              *_rates(runner, path, passes=2, cpu=cpu), cpu=cpu)
+    except Exception as exc:  # reported, not hidden
+        return {"available": False, "error": f"{type(exc).__name__}: {exc}"}
     return record
 
 
@@ -933,6 +1005,10 @@ def _summary(result: dict) -> list[str]:
         out.append(f"batch ({each['what']}): {each['each_fps']:.0f} fps = {each['ratio']:.2f}x the decode-only rate "
                    f"({each['decode_only_fps']:.0f} fps); target >= {TARGETS['batch_decode_ratio']:g}x: "
                    f"{_verdict(targets.get('batch_decode_ratio'))}")
+        command = each.get("command")
+        if command and command.get("available"):
+            out.append(f"  the command writing a CSV per frame: {command['each_fps']:.0f} files/s = "
+                       f"{command['ratio']:.2f}x the decode-only rate")
     return out
 
 
@@ -985,6 +1061,16 @@ def format_report(result: dict) -> str:
                     out.append(f"    the list of pipeline.extract_frames(each=True) holds "
                                f"{record['list_memory_held_per_frame_kb']:.0f} kB per frame: "
                                f"{record['list_memory_one_hour_30fps_gb']:.1f} GB for an hour at 30 fps")
+                if "each_cpu_ms_per_frame" in record:
+                    out.append(f"    process CPU {record['each_cpu_ms_per_frame']:.2f} ms per frame (all threads) vs "
+                               f"{record['decode_only_cpu_ms_per_frame']:.2f} ms decoding alone")
+                command = record.get("command")
+                if command and command.get("available"):
+                    out.append(f"  {command['each_fps']:6.0f} files/s vs decode only {command['decode_only_fps']:4.0f} "
+                               f"fps = {command['ratio']:.2f}x, CPU {command['each_cpu_ms_per_frame']:.2f} ms per frame: "
+                               f"{command['what']}")
+                elif command:
+                    out.append(f"  extract --each: not measured ({command.get('reason') or command.get('error')})")
             out.append(
                 f"memory from frame {memory['from_frame']} to {memory['to_frame']}: resident "
                 f"{memory['rss_growth_mb']:+.1f} MB, Python heap {memory['traced_growth_mb']:+.2f} MB "
