@@ -25,12 +25,29 @@ lines vs NIST
     extracted and their isolated lines (no listed neighbour of >= 5% of their
     intensity within 2.5 FWHM) compared with the NIST wavelengths of the
     packaged line lists, in px; inside the calibrated span and over all lines.
+line centres vs truth
+    The same lines' centres against the simulator's truth, in px, with their
+    stated 1-sigma (pull = error / sigma). The truth of a centre in an extracted
+    spectrum is where the line lies on each aperture row of the rectified band,
+    averaged with the band's spatial profile (``row_averaged_truth``): a slit
+    image left slightly curved by the rectification moves the summed line by
+    the mean of its sag over the rows, the same on every frame of the setup
+    (a smooth error the CFL calibration absorbs). The error against the centre
+    row's truth alone is reported beside it; the difference is that
+    rectification residual.
 curvature
     On the benches with smile >= 10 px: the median FWHM of the narrow Hg I lines
     of a mercury frame (geometry from the CFL frame) after rectification and
     after summing rows uncorrected, each over the slit image's FWHM from the
-    truth (target: rectified within 10%). The CFL's own phosphor lines are
-    about 2 nm wide in themselves and would measure the lamp, not the correction.
+    truth (target: rectified within 10%). The slit image's FWHM is the one the
+    camera records: the line-spread function and the slit width, integrated
+    over a pixel (2.3548 sqrt(sigma_lsf^2 + w^2/12 + 1/12)); the pixel's 1/12 px^2
+    is in every recorded line, and the Gaussian fit of a perfectly straight,
+    pixel-integrated line reads that width (a fit of a sampled Gaussian). The
+    CFL's own phosphor lines are about 2 nm wide in themselves and would
+    measure the lamp, not the correction. Beside it: the same bench's mercury
+    frame rendered with no smile (rotation kept), measured the same way
+    (``straight``): what the rotated frame gives when nothing is curved.
 """
 
 from __future__ import annotations
@@ -48,6 +65,7 @@ from ..refdata import load_line_list
 __all__ = ["run", "format_report", "draw_bench", "truth_wavelength_at"]
 
 CHECK_SPECIES = ("He", "Ne", "H", "Hg", "Na")
+_FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * math.log(2.0))
 _LAMP_OF = {"He": "he", "Ne": "ne", "H": "h", "Hg": "hg", "Na": "na"}
 
 
@@ -133,6 +151,46 @@ def truth_wavelength_at(columns, geometry, truth) -> np.ndarray:
     return np.interp(column, mapping["rectified_column_px"], mapping["wavelength_nm"], left=np.nan, right=np.nan)
 
 
+def row_averaged_truth(bench, geometry, wavelength_nm: float, start_column: float) -> tuple[float, float]:
+    """(profile-weighted mean over the aperture rows, centre row) of the rectified column of a rendered line.
+
+    On each rectified row v the line of ``wavelength_nm`` lies at the column u where the frame
+    point ``geometry.frame_coordinates(u, v)`` falls on the simulator's slit image of that
+    wavelength (its smile included); found by Newton steps from ``start_column``. NaN where the
+    line leaves the frame on too many rows.
+    """
+    from ..simulate import _columns, _projection
+
+    proj = _projection(bench)
+    theta = math.radians(bench.camera.rotation_deg)
+    c, s = math.cos(theta), math.sin(theta)
+    px, py = proj.centre_column_px, proj.band_row_px
+    a0, a1 = geometry.aperture_rows
+    rows = np.arange(a0, a1, dtype=float)
+    weight = np.asarray(geometry.spatial_profile, dtype=float)
+    if weight.size != rows.size or not np.any(weight > 0):
+        weight = np.ones(rows.size)
+
+    def offset(u):
+        x, y = geometry.frame_coordinates(u, rows)
+        dx, dy = x - px, y - py
+        canvas_x, canvas_y = c * dx + s * dy + px, -s * dx + c * dy + py  # undo the frame's rotation
+        with np.errstate(invalid="ignore"):
+            return canvas_x - _columns(bench, proj, wavelength_nm, canvas_y - py)
+
+    u = np.full(rows.size, float(start_column))
+    for _ in range(6):
+        f = offset(u)
+        slope = offset(u + 0.5) - offset(u - 0.5)
+        u = u - f / np.where(np.abs(slope) > 1e-6, slope, 1.0)
+    ok = np.isfinite(u) & (np.abs(offset(u)) < 1e-3)
+    centre = geometry.centre_row - a0
+    if ok.sum() < 0.5 * rows.size:
+        return float("nan"), float("nan")
+    mean = float(np.sum(weight[ok] * u[ok]) / np.sum(weight[ok]))
+    return mean, (float(u[centre]) if 0 <= centre < rows.size and ok[centre] else float("nan"))
+
+
 def _isolated_lines(species: str, fwhm_nm: float):
     lines = load_line_list(species).lines
     wl = np.array([l.wavelength_nm for l in lines])
@@ -200,7 +258,17 @@ def _lines_vs_nist(calibration, bench, drawn, seed):
                 continue
             disp = abs(float(w.solution.dispersion_nm_per_px(line.centre_px)))
             inside = low_px <= line.centre_px <= high_px
-            rows.append(((line.centre_nm - near[0][0]) / disp, inside, near[0][0]))
+            rendered = [t["wavelength_nm"] for t in truth["lines"] if abs(t["wavelength_nm"] - near[0][0]) < 1e-6]
+            truth_error = None
+            if rendered:
+                averaged, centre_row = row_averaged_truth(bench, calibration.geometry, rendered[0], line.centre_px)
+                if np.isfinite(averaged):
+                    truth_error = {"error_px": line.centre_px - averaged, "error_centre_row_px": line.centre_px - centre_row,
+                                   "sigma_px": line.centre_uncertainty_px,
+                                   "sigma_total_px": getattr(line, "centre_total_uncertainty_px", line.centre_uncertainty_px),
+                                   "snr": line.snr,
+                                   "jpeg": drawn["jpeg_quality"] is not None, "gamma": drawn["gamma"]}
+            rows.append(((line.centre_nm - near[0][0]) / disp, inside, near[0][0], truth_error))
         out[species] = rows
     return out
 
@@ -216,21 +284,39 @@ def _curvature(calibration, bench, drawn, seed, truth):
     from ..frames import stack_frames
     from ..lines import find_lines
 
+    from ..geometry import measure_geometry
+
     image, _ = _frame(bench, source={"kind": "lamp", "name": "hg"}, seed=seed + 77,
                       jpeg_quality=drawn["jpeg_quality"])
     stacked = stack_frames([image], gamma=drawn["gamma"])
     geometry = calibration.geometry
     if not geometry.curvature_known:
         return None
-    straight = dataclasses.replace(geometry, curvature_coefficients=(0.0,), tilt_coefficients=(0.0,))
-    slit_fwhm = float(truth["geometry"]["slit_image_fwhm_px"])
-    widths = []
-    for g in (geometry, straight):
-        spectrum = extract_stack(stacked, g, method="box")
+    uncorrected = dataclasses.replace(geometry, curvature_coefficients=(0.0,), tilt_coefficients=(0.0,))
+    # The recorded slit image: LSF and slit width (the simulator's optical FWHM) integrated over a pixel.
+    optical_fwhm = float(truth["geometry"]["slit_image_fwhm_px"])
+    slit_fwhm = math.sqrt(optical_fwhm**2 + _FWHM_PER_SIGMA**2 / 12.0)
+
+    def median_fwhm(frame, g):
+        spectrum = extract_stack(frame, g, method="box")
         table = find_lines(spectrum, min_snr=20.0)
         good = [l.fwhm_px for l in table if not l.blended and not l.saturated]
-        widths.append(float(np.median(good)) / slit_fwhm if good else float("nan"))
-    return widths[0], widths[1]
+        return float(np.median(good)) if good else float("nan")
+
+    rectified = median_fwhm(stacked, geometry)
+    flat = median_fwhm(stacked, uncorrected)
+    # The same bench with straight slit images (rotation kept), its geometry from its own frame.
+    straight = float("nan")
+    try:
+        image, _ = _frame(bench.with_(slit={"smile_px": 0.0}), source={"kind": "lamp", "name": "hg"}, seed=seed + 77,
+                          jpeg_quality=drawn["jpeg_quality"])
+        frame = stack_frames([image], gamma=drawn["gamma"])
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", DegradedResultWarning)
+            straight = median_fwhm(frame, measure_geometry(frame.image, saturated=frame.saturated))
+    except BenchspecError:
+        pass
+    return rectified / slit_fwhm, flat / slit_fwhm, rectified / optical_fwhm, rectified / straight
 
 
 def run(quick: bool = False, *, seed: int = 20261201, n_benches: int | None = None, verbose: bool = False) -> dict:
@@ -319,7 +405,8 @@ def run(quick: bool = False, *, seed: int = 20261201, n_benches: int | None = No
             ratios = _curvature(calibration, bench, drawn, bench_seed, truth)
             if ratios is not None:
                 curvature.append(ratios)
-                record["fwhm_over_slit"] = {"rectified": ratios[0], "uncorrected": ratios[1]}
+                record["fwhm_over_slit"] = {"rectified": ratios[0], "uncorrected": ratios[1],
+                                            "rectified_over_optical": ratios[2], "rectified_over_straight": ratios[3]}
         records.append(record)
 
     statuses = [r["status"] for r in records]
@@ -362,11 +449,44 @@ def run(quick: bool = False, *, seed: int = 20261201, n_benches: int | None = No
         "n_inside": len(inside_all),
         "n_all": len(all_rows),
     }
+    def stat(k, f):
+        return float(f([c[k] for c in curvature])) if curvature else float("nan")
+
     curvature_summary = {
         "benches": len(curvature),
-        "fwhm_over_slit_rectified_median": float(np.nanmedian([c[0] for c in curvature])) if curvature else float("nan"),
-        "fwhm_over_slit_uncorrected_median": float(np.nanmedian([c[1] for c in curvature])) if curvature else float("nan"),
-        "fwhm_over_slit_rectified_max": float(np.nanmax([c[0] for c in curvature])) if curvature else float("nan"),
+        "fwhm_over_slit_rectified_median": stat(0, np.nanmedian),
+        "fwhm_over_slit_uncorrected_median": stat(1, np.nanmedian),
+        "fwhm_over_slit_rectified_max": stat(0, np.nanmax),
+        "fwhm_over_optical_slit_rectified_median": stat(2, np.nanmedian),
+        "fwhm_over_straight_rectified_median": stat(3, np.nanmedian),
+        "fwhm_over_straight_rectified_max": stat(3, np.nanmax),
+    }
+    truth_rows = [r[3] for rows in nist.values() for r in rows if r[3] is not None]
+
+    def centre_stats(selected):
+        if not selected:
+            return {"n": 0}
+        e = np.array([t["error_px"] for t in selected])
+        e_row = np.array([t["error_centre_row_px"] for t in selected])
+        sig = np.array([t["sigma_px"] for t in selected])
+        total = np.array([t["sigma_total_px"] for t in selected])
+        pull, pull_total = e / sig, e / total
+        return {"n": int(e.size), "rms_error_px": float(np.sqrt(np.mean(e**2))),
+                "rms_error_centre_row_px": float(np.sqrt(np.nanmean(e_row**2))),
+                "median_sigma_px": float(np.median(sig)), "pull_rms": float(np.sqrt(np.mean(pull**2))),
+                "pull_width_mad": float(1.4826 * np.median(np.abs(pull))),
+                "fraction_beyond_3_sigma": float(np.mean(np.abs(pull) > 3)),
+                "median_sigma_total_px": float(np.median(total)),
+                "pull_rms_total": float(np.sqrt(np.mean(pull_total**2))),
+                "pull_width_mad_total": float(1.4826 * np.median(np.abs(pull_total))),
+                "fraction_beyond_3_sigma_total": float(np.mean(np.abs(pull_total) > 3))}
+
+    centres_summary = {
+        "all": centre_stats(truth_rows),
+        "png": centre_stats([t for t in truth_rows if not t["jpeg"]]),
+        "jpeg": centre_stats([t for t in truth_rows if t["jpeg"]]),
+        "gamma_1": centre_stats([t for t in truth_rows if t["gamma"] == "1"]),
+        "snr_below_100": centre_stats([t for t in truth_rows if t["snr"] < 100]),
     }
     targets = {
         "calibration succeeds on 100% (RMS < 0.5 px, every line correctly assigned)": summary["success_rate"] == 1.0,
@@ -381,6 +501,7 @@ def run(quick: bool = False, *, seed: int = 20261201, n_benches: int | None = No
     return {
         "calibration": summary,
         "lines_vs_nist": lines_summary,
+        "line_centres_vs_truth": centres_summary,
         "curvature": curvature_summary,
         "targets": dict(targets),
         "passed": {name: bool(v) for name, v in targets.items()},
@@ -418,9 +539,22 @@ def format_report(figures: dict) -> str:
     for species, s in lines["per_species"].items():
         out.append(f"  {species:<3s} inside span {s['rms_px_inside']:.3f} ({s['n_inside']})   all {s['rms_px_all']:.3f} ({s['n_all']})")
     out.append(f"  all species: inside span {lines['rms_px_inside']:.3f} px ({lines['n_inside']}), all {lines['rms_px_all']:.3f} px ({lines['n_all']})")
+    nan = float("nan")
+    centres = figures.get("line_centres_vs_truth", {})
+    for name, c in centres.items():
+        if c.get("n"):
+            out.append(f"  centres vs truth ({name}, {c['n']}): RMS {c['rms_error_px']:.3f} px (centre row only "
+                       f"{c['rms_error_centre_row_px']:.3f}), stated sigma median {c['median_sigma_px']:.3f} px, pull RMS "
+                       f"{c['pull_rms']:.2f}, MAD width {c['pull_width_mad']:.2f}, beyond 3 sigma {c['fraction_beyond_3_sigma']:.0%}; "
+                       f"with the systematic term: sigma {c.get('median_sigma_total_px', nan):.3f} px, pull RMS "
+                       f"{c.get('pull_rms_total', nan):.2f}, MAD width {c.get('pull_width_mad_total', nan):.2f}, "
+                       f"beyond 3 sigma {c.get('fraction_beyond_3_sigma_total', nan):.0%}")
     out.append(f"curvature (benches with smile >= 10 px: {curv['benches']}): FWHM / slit image FWHM "
                f"rectified {curv['fwhm_over_slit_rectified_median']:.3f} (max {curv['fwhm_over_slit_rectified_max']:.3f}), "
-               f"rows summed uncorrected {curv['fwhm_over_slit_uncorrected_median']:.3f}")
+               f"rows summed uncorrected {curv['fwhm_over_slit_uncorrected_median']:.3f}; over the optical FWHM "
+               f"(no pixel) {curv.get('fwhm_over_optical_slit_rectified_median', float('nan')):.3f}; over the same bench "
+               f"with no smile {curv.get('fwhm_over_straight_rectified_median', float('nan')):.3f} "
+               f"(max {curv.get('fwhm_over_straight_rectified_max', float('nan')):.3f})")
     for r in figures["benches"]:
         if r["status"] != "ok":
             out.append(f"  bench {r['index']} ({r['nm_per_px']:.2f} nm/px, order {r['order']}): {r['status']}: {r.get('reason', '')}")
