@@ -625,7 +625,7 @@ def _measure_from(frame, coarse, *, saturated, max_rotation_deg, background_gap_
                 sat_band = np.nan_to_num(_band_image(sat_float, theta_deg=theta, cx=cx, cy=cy, s0=s0, n_s=n_s, t0=t0,
                                                      n_t=n_t, tilt=tilt, curvature=curv)) > 0
             residual = _measure_curvature(band, sat_band, centre_index=-t0, half_height=half_height, s0=s0,
-                                          min_snr=min_line_snr)
+                                          min_snr=min_line_snr, short_band=trace["n_chunks"] < 3)
             if not residual["known"]:
                 if curvature is None:
                     curvature = residual
@@ -636,8 +636,17 @@ def _measure_from(frame, coarse, *, saturated, max_rotation_deg, background_gap_
 
         if trace["n_chunks"] < 3 and curvature is not None and curvature["known"] and abs(tilt[0]) > 0.005:
             # Too short a band for its edges: the slit images are perpendicular to the dispersion,
-            # so their common tilt is the remaining rotation.
-            d_rad = -math.atan(float(tilt[0]))
+            # so their tilt is the remaining rotation. The centre line crosses the band's true centre
+            # at s = 0 (where its centre was measured) but is turned by the rotation error e, so at a
+            # line s_i it runs e s_i off the apex of that line's parabola, which adds 2 c e s_i to its
+            # tilt: b(s_i) = -e (1 + 2 c(s_i) s_i). Solved per traced line and averaged; b(0) alone
+            # mistook a 7.1 deg band for 5.8 deg where the lines sat 20-40 px off the centre (c 0.0024).
+            line_s = np.asarray(curvature.get("line_s", [0.0]), dtype=float)
+            b_at = np.polynomial.polynomial.polyval(line_s, tilt)
+            lever = 1.0 + 2.0 * np.polynomial.polynomial.polyval(line_s, curv) * line_s
+            usable = lever > 0.5
+            slope = float(np.mean(b_at[usable] / lever[usable])) if usable.any() else float(tilt[0])
+            d_rad = -math.atan(slope)
             theta += math.degrees(d_rad)
             tilt = np.polynomial.polynomial.polyadd(tilt, [_TILT_SIGN * d_rad])
             notes.append("rotation taken from the tilt of the slit images (the band is too short for its edges)")
@@ -1116,8 +1125,14 @@ def _check_edges(band, profile_info) -> None:
         )
 
 
-def _measure_curvature(band, sat_band, *, centre_index, half_height, s0, min_snr) -> dict:
-    """Trace isolated emission lines across rows and fit b(s), c(s)."""
+def _measure_curvature(band, sat_band, *, centre_index, half_height, s0, min_snr, short_band: bool = False) -> dict:
+    """Trace isolated emission lines across rows and fit b(s), c(s).
+
+    ``short_band``: the band is too short for its edges, so the lines' common tilt will set the
+    rotation; a trace far off its own parabola (RMS above max(1 px, FWHM/2): it jumped between
+    features, e.g. on a JPEG frame) is then dropped while two others remain, since with the
+    three or four lines such a band holds no clipping across lines can tell it apart.
+    """
     unknown = {"known": False, "tilt": np.zeros(1), "curvature": np.zeros(1), "rms": None, "n_lines": 0}
     n_t, n_s = band.shape
     data = np.nan_to_num(band, nan=0.0)
@@ -1244,6 +1259,13 @@ def _measure_curvature(band, sat_band, *, centre_index, half_height, s0, min_snr
         line_wc.append(1.0 / max(cov[2, 2], 1e-16))
         residuals.append(rms)
         traces.append((t[keep], x[keep] + s0))
+    if short_band and len(line_s) >= 3:
+        good = np.array(residuals) <= max(1.0, 0.5 * fwhm)
+        if 2 <= good.sum() < good.size:
+            pick = np.flatnonzero(good)
+            line_s, line_b, line_c, line_wb, line_wc = ([v[k] for k in pick] for v in (line_s, line_b, line_c, line_wb, line_wc))
+            residuals = [residuals[k] for k in pick]
+            traces = [traces[k] for k in pick]
     if len(line_s) < 2:
         # one traced feature on a continuum is as likely an edge or a dip as a slit image
         unknown["reason"] = "curvature unknown: fewer than two lines could be traced across the band"
