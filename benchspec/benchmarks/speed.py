@@ -725,7 +725,7 @@ def _command_each(calibration, folder: Path, path: Path, *, n_frames: int, progr
 
     try:
         cpu: dict = {}
-        record = _rate_record("benchspec extract --each (a CSV per frame, written atomically on a writer thread, "
+        record = _rate_record("benchspec extract --each (a CSV per frame, each written atomically, "
                               "the series flushed once at the end; after the imports)",
                               *_rates(runner, path, passes=2, cpu=cpu), cpu=cpu)
     except Exception as exc:  # reported, not hidden

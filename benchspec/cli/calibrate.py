@@ -180,14 +180,14 @@ def _extract(args) -> int:
 def _extract_series(args, out: Path, response) -> int:
     """--each: stream one spectrum per frame to SPEC_0000.csv, SPEC_0001.csv, ... as they are made.
 
-    The files are written on a writer thread (``io.SeriesWriter``): each one
-    atomically (temporary name, then rename), and the whole series flushed
-    to disk once at the end instead of file by file.
+    The files are written by ``io.SeriesWriter``: each one atomically
+    (temporary name, then rename), and the whole series flushed to disk once
+    at the end instead of file by file.
     """
     import re
 
     from ..analysis.response import apply_response
-    from ..io import DATA_EXTENSIONS, SeriesWriter
+    from ..io import SeriesWriter
     from ..pipeline import iter_extract_frames
 
     pattern = re.compile(re.escape(out.stem) + r"_\d{4,}" + re.escape(out.suffix) + "$")
@@ -196,8 +196,7 @@ def _extract_series(args, out: Path, response) -> int:
     if clash and not args.force:
         raise ExportError(f"{clash[0]} already exists; pass --force to overwrite the series, or choose another name")
     count = 0
-    # plots (.png/.svg/.pdf) are drawn on this thread: matplotlib is not shared between threads
-    with SeriesWriter(force=args.force, threaded=out.suffix.lower() in DATA_EXTENSIONS) as writer:
+    with SeriesWriter(force=args.force) as writer:  # on this thread: a writer thread was not faster (see there)
         for spectrum in iter_extract_frames(args.frames, args.calibration, dark=args.dark, extraction=args.extraction):
             if response is not None:
                 spectrum = apply_response(spectrum, response)
