@@ -17,7 +17,11 @@ Top level (all keys required unless marked optional)::
     units               {"wavelength": "nm", "medium": "air", "pixel": "rectified column"}
     geometry            benchspec.geometry.Geometry.to_dict(): frame size, band position,
                         rotation, curvature (tilt/curvature polynomials), aperture and
-                        background rows (its own "schema" key is checked too)
+                        background rows (its own "schema" key is checked too).
+                        Optional "curvature_grating": [] or [k, theta_rad, s_x0_px, f_px, sign],
+                        the physical curvature shape c(s) = c_0 + k tan(theta + atan(sign
+                        (s - s_x0) / f)) taken from a grating-shaped solution; files without
+                        it (written before it existed) load as [] (polynomial curvature)
     wavelength_calibration
         solution        {"model": "polynomial", "order": 1-3,
                          "coefficients_nm": [c0, ...],           lambda = sum c_k t^k,
@@ -273,7 +277,7 @@ def _validate_wavelength(data, origin: str, n_columns: int) -> WavelengthCalibra
 _GEOMETRY_INTS = ("frame_width_px", "frame_height_px", "n_columns", "n_rows", "centre_row", "n_lines_traced")
 _GEOMETRY_NUMBERS = ("rotation_deg", "rotation_uncertainty_deg", "centre_x_px", "centre_y_px", "first_column_s_px",
                      "band_height_px")
-_GEOMETRY_NUMBER_LISTS = ("tilt_coefficients", "curvature_coefficients", "spatial_profile")
+_GEOMETRY_NUMBER_LISTS = ("tilt_coefficients", "curvature_coefficients", "curvature_grating", "spatial_profile")
 _MAX_SIDE_PX = 20000  # far above any camera frame (common practice, no source)
 
 

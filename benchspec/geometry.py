@@ -17,6 +17,23 @@ absorbs an apex that is not on the centre line). ``b`` and ``c`` are
 polynomials in ``s`` (``numpy.polynomial`` order: lowest power first) whose
 degree the number and spread of measured lines justify.
 
+Once a grating-shaped wavelength solution exists (a pinhole camera behind the
+grating, so each column has a diffraction angle ``beta(s)``), the curvature can
+take the physical shape instead (:func:`refit_curvature_grating`)::
+
+    c(s) = c_0 + k tan(beta(s)),   beta(s) = theta + atan(sign (s - s_x0) / f)
+
+A straight slit seen through a plane grating images as a curve whose
+curvature grows with tan(beta): rays from the slit's ends leave the grating
+with the same dispersion-direction cosine but a smaller forward one, which a
+flat sensor at focal length f shows as a sag of ``t**2 tan(beta) / (2 f)``
+(the textbook spectral-line curvature of plane-grating spectrographs, from
+memory; the virtual bench, :mod:`benchspec.simulate`, renders exactly that).
+Unlike a polynomial fitted to the few traced lines, that shape holds beyond
+the outermost traced lines. ``curvature_grating`` then holds
+``(k, theta_rad, s_x0_px, f_px, sign)`` and ``curvature_coefficients`` holds
+``c_0`` (or 0).
+
 Rectified coordinates are integer columns ``u`` and rows ``v``:
 ``s = first_column_s_px + u`` and ``t = v - centre_row``. The rectified
 pixel (u, v) samples the frame at ``s' = s + b(s) t + c(s) t**2``:
@@ -48,6 +65,7 @@ says whether the setup was bumped.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import warnings
 from dataclasses import MISSING, asdict, dataclass
@@ -65,6 +83,7 @@ __all__ = [
     "RectifiedBand",
     "BandShift",
     "measure_geometry",
+    "refit_curvature_grating",
     "remap_tables",
     "jacobian",
     "valid_samples",
@@ -85,6 +104,12 @@ _MIN_CONTRAST = 0.10  # band peak above background, as a fraction of the backgro
 _MIN_SNR = 10.0  # band peak over the noise of the profile
 _APERTURE_LEVEL = 0.02  # aperture: spatial profile above 2% of its peak
 _EDGE_LEVEL = 0.25  # a band whose profile is still above 25% at the frame edge is cut off
+#: Systematic error of one traced line's sag at the edge of its trace (px), added in quadrature to
+#: the parabola fit's own when curvature shapes are compared (:func:`refit_curvature_grating`).
+#: Measured: over 209 lines traced on the accuracy benchmark's odd-numbered benches, the error of
+#: the sag against the simulator's truth had a median of 0.046 px against a median stated 0.052 px,
+#: pulls 1.39 wide (1.4826 MAD); with 0.03 px added, 1.01.
+CURVATURE_SYSTEMATIC_SAG_PX = 0.03
 
 
 # --------------------------------------------------------------------------- results
@@ -124,6 +149,12 @@ class Geometry:
     curvature_coefficients : tuple of float
         ``c(s)``: polynomial coefficients, lowest power first (1/px). Zeros
         when the curvature is unknown.
+    curvature_grating : tuple of float
+        Empty (the default, and every geometry written before it existed), or
+        ``(k, theta_rad, s_x0_px, f_px, sign)``: then ``c(s)`` is the polynomial
+        plus ``k tan(theta + atan(sign (s - s_x0_px) / f_px))`` (1/px), the
+        physical shape taken from a grating-shaped wavelength solution (see
+        the module notes and :func:`refit_curvature_grating`).
     curvature_known : bool
         False when no emission line could be traced (e.g. a continuum).
     curvature_rms_px : float or None
@@ -153,6 +184,7 @@ class Geometry:
     band_height_px: float
     tilt_coefficients: tuple = (0.0,)
     curvature_coefficients: tuple = (0.0,)
+    curvature_grating: tuple = ()
     curvature_known: bool = False
     curvature_rms_px: float | None = None
     n_lines_traced: int = 0
@@ -163,7 +195,7 @@ class Geometry:
     def __post_init__(self):
         object.__setattr__(self, "aperture_rows", tuple(int(v) for v in self.aperture_rows))
         object.__setattr__(self, "background_rows", tuple(tuple(int(v) for v in pair) for pair in self.background_rows))
-        for name in ("tilt_coefficients", "curvature_coefficients", "spatial_profile"):
+        for name in ("tilt_coefficients", "curvature_coefficients", "curvature_grating", "spatial_profile"):
             object.__setattr__(self, name, tuple(float(v) for v in getattr(self, name)))
         object.__setattr__(self, "notes", tuple(str(v) for v in self.notes))
 
@@ -183,7 +215,26 @@ class Geometry:
 
     def curvature_at(self, s_px) -> np.ndarray:
         """c(s) in 1/px at positions ``s_px`` along the band."""
-        return np.polynomial.polynomial.polyval(np.asarray(s_px, float), self.curvature_coefficients)
+        s = np.asarray(s_px, float)
+        c = np.polynomial.polynomial.polyval(s, self.curvature_coefficients)
+        if self.curvature_grating:
+            k, theta, s_x0, f, sign = self.curvature_grating
+            c = c + k * np.tan(theta + np.arctan(sign * (s - s_x0) / f))
+        return c
+
+    def curvature_slope_at(self, s_px) -> np.ndarray:
+        """dc/ds in 1/px^2 at positions ``s_px`` along the band."""
+        from numpy.polynomial import polynomial as P
+
+        s = np.asarray(s_px, float)
+        coef = np.asarray(self.curvature_coefficients, float)
+        slope = P.polyval(s, P.polyder(coef)) if coef.size > 1 else np.zeros_like(s)
+        if self.curvature_grating:
+            k, theta, s_x0, f, sign = self.curvature_grating
+            z = (s - s_x0) / f
+            beta = theta + np.arctan(sign * z)
+            slope = slope + k * sign / (f * (1.0 + z * z) * np.cos(beta) ** 2)
+        return slope
 
     def tilt_at(self, s_px) -> np.ndarray:
         """b(s) (px per px) at positions ``s_px`` along the band."""
@@ -219,7 +270,7 @@ class Geometry:
         data = asdict(self)
         data["aperture_rows"] = list(self.aperture_rows)
         data["background_rows"] = [list(pair) for pair in self.background_rows]
-        for name in ("tilt_coefficients", "curvature_coefficients", "spatial_profile", "notes"):
+        for name in ("tilt_coefficients", "curvature_coefficients", "curvature_grating", "spatial_profile", "notes"):
             data[name] = list(getattr(self, name))
         return data
 
@@ -261,6 +312,12 @@ def _validate(g: Geometry) -> None:
             raise ValueError(f"background_rows {(b0, b1)} outside 0..{g.n_rows}")
     if not all(math.isfinite(v) for v in (g.rotation_deg, g.centre_x_px, g.centre_y_px, g.first_column_s_px)):
         raise ValueError("non-finite position or angle")
+    if g.curvature_grating:
+        if len(g.curvature_grating) != 5 or not all(math.isfinite(v) for v in g.curvature_grating):
+            raise ValueError("curvature_grating must be five finite numbers (k, theta_rad, s_x0_px, f_px, sign)")
+        k, theta, s_x0, f, sign = g.curvature_grating
+        if f <= 0 or sign not in (1.0, -1.0) or not abs(theta) < math.pi:
+            raise ValueError(f"curvature_grating needs f_px > 0, sign +1 or -1 and |theta| < pi, got {g.curvature_grating}")
 
 
 @dataclass(frozen=True)
@@ -365,15 +422,15 @@ def _shear_projection(small: np.ndarray, slope: float, pad: int) -> np.ndarray:
 
 
 def _band_image(image: np.ndarray, *, theta_deg: float, cx: float, cy: float, s0: float, n_s: int,
-                t0: float, n_t: int, tilt=(0.0,), curvature=(0.0,), border=float("nan")) -> np.ndarray:
+                t0: float, n_t: int, tilt=(0.0,), curvature=(0.0,), curvature_grating=(), border=float("nan")) -> np.ndarray:
     """The frame in band coordinates: out[v, u] = frame at (s = s0 + u, t = t0 + v); ``border`` outside.
 
     With zero tilt and curvature this is a pure rotation (one ``cv2.warpAffine``);
-    otherwise the curved model is applied with ``cv2.remap``.
+    otherwise the curved model (``curvature_grating`` as in :class:`Geometry`) is applied with ``cv2.remap``.
     """
     th = math.radians(theta_deg)
     c, sn = math.cos(th), math.sin(th)
-    if not np.any(tilt) and not np.any(curvature):
+    if not np.any(tilt) and not np.any(curvature) and not curvature_grating:
         matrix = np.array([[c, -sn, cx + s0 * c - t0 * sn], [sn, c, cy + s0 * sn + t0 * c]], dtype=np.float64)
         return cv2.warpAffine(image, matrix, (int(n_s), int(n_t)), flags=cv2.INTER_LINEAR | cv2.WARP_INVERSE_MAP,
                               borderMode=cv2.BORDER_CONSTANT, borderValue=border)
@@ -381,6 +438,9 @@ def _band_image(image: np.ndarray, *, theta_deg: float, cx: float, cy: float, s0
     t = t0 + np.arange(int(n_t), dtype=np.float64)[:, None]
     b = np.polynomial.polynomial.polyval(s, tilt)
     k = np.polynomial.polynomial.polyval(s, curvature)
+    if curvature_grating:
+        gk, g_theta, s_x0, f, sign = curvature_grating
+        k = k + gk * np.tan(g_theta + np.arctan(sign * (s - s_x0) / f))
     s_curved = s + b * t + k * t * t
     map_x = (cx + s_curved * c - t * sn).astype(np.float32)
     map_y = (cy + s_curved * sn + t * c).astype(np.float32)
@@ -1297,7 +1357,152 @@ def _measure_curvature(band, sat_band, *, centre_index, half_height, s0, min_snr
         res_all.append(r - np.average(r))
     rms = float(np.sqrt(np.mean(np.concatenate(res_all) ** 2))) if res_all else None
     return {"known": True, "tilt": tilt, "curvature": curvature, "rms": rms, "n_lines": int(np.sum(keep_c & keep_b)),
-            "line_s": line_s, "line_c": np.array(line_c)}
+            "line_s": line_s, "line_c": np.array(line_c), "line_wc": np.array(line_wc), "traces": traces,
+            "max_degree": max_c, "keep_c": keep_c}
+
+
+def refit_curvature_grating(image, geometry: Geometry, *, theta_rad: float, x0_px: float, f_px: float, sign: float,
+                            saturated=None, min_line_snr: float = 15.0) -> tuple[Geometry, dict]:
+    """Refit the slit images' curvature with the physical shape ``c0 + k tan(beta(s))``, where the data support it.
+
+    Parameters
+    ----------
+    image : ndarray, shape (H, W)
+        The linear frame the geometry was measured on (e.g. ``StackedFrame.image``).
+    geometry : Geometry
+        From :func:`measure_geometry` on that frame, with a known curvature.
+    theta_rad, x0_px, f_px, sign : float, keyword-only
+        The diffraction angle along the rectified columns ``p``,
+        ``beta(p) = theta + atan(sign (p - x0) / f)``: the parameters of a grating-shaped
+        wavelength solution (:class:`benchspec.wavecal.WavelengthSolution` with
+        ``model == "grating"``: ``coefficients[1:]`` and ``grating_sign``).
+    saturated : ndarray of bool, shape (H, W), optional
+    min_line_snr : float, keyword-only
+        As in :func:`measure_geometry`.
+
+    Returns
+    -------
+    (Geometry, dict)
+        The geometry with ``curvature_grating`` set (the polynomial kept as ``c0``) when the
+        physical shape is taken, else ``geometry`` unchanged; and what was compared:
+        ``used`` (bool), ``reason``, ``n_lines``, the models' ``bic`` and ``rms_px``.
+
+    Notes
+    -----
+    The lines are traced again (as in :func:`measure_geometry`) on the band resampled with the
+    geometry's own model, so each line's total curvature is the model's at that line plus
+    what is left. Three shapes are fitted to those per-line curvatures with their weights
+    (1 / variance of each line's parabola fit): the geometry's polynomial (its own degree),
+    ``k tan(beta)`` and ``c0 + k tan(beta)``, on the lines the polynomial keeps after sigma
+    clipping; each line's variance also holds a systematic :data:`CURVATURE_SYSTEMATIC_SAG_PX`
+    of sag at its trace's edge. Each gets a BIC, ``chi2 / s2 + p ln n`` with ``s2`` the polynomial's reduced
+    chi-square where that exceeds 1 (the per-line variances leave out JPEG and resampling
+    errors, common practice). The better physical shape is taken when its BIC is no larger than
+    the polynomial's, or when the lines do not reject it (its chi-square below the 99th
+    percentile for its degrees of freedom: the shape is known beforehand, the polynomial is
+    only a description of the traced lines), and the diffraction angle stays within 80 deg
+    across the band.
+    The physics (from memory): a straight slit seen through a plane grating images as a curve
+    of curvature proportional to tan(beta) (the spectral-line curvature of plane-grating
+    spectrographs); the virtual bench renders it so.
+    """
+    frame = _as_image(image)
+    check_frame_size(frame.shape, geometry)
+    if not (math.isfinite(f_px) and f_px > 0 and sign in (1, -1, 1.0, -1.0)
+            and all(math.isfinite(v) for v in (theta_rad, x0_px))):
+        raise InputError(f"the grating parameters need a finite theta and x0, f_px > 0 and sign +1 or -1; got "
+                         f"theta {theta_rad}, x0 {x0_px}, f {f_px}, sign {sign}")
+    info = {"used": False, "reason": "", "n_lines": 0}
+    if not geometry.curvature_known:
+        info["reason"] = "curvature unknown"
+        return geometry, info
+    s0 = geometry.first_column_s_px
+    s_x0 = float(x0_px) + s0
+    s_edges = s0 + np.array([0.0, geometry.n_columns - 1.0])
+    beta_edges = theta_rad + np.arctan(sign * (s_edges - s_x0) / f_px)
+    if np.max(np.abs(beta_edges)) > math.radians(80.0):
+        info["reason"] = "diffraction angle beyond 80 deg on the band"
+        return geometry, info
+    half_height = max(2.0, geometry.band_height_px / 2.0)
+    t0 = -int(math.ceil(1.2 * half_height + 6))
+    n_t = 2 * -t0 + 1
+    options = dict(theta_deg=geometry.rotation_deg, cx=geometry.centre_x_px, cy=geometry.centre_y_px, s0=s0,
+                   n_s=geometry.n_columns, t0=t0, n_t=n_t, tilt=geometry.tilt_coefficients,
+                   curvature=geometry.curvature_coefficients, curvature_grating=geometry.curvature_grating)
+    short = any("too short for its edges" in note for note in geometry.notes)
+    with np.errstate(all="ignore"), _quiet_nan_warnings():
+        band = _band_image(frame, **options)
+        sat_band = None
+        if saturated is not None:
+            sat = np.asarray(saturated, dtype=bool)
+            if sat.shape != frame.shape:
+                raise InputError(f"`saturated` has shape {sat.shape} but the image has {frame.shape}")
+            if sat.any():
+                sat_band = np.nan_to_num(_band_image(sat.astype(np.float32), **options)) > 0
+        residual = _measure_curvature(band, sat_band, centre_index=-t0, half_height=half_height, s0=s0,
+                                      min_snr=min_line_snr, short_band=short)
+    if not residual["known"]:
+        info["reason"] = residual["reason"]
+        return geometry, info
+    line_s = residual["line_s"]
+    c_total = geometry.curvature_at(line_s) + residual["line_c"]
+    t_edge = np.array([np.max(np.abs(t)) for t, _ in residual["traces"]])
+    w = 1.0 / (1.0 / np.minimum(residual["line_wc"], 1e16) + (CURVATURE_SYSTEMATIC_SAG_PX / t_edge**2) ** 2)
+    tan_beta = np.tan(theta_rad + np.arctan(sign * (line_s - s_x0) / f_px))
+    # the polynomial, as measure_geometry chooses it, in scaled s
+    degree = len(geometry.curvature_coefficients) - 1
+    span = float(np.ptp(line_s))
+    scale = max(1.0, span / 2)
+    z = (line_s - 0.5 * (line_s.max() + line_s.min())) / scale
+    coef, _, keep, _ = _robust_line_fit(z, c_total, w, degree=degree, floor=1e-7)
+    n = int(keep.sum())
+    info["n_lines"] = n
+    if n < 3 or n <= degree + 1:
+        info["reason"] = f"{n} traced lines: too few to compare shapes"
+        return geometry, info
+
+    def chi2(basis):
+        A = basis[keep]
+        sw = np.sqrt(w[keep])
+        params, *_ = np.linalg.lstsq(A * sw[:, None], c_total[keep] * sw, rcond=None)
+        r = c_total[keep] - A @ params
+        return params, float(np.sum(w[keep] * r * r))
+
+    ones = np.ones_like(tan_beta)
+    _, chi2_poly = chi2(np.vander(z, degree + 1, increasing=True))
+    k_only, chi2_k = chi2(tan_beta[:, None])
+    both, chi2_both = chi2(np.stack([ones, tan_beta], axis=1))
+    s2 = max(1.0, chi2_poly / (n - degree - 1))
+    bic = {"polynomial": chi2_poly / s2 + (degree + 1) * math.log(n),
+           "k tan(beta)": chi2_k / s2 + math.log(n),
+           "c0 + k tan(beta)": chi2_both / s2 + 2 * math.log(n)}
+    info["bic"] = bic
+    best = min(("k tan(beta)", "c0 + k tan(beta)"), key=lambda name: bic[name])
+    chi2_best, p_best = (chi2_k, 1) if best == "k tan(beta)" else (chi2_both, 2)
+    from scipy.stats import chi2 as chi2_distribution
+
+    consistent = chi2_best <= chi2_distribution.ppf(0.99, n - p_best)
+    info["chi2"] = {"polynomial": chi2_poly, "k tan(beta)": chi2_k, "c0 + k tan(beta)": chi2_both}
+    if bic[best] > bic["polynomial"] and not consistent:
+        info["reason"] = (f"the {n} traced lines reject the tan(beta) shape (chi-square {chi2_best:.1f} for {n - p_best} "
+                          f"degrees of freedom) and the polynomial fits them better (BIC {bic['polynomial']:.1f} vs {bic[best]:.1f})")
+        return geometry, info
+    c0, k = (0.0, float(k_only[0])) if best == "k tan(beta)" else (float(both[0]), float(both[1]))
+    refit = dataclasses.replace(geometry, curvature_coefficients=(c0,),
+                                curvature_grating=(k, float(theta_rad), s_x0, float(f_px), float(sign)))
+    # straightness after rectification with the new shape: what each trace keeps once the change is applied
+    delta = refit.curvature_at(line_s) - geometry.curvature_at(line_s)
+    res_all = []
+    for (t, xs), d in zip(residual["traces"], delta):
+        r = xs - d * t * t
+        res_all.append(r - np.mean(r))
+    rms = float(np.sqrt(np.mean(np.concatenate(res_all) ** 2))) if res_all else geometry.curvature_rms_px
+    note = (f"curvature c = {'c0 + ' if best != 'k tan(beta)' else ''}k tan(beta) from the grating-shaped wavelength "
+            f"solution ({n} traced lines, chi-square {chi2_best:.1f} for {n - p_best} degrees of freedom; BIC "
+            f"{bic[best]:.1f} vs {bic['polynomial']:.1f} for the polynomial)")
+    refit = dataclasses.replace(refit, curvature_rms_px=rms, n_lines_traced=n, notes=geometry.notes + (note,))
+    info.update(used=True, reason=note, model=best, k=k, c0=c0, rms_px=rms)
+    return refit, info
 
 
 def _significant_fit(x, y, w, *, max_degree: int, floor: float):
@@ -1359,11 +1564,11 @@ def jacobian(geometry: Geometry) -> np.ndarray | None:
 
     db = P.polyder(np.asarray(geometry.tilt_coefficients, float)) if len(geometry.tilt_coefficients) > 1 else np.zeros(1)
     dc = P.polyder(np.asarray(geometry.curvature_coefficients, float)) if len(geometry.curvature_coefficients) > 1 else np.zeros(1)
-    if not np.any(db) and not np.any(dc):
+    if not np.any(db) and not np.any(dc) and not (geometry.curvature_grating and geometry.curvature_grating[0]):
         return None
     s = geometry.first_column_s_px + np.arange(geometry.n_columns, dtype=np.float64)[None, :]
     t = np.arange(geometry.n_rows, dtype=np.float64)[:, None] - geometry.centre_row
-    return (1.0 + P.polyval(s, db) * t + P.polyval(s, dc) * t * t).astype(np.float32)
+    return (1.0 + P.polyval(s, db) * t + geometry.curvature_slope_at(s) * t * t).astype(np.float32)
 
 
 def remap_tables(geometry: Geometry) -> tuple[np.ndarray, np.ndarray]:
@@ -1483,7 +1688,8 @@ def measure_band_shift(image, geometry: Geometry, *, reference=None, across_tole
         with np.errstate(all="ignore"), _quiet_nan_warnings():
             band = _band_image(frame, theta_deg=geometry.rotation_deg, cx=geometry.centre_x_px, cy=geometry.centre_y_px,
                                s0=geometry.first_column_s_px, n_s=geometry.n_columns, t0=t0 - extra, n_t=n_t + 2 * extra,
-                               tilt=geometry.tilt_coefficients, curvature=geometry.curvature_coefficients)
+                               tilt=geometry.tilt_coefficients, curvature=geometry.curvature_coefficients,
+                               curvature_grating=geometry.curvature_grating)
             trace = _measure_trace(band, s0=geometry.first_column_s_px, t0=t0 - extra, half_height=half)
     except GeometryError as exc:
         return BandShift(0.0, None, 0.0, False, False, f"band shift not measured: {exc}")

@@ -31,7 +31,7 @@ from .calfile import Calibration, read_calibration, write_calibration
 from .errors import CalibrationError, DegradedResultWarning, FrameError, InputError
 from .extract import extract_stack
 from .frames import StackedFrame, expand_sources, file_sha256, iter_frames, load_stack, stack_frames
-from .geometry import measure_band_shift, measure_geometry
+from .geometry import measure_band_shift, measure_geometry, refit_curvature_grating
 from .lines import LineTable, find_lines
 from .refdata import load_lamp
 from .spectrum import Spectrum
@@ -243,6 +243,7 @@ def calibrate_frames(
                                                     d_range=d_range, min_snr=min_snr)
     elif more_lamps:
         observations: list[tuple[LineTable, str]] = [(table, lamp)]
+        other_stacks: list[tuple[StackedFrame, str]] = []
         for other_frames, other_lamp in more_lamps:
             other_stack, other_records, _ = _stack(other_frames, dark=dark, gamma=gamma, channel=channel, method=stack)
             if other_stack.shape != stacked.shape:
@@ -250,6 +251,7 @@ def calibrate_frames(
                     f"the {other_lamp} frames are {other_stack.shape[1]}x{other_stack.shape[0]} px but the {lamp} frames are "
                     f"{stacked.shape[1]}x{stacked.shape[0]} px; combine frames of one camera setup only"
                 )
+            other_stacks.append((other_stack, other_lamp))
             other_spectrum = extract_stack(other_stack, geometry, method=extraction)
             observations.append((find_lines(other_spectrum, min_snr=min_snr), other_lamp))
             for record in other_records:
@@ -259,6 +261,10 @@ def calibrate_frames(
         wavelength = calibrate_combined(observations, pairs=pairs, dispersion_range_nm_per_px=d_range)
     else:
         wavelength = calibrate_lines(table, lamp=lamp, pairs=pairs, dispersion_range_nm_per_px=d_range)
+    if not absorption:
+        geometry, wavelength, spectrum = _refit_curvature(
+            stacked, geometry, wavelength, spectrum, lamp=lamp, others=other_stacks if more_lamps else [],
+            extraction=extraction, pairs=pairs, d_range=d_range, min_snr=min_snr)
     if wavelength.verdict == "poor":
         warnings.warn(f"wavelength calibration is poor: {wavelength.verdict_reason}", DegradedResultWarning, stacklevel=2)
     settings = {
@@ -285,6 +291,42 @@ def calibrate_frames(
         reference_spectrum=tuple(float(v) for v in spectrum.intensity),
         created_utc="",
     )
+
+
+def _refit_curvature(stacked, geometry, wavelength, spectrum, *, lamp, others, extraction, pairs, d_range, min_snr):
+    """With a grating-shaped wavelength solution: the physical curvature shape, then extract and calibrate once more.
+
+    The solution gives each column's diffraction angle, and the slit images' curvature grows
+    with its tangent (:func:`benchspec.geometry.refit_curvature_grating`), a shape that holds
+    beyond the outermost traced lines where the polynomial is extrapolated. Taken only when the
+    traced lines support it (no worse than the polynomial by BIC, or not rejected by a
+    chi-square test); the lines then move slightly, so
+    the spectrum is extracted and calibrated again. When that second calibration is refused,
+    the first geometry and solution are kept. Returns (geometry, wavelength, spectrum).
+    """
+    solution = wavelength.solution
+    if solution.model != "grating" or not geometry.curvature_known:
+        return geometry, wavelength, spectrum
+    _, theta, x0, f = (float(v) for v in solution.coefficients)
+    try:
+        refit, info = refit_curvature_grating(stacked.image, geometry, theta_rad=theta, x0_px=x0, f_px=f,
+                                              sign=float(solution.grating_sign), saturated=stacked.saturated)
+    except InputError:  # a solution whose parameters give no usable angle: keep the polynomial
+        return geometry, wavelength, spectrum
+    if not info["used"]:
+        return geometry, wavelength, spectrum
+    new_spectrum = extract_stack(stacked, refit, method=extraction)
+    table = find_lines(new_spectrum, min_snr=min_snr)
+    try:
+        if others:
+            observations = [(table, lamp)] + [(find_lines(extract_stack(s, refit, method=extraction), min_snr=min_snr), name)
+                                              for s, name in others]
+            new_wavelength = calibrate_combined(observations, pairs=pairs, dispersion_range_nm_per_px=d_range)
+        else:
+            new_wavelength = calibrate_lines(table, lamp=lamp, pairs=pairs, dispersion_range_nm_per_px=d_range)
+    except CalibrationError:
+        return geometry, wavelength, spectrum
+    return refit, new_wavelength, new_spectrum
 
 
 # --------------------------------------------------------------------------- applying a calibration

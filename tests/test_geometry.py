@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 
@@ -222,6 +223,35 @@ def test_damaged_geometry_dict(change, message):
     data = {**geometry.measure_geometry(image).to_dict(), **change}
     with pytest.raises(FileFormatError, match=message):
         geometry.Geometry.from_dict(data)
+
+
+def test_grating_shaped_curvature_round_trips_and_old_dicts_load():
+    """``curvature_grating`` (c = c0 + k tan(beta(s))): optional in the dict, JSON round trip, area factor."""
+    image, _ = synthetic_band(rotation_deg=2.0, curvature=(0.005, 1e-5))
+    g = geometry.measure_geometry(image)
+    old = g.to_dict()
+    del old["curvature_grating"]  # a dict written before the field existed
+    assert geometry.Geometry.from_dict(old) == g and g.curvature_grating == ()
+    shaped = dataclasses.replace(g, curvature_coefficients=(1e-4,), curvature_grating=(0.004, 0.3, 320.0, 600.0, -1.0))
+    again = geometry.Geometry.from_dict(json.loads(json.dumps(shaped.to_dict())))
+    assert again == shaped
+    s = np.array([-200.0, 0.0, 150.0])
+    beta = 0.3 + np.arctan(-(s - 320.0) / 600.0)
+    np.testing.assert_allclose(shaped.curvature_at(s), 1e-4 + 0.004 * np.tan(beta), rtol=1e-12)
+    # the frame area per rectified pixel uses dc/ds: against a central difference of c(s)
+    ds = 1e-3
+    numeric = (shaped.curvature_at(s + ds) - shaped.curvature_at(s - ds)) / (2 * ds)
+    np.testing.assert_allclose(shaped.curvature_slope_at(s), numeric, rtol=1e-6)
+    area = geometry.jacobian(shaped)
+    column = 100
+    t = np.arange(shaped.n_rows) - shaped.centre_row
+    expected = 1 + shaped.curvature_slope_at(shaped.first_column_s_px + column) * t * t \
+        + np.polynomial.polynomial.polyval(shaped.first_column_s_px + column,
+                                           np.polynomial.polynomial.polyder(shaped.tilt_coefficients)) * t
+    np.testing.assert_allclose(area[:, column], expected, rtol=1e-5)
+    for bad in ([0.004, 0.3, 320.0, 0.0, 1.0], [0.004, 0.3, 320.0, 600.0, 0.5], [0.004, 0.3]):
+        with pytest.raises(FileFormatError, match=r"geometry has a bad value \(curvature_grating"):
+            geometry.Geometry.from_dict({**shaped.to_dict(), "curvature_grating": bad})
 
 
 def test_missing_geometry_field():

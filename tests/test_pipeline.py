@@ -125,3 +125,46 @@ def test_cie_fluorescent_spectra_through_the_bench(monkeypatch, name, features):
     centres = np.array([l.centre_nm for l in find_lines(spectrum, min_snr=10)])
     for feature in features:
         assert np.min(np.abs(centres - feature)) <= 2.5, (feature, centres)
+
+
+def test_wide_angle_curvature_takes_the_grating_shape_beyond_the_traced_lines():
+    """The slit images' curvature follows tan(beta) across the whole band, not only between the traced lines.
+
+    Physics (from memory): a straight slit seen through a plane grating images as a curve whose
+    curvature grows with tan(beta), the spectral-line curvature of plane-grating spectrographs;
+    behind a pinhole camera of focal length f the sag of a slit point t px off the band's centre
+    is t**2 tan(beta) / (2 f). The reference here is that formula with the virtual bench's own
+    beta (grating equation at the true wavelength of each column) and f (its truth record).
+    """
+    from benchspec.benchmarks.accuracy import residual_sag_px
+    from benchspec.frames import stack_frames
+    from benchspec.geometry import measure_geometry
+    from benchspec.physics import diffraction_angle_deg
+
+    bench = simulate.Bench().with_(
+        grating={"lines_per_mm": 600.0},
+        camera={"width_px": 1280, "height_px": 720, "horizontal_fov_deg": 100.0, "rotation_deg": 3.0},
+        slit={"height_px": 180.0},
+    )
+    rendered = simulate.render(bench, seed=5)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DegradedResultWarning)
+        cal = calibrate_frames([rendered.image], lamp="cfl")
+    g = cal.geometry
+    assert cal.wavelength.solution.model == "grating"
+    assert len(g.curvature_grating) == 5 and any("tan(beta)" in note for note in g.notes)
+    # c(s) against t**2 tan(beta) / (2 f) over the lit band (380-720 nm), traced lines or not
+    columns = np.arange(g.n_columns, dtype=float)
+    wavelength = truth_wavelength_at(columns, g, rendered.truth)
+    lit = np.isfinite(wavelength) & (wavelength >= 380.0) & (wavelength <= 720.0)
+    beta = np.radians([diffraction_angle_deg(w, lines_per_mm=600.0, order=1) for w in wavelength[lit]])
+    expected = np.tan(beta) / (2.0 * rendered.truth["geometry"]["focal_length_px"])
+    t_edge = max(abs(g.aperture_rows[0] - g.centre_row), abs(g.aperture_rows[1] - 1 - g.centre_row))
+    sag_error = np.abs(g.curvature_at(g.first_column_s_px + columns[lit]) - expected) * t_edge**2
+    # 0.3 px: the issue's rectification round-trip tolerance
+    assert sag_error.max() < 0.3, sag_error.max()
+    # the polynomial fitted to the same frame's traced lines, extrapolated, leaves more
+    stacked = stack_frames([rendered.image])
+    polynomial = measure_geometry(stacked.image, saturated=stacked.saturated)
+    assert not polynomial.curvature_grating
+    assert residual_sag_px(bench, g, rendered.truth) < 0.5 * residual_sag_px(bench, polynomial, rendered.truth)

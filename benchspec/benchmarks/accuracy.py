@@ -191,6 +191,56 @@ def row_averaged_truth(bench, geometry, wavelength_nm: float, start_column: floa
     return mean, (float(u[centre]) if 0 <= centre < rows.size and ok[centre] else float("nan"))
 
 
+def residual_sag_px(bench, geometry, truth, *, wavelength_range_nm=(380.0, 720.0), n_points: int = 61) -> float:
+    """Largest sag (px) a slit image keeps at the aperture's edge after rectification, along the band.
+
+    For wavelengths every ``(n_columns - 1) / (n_points - 1)`` columns across the rectified band
+    (those inside ``wavelength_range_nm``, the lit part of the virtual bench's lamps), the column of
+    the rendered slit image is found on the aperture's first, centre and last rectified rows (as in
+    :func:`row_averaged_truth`); the parabola through the three gives the curvature the
+    rectification left, and ``|gamma| t_edge**2`` (``t_edge`` the farther aperture edge from the
+    centre row) its sag at the edge: what the geometry's curvature model gets wrong there, tilt
+    left aside. NaN when fewer than three wavelengths are found on all three rows.
+    """
+    from ..simulate import _columns, _projection
+
+    proj = _projection(bench)
+    theta = math.radians(bench.camera.rotation_deg)
+    c, s = math.cos(theta), math.sin(theta)
+    px, py = proj.centre_column_px, proj.band_row_px
+    a0, a1 = geometry.aperture_rows
+    rows = np.array([a0, geometry.centre_row, a1 - 1], dtype=float)[:, None]
+    t = rows[:, 0] - geometry.centre_row
+    start = np.linspace(0.0, geometry.n_columns - 1.0, n_points)
+    wavelength = truth_wavelength_at(start, geometry, truth)
+    keep = np.isfinite(wavelength) & (wavelength >= wavelength_range_nm[0]) & (wavelength <= wavelength_range_nm[1])
+    if keep.sum() < 3 or t[0] == 0 or t[2] == 0:
+        return float("nan")
+    wavelength = wavelength[keep][None, :]
+
+    def offset(u):
+        x, y = geometry.frame_coordinates(u, rows)
+        dx, dy = x - px, y - py
+        canvas_x, canvas_y = c * dx + s * dy + px, -s * dx + c * dy + py  # undo the frame's rotation
+        with np.errstate(invalid="ignore"):
+            return canvas_x - _columns(bench, proj, wavelength, canvas_y - py)
+
+    u = np.repeat(start[keep][None, :], 3, axis=0)
+    for _ in range(6):
+        f = offset(u)
+        slope = offset(u + 0.5) - offset(u - 0.5)
+        u = u - f / np.where(np.abs(slope) > 1e-6, slope, 1.0)
+    found = np.all(np.isfinite(u) & (np.abs(offset(u)) < 1e-3), axis=0)
+    if found.sum() < 3:
+        return float("nan")
+    u = u[:, found]
+    # parabola u(t) = u0 + beta t + gamma t^2 through (t_top, t=0, t_bottom)
+    d_top, d_bottom = (u[0] - u[1]) / t[0], (u[2] - u[1]) / t[2]
+    gamma = (d_bottom - d_top) / (t[2] - t[0])
+    t_edge = max(abs(t[0]), abs(t[2]))
+    return float(np.max(np.abs(gamma)) * t_edge**2)
+
+
 def _isolated_lines(species: str, fwhm_nm: float):
     lines = load_line_list(species).lines
     wl = np.array([l.wavelength_nm for l in lines])
@@ -293,6 +343,8 @@ def _curvature(calibration, bench, drawn, seed, truth):
     if not geometry.curvature_known:
         return None
     uncorrected = dataclasses.replace(geometry, curvature_coefficients=(0.0,), tilt_coefficients=(0.0,))
+    if getattr(geometry, "curvature_grating", ()):
+        uncorrected = dataclasses.replace(uncorrected, curvature_grating=())
     # The recorded slit image: LSF and slit width (the simulator's optical FWHM) integrated over a pixel.
     optical_fwhm = float(truth["geometry"]["slit_image_fwhm_px"])
     slit_fwhm = math.sqrt(optical_fwhm**2 + _FWHM_PER_SIGMA**2 / 12.0)
@@ -398,6 +450,9 @@ def run(quick: bool = False, *, seed: int = 20261201, n_benches: int | None = No
         if verbose:
             print(f"bench {index}: {record['status']} {drawn['nm_per_px']:.2f} nm/px rms {w.rms_px:.3f} px "
                   f"true error {true_error_px:.2f} px {'; '.join(problems)}")
+        if record["status"] == "ok" and calibration.geometry.curvature_known:
+            record["residual_sag_px"] = residual_sag_px(bench, calibration.geometry, truth)
+            record["curvature_model"] = "grating" if getattr(calibration.geometry, "curvature_grating", ()) else "polynomial"
         if record["status"] == "ok" and index % nist_every == 0:
             for species, rows in _lines_vs_nist(calibration, bench, drawn, bench_seed).items():
                 nist[species].extend(rows)
@@ -461,6 +516,13 @@ def run(quick: bool = False, *, seed: int = 20261201, n_benches: int | None = No
         "fwhm_over_straight_rectified_median": stat(3, np.nanmedian),
         "fwhm_over_straight_rectified_max": stat(3, np.nanmax),
     }
+    sags = np.array([r["residual_sag_px"] for r in records if np.isfinite(r.get("residual_sag_px", np.nan))])
+    curvature_summary.update({
+        "residual_sag_benches": int(sags.size),
+        "residual_sag_px_median": float(np.median(sags)) if sags.size else float("nan"),
+        "residual_sag_px_max": float(np.max(sags)) if sags.size else float("nan"),
+        "grating_shaped_benches": sum(r.get("curvature_model") == "grating" for r in records),
+    })
     truth_rows = [r[3] for rows in nist.values() for r in rows if r[3] is not None]
 
     def centre_stats(selected):
@@ -555,6 +617,10 @@ def format_report(figures: dict) -> str:
                f"(no pixel) {curv.get('fwhm_over_optical_slit_rectified_median', float('nan')):.3f}; over the same bench "
                f"with no smile {curv.get('fwhm_over_straight_rectified_median', float('nan')):.3f} "
                f"(max {curv.get('fwhm_over_straight_rectified_max', float('nan')):.3f})")
+    out.append(f"curvature left at the aperture's edge (largest sag along the band, 380-720 nm, "
+               f"{curv.get('residual_sag_benches', 0)} calibrated benches): median "
+               f"{curv.get('residual_sag_px_median', float('nan')):.2f} px, max {curv.get('residual_sag_px_max', float('nan')):.2f} px; "
+               f"grating-shaped curvature on {curv.get('grating_shaped_benches', 0)}")
     for r in figures["benches"]:
         if r["status"] != "ok":
             out.append(f"  bench {r['index']} ({r['nm_per_px']:.2f} nm/px, order {r['order']}): {r['status']}: {r.get('reason', '')}")
