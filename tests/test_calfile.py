@@ -111,3 +111,19 @@ def test_schema_is_documented():
     for key in ("geometry", "wavelength_calibration", "line_list", "frames", "dark_frames", "settings",
                 "reference_spectrum", "created_utc", "units"):
         assert key in calfile.__doc__
+
+
+def test_grating_shaped_curvature_in_the_file(tmp_path, calibration):
+    """``geometry.curvature_grating`` is optional: files written before it existed load with (), new ones round trip."""
+    import dataclasses
+
+    old = _written(tmp_path, calibration, lambda d: d["geometry"].pop("curvature_grating"))
+    assert read_calibration(old).geometry.curvature_grating == ()
+    shaped = dataclasses.replace(calibration, geometry=dataclasses.replace(
+        calibration.geometry, curvature_known=True, curvature_grating=(0.0009, 0.33, 640.0, 1100.0, 1.0)))
+    path = write_calibration(shaped, tmp_path / "shaped.json")
+    assert read_calibration(path).geometry == shaped.geometry
+    with pytest.raises(FileFormatError, match="curvature_grating"):
+        read_calibration(_written(tmp_path, shaped, lambda d: d["geometry"].update(curvature_grating=["k", 1.0])))
+    with pytest.raises(FileFormatError, match="curvature_grating"):
+        read_calibration(_written(tmp_path, shaped, lambda d: d["geometry"].update(curvature_grating=[0.0009, 0.33])))
