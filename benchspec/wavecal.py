@@ -77,6 +77,7 @@ from .wavefit import (  # noqa: F401  (the fit stage lives in its own module)
     _grating_effective_parameters,
     _weighted_polyfit,
     _loo_residuals,
+    _deletion_z,
     _select_order,
     _robust_fit,
 )
@@ -555,6 +556,8 @@ class _Candidate:
     chi2: float
     anchor: np.ndarray = None
     resid_px: np.ndarray = None
+    # 1-sigma of each resid_px (px): the line's own uncertainty and that of the others' prediction of it
+    resid_sigma_px: np.ndarray = None
 
     def feature_members_nm(self) -> list:
         """The reference lines (nm) of each assigned feature (one for an isolated line, several for a blend)."""
@@ -947,6 +950,8 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
                             coeffs.size - 1)
     loo_px = np.where(keep[:n_lines], loo_nm[:n_lines] / disp, resid_px)
     sigma_px = ss[:n_lines] / disp
+    loo_sigma_px = _loo_sigma(tt, np.r_[features.wavelength[f_idx], [m.wavelength_nm for m in pairs]], ss, keep,
+                              coeffs.size - 1, loo_nm)[:n_lines] / disp
     # Lines the others place far from their reference are not part of this solution: refit without them.
     # So are lines that miss their own feature by more than 2.5 sigma (and 1.5 px): near the ends a
     # loosely known phosphor feature otherwise accepts whatever falls within its wide tolerance.
@@ -977,6 +982,9 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
                                 coeffs.size - 1)
         loo_px = np.where(used, loo_nm[:n_lines] / disp, resid_px)
         sigma_px = ss[:n_lines] / disp
+        loo_sigma_px = _loo_sigma(tt, np.r_[features.wavelength[f_idx], [m.wavelength_nm for m in pairs]], ss, keep,
+                              coeffs.size - 1, loo_nm)[:n_lines] / disp
+    loo_sigma_px = np.where(used, loo_sigma_px, sigma_px)
     # An assignment the solution does not support is no assignment: such lines are left unassigned
     # instead of being listed against a reference they miss (a loosely known feature that had to be
     # rejected supports nothing either).
@@ -985,6 +993,7 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
     if not supported.all():
         p_idx, f_idx, used, rejected = p_idx[supported], f_idx[supported], used[supported], rejected[supported]
         resid_px, loo_px, sigma_px, disp = resid_px[supported], loo_px[supported], sigma_px[supported], disp[supported]
+        loo_sigma_px = loo_sigma_px[supported]
     anchor = used & (features.sigma[f_idx] / disp <= _FEATURE_FIT_LIMIT_PX)
     if used.any():
         weights = 1.0 / sigma_px[used] ** 2
@@ -994,8 +1003,21 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
     candidate = _Candidate(coeffs, cov, p_idx, f_idx, used, rejected, features, 0.0, rms, reduced)
     candidate.anchor = anchor
     candidate.resid_px = loo_px
+    candidate.resid_sigma_px = loo_sigma_px
     candidate.score = _final_score(candidate, peaks, centre=centre, scale=scale, t_ends=t_ends, fwhm=fwhm, n_pairs=len(pairs))
     return candidate
+
+
+def _loo_sigma(tt, lam, ss, keep, order, loo_nm) -> np.ndarray:
+    """1-sigma (nm) of each kept line's leave-one-out residual: sqrt(sigma**2 + var(prediction)).
+
+    The ratio of the leave-one-out residual to its studentised form (wavefit's deletion
+    residuals, sigma / sqrt(1 - h) for a weighted linear fit); a line the fit passes through
+    exactly (residual 0), and a line not kept, keeps its own sigma.
+    """
+    z = _deletion_z(tt, lam, ss, keep, order)
+    ratio = np.divide(np.abs(loo_nm), np.abs(z), out=np.zeros_like(ss), where=np.abs(z) > 1e-12)
+    return np.where(keep & (ratio > 0), np.maximum(ratio, ss), ss)
 
 
 def _final_score(c: _Candidate, peaks: _Peaks, *, centre, scale, t_ends, fwhm, n_pairs):
@@ -1017,17 +1039,31 @@ def _final_score(c: _Candidate, peaks: _Peaks, *, centre, scale, t_ends, fwhm, n
     range_px = (t_ends[1] - t_ends[0]) * scale
     score = 0.0
     derivative = _derivative_coeffs(c.coefficients)
+    used_px = peaks.pixel[c.peak_index[c.used]] if c.used.any() else peaks.pixel[:0]
+    span_low, span_high = (float(used_px.min()), float(used_px.max())) if used_px.size else (0.0, 0.0)
     for k, (pi, fi) in enumerate(zip(c.peak_index, c.feature_index)):
         if not c.used[k]:
             continue
         near = np.abs(feature_px[inside] - peaks.pixel[pi]) < 20 * fwhm
         density = max(int(near.sum()), 1) / min(40 * fwhm, range_px)
-        width = 2 * max(abs(c.resid_px[k]), peaks.sigma[pi], 0.1)
+        disp = abs(float(_polyval((peaks.pixel[pi] - centre) / scale, derivative))) / scale
+        sigma_px = math.hypot(peaks.sigma[pi], f.sigma[fi] / max(disp, 1e-12), 0.15)  # 0.15 px: model and JPEG
+        predicted_px = 0.0
+        if c.resid_sigma_px is not None and f.sigma[fi] / max(disp, 1e-12) <= _FEATURE_FIT_LIMIT_PX:
+            # A tightly known line's leave-one-out residual is judged against how well the other lines
+            # predict it (an end anchor of a solution whose shape rests on loosely known features misses
+            # by more, honestly), and such a line the others hardly predict proves little: landing
+            # within that prediction's spread of a feature is no coincidence. Loosely known features
+            # keep the plain test: across a dense list (Ne, Ar) a wrong solution would otherwise
+            # excuse its extrapolated end lines.
+            own_px = math.hypot(peaks.sigma[pi], f.sigma[fi] / max(disp, 1e-12), _MATCH_MODEL_FLOOR_PX)
+            if not span_low < peaks.pixel[pi] < span_high:  # an end line: the others only extrapolate to it
+                predicted_px = math.sqrt(max(float(c.resid_sigma_px[k]) ** 2 - own_px**2, 0.0))
+            sigma_px = max(sigma_px, float(c.resid_sigma_px[k]))
+        width = 2 * max(abs(c.resid_px[k]), peaks.sigma[pi], 0.1, predicted_px)
         score += -math.log(min(1.0, width * density))
         # A true match misses by about its own uncertainty: charge misses of many sigma (Gaussian
         # log-likelihood, capped at 3 sigma so one bad line cannot sink a good solution).
-        disp = abs(float(_polyval((peaks.pixel[pi] - centre) / scale, derivative))) / scale
-        sigma_px = math.hypot(peaks.sigma[pi], f.sigma[fi] / max(disp, 1e-12), 0.15)  # 0.15 px: model and JPEG
         score -= 0.5 * min((c.resid_px[k] / sigma_px) ** 2, 9.0)
         if abs(c.resid_px[k]) > max(2.0, 6.0 * sigma_px):
             score -= 10.0  # the other lines put it far from its reference: the assignment is not consistent
@@ -1134,11 +1170,30 @@ _FULL_REFINEMENTS = 8
 _FIRST_PASS_SEEDS = 60
 
 
+# Lines at least this significant mark where the lamp's light falls on the sensor (see _lit_pixels).
+_LIT_SNR = 20.0
+
+
+def _lit_pixels(peaks: _Peaks, pairs) -> np.ndarray:
+    """Pixels that show where the spectrum is: the significant lines (SNR >= _LIT_SNR) and the pairs.
+
+    Faint detections far outside the lamp's lines (noise, JPEG blocks, a weak continuum's ripple)
+    would otherwise stretch the range every hypothesis is judged on: on a 1920 px frame at
+    0.39 nm/px they spread the span to the whole sensor, and a quadratic through three true lines
+    then failed the dispersion checks at those far ends. With fewer than three significant lines
+    every line counts.
+    """
+    pixel = peaks.pixel
+    strong = pixel[peaks.snr >= _LIT_SNR] if pixel.size else pixel
+    chosen = strong if strong.size >= 3 else pixel
+    return np.r_[chosen, [m.pixel for m in pairs]]
+
+
 def _search(peaks: _Peaks, reference, *, pixel_range, d_range, pairs, max_order):
     """All refined candidates, best first."""
     # Normalise on the span of the detected lines (and pairs), and judge hypotheses only where there is
     # light: a sensor much wider than the spectrum must not veto a solution by its extrapolation.
-    lit = np.r_[peaks.pixel, [m.pixel for m in pairs]]
+    lit = _lit_pixels(peaks, pairs)
     if lit.size == 0:
         lit = np.array(pixel_range, dtype=float)
     margin = 0.1 * max(float(np.ptp(lit)), 10.0)
@@ -1501,7 +1556,7 @@ def _build_result(best: _Candidate, peaks: _Peaks, *, lamps: Sequence[Lamp], pai
     grid = np.linspace(min(m.pixel for m in matches), max(m.pixel for m in matches), 257)
     max_sigma = float(np.max(solution.uncertainty_nm(grid)))
     # Coverage: how much of the span holding detected lines is bracketed by fitted lines.
-    lit = np.r_[peaks.pixel, [p.pixel for p in pairs]]
+    lit = _lit_pixels(peaks, pairs)
     coverage = min(1.0, (max(used_pixels) - min(used_pixels)) / max(float(np.ptp(lit)), 1.0))
     notes = list(extra_notes)
     n_loose = sum(1 for m in matches if m.used_in_fit and not m.anchor)
