@@ -17,9 +17,10 @@ absorbs an apex that is not on the centre line). ``b`` and ``c`` are
 polynomials in ``s`` (``numpy.polynomial`` order: lowest power first) whose
 degree the number and spread of measured lines justify.
 
-Once a grating-shaped wavelength solution exists (a pinhole camera behind the
-grating, so each column has a diffraction angle ``beta(s)``), the curvature can
-take the physical shape instead (:func:`refit_curvature_grating`)::
+Once a wavelength calibration exists, the grating model (a pinhole camera behind
+the grating: the solution itself, or fitted to a polynomial solution's lines) gives
+each column a diffraction angle ``beta(s)``, and the curvature can take the physical
+shape instead (:func:`refit_curvature_grating`)::
 
     c(s) = c_0 + k tan(beta(s)),   beta(s) = theta + atan(sign (s - s_x0) / f)
 
@@ -1362,7 +1363,8 @@ def _measure_curvature(band, sat_band, *, centre_index, half_height, s0, min_snr
 
 
 def refit_curvature_grating(image, geometry: Geometry, *, theta_rad: float, x0_px: float, f_px: float, sign: float,
-                            saturated=None, min_line_snr: float = 15.0) -> tuple[Geometry, dict]:
+                            saturated=None, min_line_snr: float = 15.0,
+                            angle_source: str = "the grating-shaped wavelength solution") -> tuple[Geometry, dict]:
     """Refit the slit images' curvature with the physical shape ``c0 + k tan(beta(s))``, where the data support it.
 
     Parameters
@@ -1375,10 +1377,13 @@ def refit_curvature_grating(image, geometry: Geometry, *, theta_rad: float, x0_p
         The diffraction angle along the rectified columns ``p``,
         ``beta(p) = theta + atan(sign (p - x0) / f)``: the parameters of a grating-shaped
         wavelength solution (:class:`benchspec.wavecal.WavelengthSolution` with
-        ``model == "grating"``: ``coefficients[1:]`` and ``grating_sign``).
+        ``model == "grating"``: ``coefficients[1:]`` and ``grating_sign``), or of the grating
+        model fitted to a polynomial solution's lines (``pipeline.calibrate_frames`` does so).
     saturated : ndarray of bool, shape (H, W), optional
     min_line_snr : float, keyword-only
         As in :func:`measure_geometry`.
+    angle_source : str, keyword-only
+        Where the angle came from, for the geometry's note.
 
     Returns
     -------
@@ -1497,8 +1502,8 @@ def refit_curvature_grating(image, geometry: Geometry, *, theta_rad: float, x0_p
         r = xs - d * t * t
         res_all.append(r - np.mean(r))
     rms = float(np.sqrt(np.mean(np.concatenate(res_all) ** 2))) if res_all else geometry.curvature_rms_px
-    note = (f"curvature c = {'c0 + ' if best != 'k tan(beta)' else ''}k tan(beta) from the grating-shaped wavelength "
-            f"solution ({n} traced lines, chi-square {chi2_best:.1f} for {n - p_best} degrees of freedom; BIC "
+    note = (f"curvature c = {'c0 + ' if best != 'k tan(beta)' else ''}k tan(beta), beta from {angle_source} "
+            f"({n} traced lines, chi-square {chi2_best:.1f} for {n - p_best} degrees of freedom; BIC "
             f"{bic[best]:.1f} vs {bic['polynomial']:.1f} for the polynomial)")
     refit = dataclasses.replace(refit, curvature_rms_px=rms, n_lines_traced=n, notes=geometry.notes + (note,))
     info.update(used=True, reason=note, model=best, k=k, c0=c0, rms_px=rms)

@@ -294,9 +294,11 @@ def calibrate_frames(
 
 
 def _refit_curvature(stacked, geometry, wavelength, spectrum, *, lamp, others, extraction, pairs, d_range, min_snr):
-    """With a grating-shaped wavelength solution: the physical curvature shape, then extract and calibrate once more.
+    """The physical curvature shape from the diffraction angle along the band, then extract and calibrate once more.
 
-    The solution gives each column's diffraction angle, and the slit images' curvature grows
+    A grating-shaped solution gives each column's diffraction angle; for a polynomial solution
+    the grating model is fitted to its lines for that angle alone (:func:`_grating_angles_of`).
+    The slit images' curvature grows
     with its tangent (:func:`benchspec.geometry.refit_curvature_grating`), a shape that holds
     beyond the outermost traced lines where the polynomial is extrapolated. Taken only when the
     traced lines support it (no worse than the polynomial by BIC, or not rejected by a
@@ -305,12 +307,21 @@ def _refit_curvature(stacked, geometry, wavelength, spectrum, *, lamp, others, e
     the first geometry and solution are kept. Returns (geometry, wavelength, spectrum).
     """
     solution = wavelength.solution
-    if solution.model != "grating" or not geometry.curvature_known:
+    if not geometry.curvature_known:
         return geometry, wavelength, spectrum
-    _, theta, x0, f = (float(v) for v in solution.coefficients)
+    if solution.model == "grating":
+        _, theta, x0, f = (float(v) for v in solution.coefficients)
+        sign = float(solution.grating_sign)
+        source = "the grating-shaped wavelength solution"
+    else:
+        angles = _grating_angles_of(wavelength, geometry)
+        if angles is None:
+            return geometry, wavelength, spectrum
+        theta, x0, f, sign = angles
+        source = "the grating model fitted to the polynomial solution's lines"
     try:
         refit, info = refit_curvature_grating(stacked.image, geometry, theta_rad=theta, x0_px=x0, f_px=f,
-                                              sign=float(solution.grating_sign), saturated=stacked.saturated)
+                                              sign=sign, saturated=stacked.saturated, angle_source=source)
     except InputError:  # a solution whose parameters give no usable angle: keep the polynomial
         return geometry, wavelength, spectrum
     if not info["used"]:
@@ -327,6 +338,42 @@ def _refit_curvature(stacked, geometry, wavelength, spectrum, *, lamp, others, e
     except CalibrationError:
         return geometry, wavelength, spectrum
     return refit, new_wavelength, new_spectrum
+
+
+def _grating_angles_of(wavelength, geometry):
+    """(theta_rad, x0_px, f_px, sign) of the grating model fitted to a polynomial solution's lines, or None.
+
+    Only the diffraction angle along the band is wanted (for the curvature's shape); the
+    wavelength solution stays the polynomial the calibration chose. The fit is the calibration's
+    own grating model (``wavefit._grating_fit``, with its prior that the optical axis meets the
+    sensor near the frame's centre, here that centre's rectified column) on the lines the
+    polynomial used; fewer than 5 lines give None.
+    """
+    import math
+
+    from .wavefit import _grating_fit
+
+    used = [m for m in wavelength.matches if m.used_in_fit]
+    if len(used) < 5:
+        return None
+    pixel = np.array([m.pixel for m in used], dtype=float)
+    reference = np.array([m.reference_nm for m in used], dtype=float)
+    dispersion = np.asarray(wavelength.solution.dispersion_nm_per_px(pixel), dtype=float)
+    if not np.all(np.isfinite(dispersion)) or not np.all(dispersion != 0):
+        return None
+    sigma = np.hypot(np.array([m.pixel_uncertainty for m in used]) * np.abs(dispersion),
+                     np.array([m.reference_uncertainty_nm for m in used]))
+    sigma = np.maximum(sigma, 0.03 * np.abs(dispersion))  # the calibration's 0.03 px centre floor
+    theta = math.radians(geometry.rotation_deg)
+    centre_s = ((geometry.frame_width_px / 2 - geometry.centre_x_px) * math.cos(theta)
+                + (geometry.frame_height_px / 2 - geometry.centre_y_px) * math.sin(theta))
+    sign = 1.0 if float(np.median(dispersion)) > 0 else -1.0
+    result = _grating_fit(pixel, reference, sigma, sign=sign, width_px=float(geometry.n_columns),
+                          axis_px=centre_s - geometry.first_column_s_px)
+    if result is None:
+        return None
+    _, theta_rad, x0, f = (float(v) for v in result[0])
+    return theta_rad, x0, f, sign
 
 
 # --------------------------------------------------------------------------- applying a calibration
