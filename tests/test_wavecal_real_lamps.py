@@ -87,3 +87,14 @@ def test_distinct_answers_are_judged_where_there_are_lines_and_against_their_unc
     f = _Fit([500.0, 100.0], tight, [0, 1, 2, 3, 4], [400, 450, 500, (542.4, 546.075), 600])
     e._wavelengths[3] = (546.075,)
     assert not _distinct(e, f, t, 100.0)
+
+
+def test_accuracy_benchmark_counts_real_lamp_units_against_the_truth():
+    # The accuracy benchmark's real-lamp part: each CFL unit calibrated with no first guess and every
+    # assignment checked against the simulator's truth mapping (Hg I: NIST ASD air wavelengths).
+    from benchspec.benchmarks.accuracy import _lamp_units, format_report
+
+    units = _lamp_units(2)
+    assert units["units"] == 2 and units["ok"] + units["refused"] + units["wrong"] == 2
+    assert units["wrong"] == 0, units["wrong_answers"]
+    assert units["ok"] >= 1  # units 1-2 of the default bench calibrate (both did when this was written)

@@ -565,6 +565,7 @@ def run(quick: bool = False, *, seed: int = 20261201, n_benches: int | None = No
         "lines_vs_nist": lines_summary,
         "line_centres_vs_truth": centres_summary,
         "curvature": curvature_summary,
+        "lamp_units": _lamp_units(4 if quick else 24),
         "targets": dict(targets),
         "passed": {name: bool(v) for name, v in targets.items()},
         "cpu_s_total": time.process_time() - started,
@@ -572,6 +573,31 @@ def run(quick: bool = False, *, seed: int = 20261201, n_benches: int | None = No
         "seed": seed,
         "quick": quick,
     }
+
+
+def _lamp_units(n_units: int) -> dict:
+    """Real lamps: CFL units 1..n (the virtual bench's ``source.lamp_unit``: each line drawn within its
+    listed tolerance, fixed for that lamp) on the default bench, two PNG frames each, no first guess."""
+    from ..pipeline import calibrate_frames
+    from ..simulate import Bench, render
+
+    ok, refused, wrong = [], [], []
+    for unit in range(1, n_units + 1):
+        source = {"kind": "lamp", "name": "cfl", "lamp_unit": unit}
+        rendered = [render(Bench(), seed=s, source=source) for s in (2000 + 2 * unit, 2001 + 2 * unit)]
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", DegradedResultWarning)
+                calibration = calibrate_frames([r.image for r in rendered], lamp="cfl")
+        except CalibrationError as exc:
+            refused.append({"unit": unit, "reason": str(exc)})
+            continue
+        correct, _, problems = _check_assignments(calibration, rendered[0].truth)
+        (ok if correct else wrong).append({"unit": unit, "evidence_nats": calibration.wavelength.evidence_nats,
+                                           **({} if correct else {"problems": problems})})
+    return {"units": n_units, "ok": len(ok), "refused": len(refused), "wrong": len(wrong),
+            "refusals": refused, "wrong_answers": wrong,
+            "evidence_nats_median": float(np.median([r["evidence_nats"] for r in ok])) if ok else float("nan")}
 
 
 def _missing_as_nan(value):
@@ -621,6 +647,12 @@ def format_report(figures: dict) -> str:
                f"{curv.get('residual_sag_benches', 0)} calibrated benches): median "
                f"{curv.get('residual_sag_px_median', float('nan')):.2f} px, max {curv.get('residual_sag_px_max', float('nan')):.2f} px; "
                f"grating-shaped curvature on {curv.get('grating_shaped_benches', 0)}")
+    units = figures.get("lamp_units")
+    if units:
+        out.append(f"real lamps (CFL units 1-{units['units']}, default bench): ok {units['ok']}  refused {units['refused']}  "
+                   f"wrong {units['wrong']}; evidence median {units['evidence_nats_median']:.1f} nats")
+        for r in units["refusals"]:
+            out.append(f"  unit {r['unit']}: refused: {r['reason']}")
     for r in figures["benches"]:
         if r["status"] != "ok":
             out.append(f"  bench {r['index']} ({r['nm_per_px']:.2f} nm/px, order {r['order']}): {r['status']}: {r.get('reason', '')}")
