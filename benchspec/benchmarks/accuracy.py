@@ -151,25 +151,16 @@ def truth_wavelength_at(columns, geometry, truth) -> np.ndarray:
     return np.interp(column, mapping["rectified_column_px"], mapping["wavelength_nm"], left=np.nan, right=np.nan)
 
 
-def row_averaged_truth(bench, geometry, wavelength_nm: float, start_column: float) -> tuple[float, float]:
-    """(profile-weighted mean over the aperture rows, centre row) of the rectified column of a rendered line.
-
-    On each rectified row v the line of ``wavelength_nm`` lies at the column u where the frame
-    point ``geometry.frame_coordinates(u, v)`` falls on the simulator's slit image of that
-    wavelength (its smile included); found by Newton steps from ``start_column``. NaN where the
-    line leaves the frame on too many rows.
-    """
+def _slit_image_columns(bench, geometry, rows, wavelength_nm, start):
+    """Rectified columns u (shape of ``start``) where rows ``rows`` of ``geometry`` cross the virtual
+    bench's slit image of ``wavelength_nm`` (its smile included), by Newton steps from ``start``; and
+    where that converged (to 1e-3 px)."""
     from ..simulate import _columns, _projection
 
     proj = _projection(bench)
     theta = math.radians(bench.camera.rotation_deg)
     c, s = math.cos(theta), math.sin(theta)
     px, py = proj.centre_column_px, proj.band_row_px
-    a0, a1 = geometry.aperture_rows
-    rows = np.arange(a0, a1, dtype=float)
-    weight = np.asarray(geometry.spatial_profile, dtype=float)
-    if weight.size != rows.size or not np.any(weight > 0):
-        weight = np.ones(rows.size)
 
     def offset(u):
         x, y = geometry.frame_coordinates(u, rows)
@@ -178,12 +169,28 @@ def row_averaged_truth(bench, geometry, wavelength_nm: float, start_column: floa
         with np.errstate(invalid="ignore"):
             return canvas_x - _columns(bench, proj, wavelength_nm, canvas_y - py)
 
-    u = np.full(rows.size, float(start_column))
+    u = np.asarray(start, dtype=float)
     for _ in range(6):
         f = offset(u)
         slope = offset(u + 0.5) - offset(u - 0.5)
         u = u - f / np.where(np.abs(slope) > 1e-6, slope, 1.0)
-    ok = np.isfinite(u) & (np.abs(offset(u)) < 1e-3)
+    return u, np.isfinite(u) & (np.abs(offset(u)) < 1e-3)
+
+
+def row_averaged_truth(bench, geometry, wavelength_nm: float, start_column: float) -> tuple[float, float]:
+    """(profile-weighted mean over the aperture rows, centre row) of the rectified column of a rendered line.
+
+    On each rectified row v the line of ``wavelength_nm`` lies at the column u where the frame
+    point ``geometry.frame_coordinates(u, v)`` falls on the simulator's slit image of that
+    wavelength (its smile included); found by Newton steps from ``start_column``. NaN where the
+    line leaves the frame on too many rows.
+    """
+    a0, a1 = geometry.aperture_rows
+    rows = np.arange(a0, a1, dtype=float)
+    weight = np.asarray(geometry.spatial_profile, dtype=float)
+    if weight.size != rows.size or not np.any(weight > 0):
+        weight = np.ones(rows.size)
+    u, ok = _slit_image_columns(bench, geometry, rows, wavelength_nm, np.full(rows.size, float(start_column)))
     centre = geometry.centre_row - a0
     if ok.sum() < 0.5 * rows.size:
         return float("nan"), float("nan")
@@ -202,12 +209,6 @@ def residual_sag_px(bench, geometry, truth, *, wavelength_range_nm=(380.0, 720.0
     centre row) its sag at the edge: what the geometry's curvature model gets wrong there, tilt
     left aside. NaN when fewer than three wavelengths are found on all three rows.
     """
-    from ..simulate import _columns, _projection
-
-    proj = _projection(bench)
-    theta = math.radians(bench.camera.rotation_deg)
-    c, s = math.cos(theta), math.sin(theta)
-    px, py = proj.centre_column_px, proj.band_row_px
     a0, a1 = geometry.aperture_rows
     rows = np.array([a0, geometry.centre_row, a1 - 1], dtype=float)[:, None]
     t = rows[:, 0] - geometry.centre_row
@@ -216,21 +217,9 @@ def residual_sag_px(bench, geometry, truth, *, wavelength_range_nm=(380.0, 720.0
     keep = np.isfinite(wavelength) & (wavelength >= wavelength_range_nm[0]) & (wavelength <= wavelength_range_nm[1])
     if keep.sum() < 3 or t[0] == 0 or t[2] == 0:
         return float("nan")
-    wavelength = wavelength[keep][None, :]
-
-    def offset(u):
-        x, y = geometry.frame_coordinates(u, rows)
-        dx, dy = x - px, y - py
-        canvas_x, canvas_y = c * dx + s * dy + px, -s * dx + c * dy + py  # undo the frame's rotation
-        with np.errstate(invalid="ignore"):
-            return canvas_x - _columns(bench, proj, wavelength, canvas_y - py)
-
-    u = np.repeat(start[keep][None, :], 3, axis=0)
-    for _ in range(6):
-        f = offset(u)
-        slope = offset(u + 0.5) - offset(u - 0.5)
-        u = u - f / np.where(np.abs(slope) > 1e-6, slope, 1.0)
-    found = np.all(np.isfinite(u) & (np.abs(offset(u)) < 1e-3), axis=0)
+    u, ok = _slit_image_columns(bench, geometry, rows, wavelength[keep][None, :],
+                                np.repeat(start[keep][None, :], 3, axis=0))
+    found = np.all(ok, axis=0)
     if found.sum() < 3:
         return float("nan")
     u = u[:, found]
