@@ -36,6 +36,10 @@ Top level (all keys required unless marked optional)::
                          "pixel_centre", "pixel_scale", "pixel_range"}
                         "model" is required; files written before the grating model existed
                         all say "polynomial" and load unchanged.
+                        Optional "alternative": the other model family fitted to the same lines
+                        (an object of the other form above) with its BIC weight "weight" (0-1);
+                        the solution's uncertainty adds weight * (alternative - solution)^2
+                        (model averaging). Files without it load with no alternative.
         matches         one object per matched line: pixel, pixel_uncertainty,
                         reference_nm, reference_uncertainty_nm, fitted_nm, residual_nm,
                         residual_px, species, members_nm (blend members), lamp,
@@ -190,6 +194,59 @@ def _numbers(values, where: str, origin: str, *, length: int | None = None) -> l
     return out
 
 
+def _validate_solution(solution, origin: str, n_columns: int, name: str, *, nested: bool = False) -> None:
+    """Checks of a wavelength solution's object (and of its optional ``alternative``, one level deep)."""
+    if not isinstance(solution, Mapping):
+        _fail(origin, f"`wavelength_calibration.{name}` must be an object")
+    model = solution.get("model")
+    if model == "polynomial":
+        coefficients = _numbers(solution.get("coefficients_nm"), f"{name}.coefficients_nm", origin)
+        if not 2 <= len(coefficients) <= 4:
+            _fail(origin, f"`{name}.coefficients_nm` must hold 2-4 numbers (order 1-3), has {len(coefficients)}")
+        order = solution.get("order")
+        if order != len(coefficients) - 1:
+            _fail(origin, f"`{name}.order` is {order!r} but there are {len(coefficients)} coefficients")
+        covariance = solution.get("covariance_nm2")
+        cov_key = "covariance_nm2"
+    elif model == "grating":
+        names = solution.get("parameter_names")
+        if names != list(GRATING_PARAMETERS):
+            _fail(origin, f"`{name}.parameter_names` must be {list(GRATING_PARAMETERS)}, got {names!r}")
+        coefficients = _numbers(solution.get("parameters"), f"{name}.parameters", origin, length=len(GRATING_PARAMETERS))
+        a_nm, theta_rad, _, f_px = coefficients
+        if not a_nm > 0 or not f_px > 0:
+            _fail(origin, f"`{name}.parameters` A_nm and f_px must be positive, were {a_nm} and {f_px}")
+        if not abs(theta_rad) < math.pi / 2:
+            _fail(origin, f"`{name}.parameters` theta_rad must lie within +-pi/2, was {theta_rad}")
+        sign = _number(solution.get("sign"), f"{name}.sign", origin)
+        if sign not in (1.0, -1.0):
+            _fail(origin, f"`{name}.sign` must be 1 or -1, was {sign}")
+        _number(solution.get("offset_nm", 0.0), f"{name}.offset_nm", origin)
+        covariance = solution.get("covariance")
+        cov_key = "covariance"
+    else:
+        _fail(origin, f"`{name}.model` must be 'polynomial' or 'grating', got {model!r}")
+    if not isinstance(covariance, list) or len(covariance) != len(coefficients):
+        _fail(origin, f"`{name}.{cov_key}` must be a square list of lists matching the coefficients")
+    for k, row in enumerate(covariance):
+        _numbers(row, f"{name}.{cov_key}[{k}]", origin, length=len(coefficients))
+    scale = _number(solution.get("pixel_scale"), f"{name}.pixel_scale", origin)
+    _number(solution.get("pixel_centre"), f"{name}.pixel_centre", origin)
+    if not scale > 0:
+        _fail(origin, f"`{name}.pixel_scale` must be positive, was {scale}")
+    pixel_range = _numbers(solution.get("pixel_range"), f"{name}.pixel_range", origin, length=2)
+    if pixel_range[0] < -0.5 or pixel_range[1] > n_columns - 0.5:
+        _fail(origin, f"`{name}.pixel_range` {pixel_range} lies outside the geometry's {n_columns} columns")
+    alternative = solution.get("alternative")
+    if alternative is not None:
+        if nested:
+            _fail(origin, f"`{name}.alternative` cannot hold another alternative")
+        _validate_solution(alternative, origin, n_columns, f"{name}.alternative", nested=True)
+        weight = _number(alternative.get("weight"), f"{name}.alternative.weight", origin)
+        if not 0.0 <= weight <= 1.0:
+            _fail(origin, f"`{name}.alternative.weight` must lie within 0-1, was {weight}")
+
+
 def _validate_wavelength(data, origin: str, n_columns: int) -> WavelengthCalibration:
     if not isinstance(data, Mapping):
         _fail(origin, "`wavelength_calibration` must be an object")
@@ -197,48 +254,7 @@ def _validate_wavelength(data, origin: str, n_columns: int) -> WavelengthCalibra
                 "line_list_sources", "coverage_fraction", "n_detected"):
         if key not in data:
             _fail(origin, f"`wavelength_calibration.{key}` is missing")
-    solution = data["solution"]
-    if not isinstance(solution, Mapping):
-        _fail(origin, "`wavelength_calibration.solution` must be an object")
-    model = solution.get("model")
-    if model == "polynomial":
-        coefficients = _numbers(solution.get("coefficients_nm"), "solution.coefficients_nm", origin)
-        if not 2 <= len(coefficients) <= 4:
-            _fail(origin, f"`solution.coefficients_nm` must hold 2-4 numbers (order 1-3), has {len(coefficients)}")
-        order = solution.get("order")
-        if order != len(coefficients) - 1:
-            _fail(origin, f"`solution.order` is {order!r} but there are {len(coefficients)} coefficients")
-        covariance = solution.get("covariance_nm2")
-        cov_key = "covariance_nm2"
-    elif model == "grating":
-        names = solution.get("parameter_names")
-        if names != list(GRATING_PARAMETERS):
-            _fail(origin, f"`solution.parameter_names` must be {list(GRATING_PARAMETERS)}, got {names!r}")
-        coefficients = _numbers(solution.get("parameters"), "solution.parameters", origin, length=len(GRATING_PARAMETERS))
-        a_nm, theta_rad, _, f_px = coefficients
-        if not a_nm > 0 or not f_px > 0:
-            _fail(origin, f"`solution.parameters` A_nm and f_px must be positive, were {a_nm} and {f_px}")
-        if not abs(theta_rad) < math.pi / 2:
-            _fail(origin, f"`solution.parameters` theta_rad must lie within +-pi/2, was {theta_rad}")
-        sign = _number(solution.get("sign"), "solution.sign", origin)
-        if sign not in (1.0, -1.0):
-            _fail(origin, f"`solution.sign` must be 1 or -1, was {sign}")
-        _number(solution.get("offset_nm", 0.0), "solution.offset_nm", origin)
-        covariance = solution.get("covariance")
-        cov_key = "covariance"
-    else:
-        _fail(origin, f"`solution.model` must be 'polynomial' or 'grating', got {model!r}")
-    if not isinstance(covariance, list) or len(covariance) != len(coefficients):
-        _fail(origin, f"`solution.{cov_key}` must be a square list of lists matching the coefficients")
-    for k, row in enumerate(covariance):
-        _numbers(row, f"solution.{cov_key}[{k}]", origin, length=len(coefficients))
-    scale = _number(solution.get("pixel_scale"), "solution.pixel_scale", origin)
-    _number(solution.get("pixel_centre"), "solution.pixel_centre", origin)
-    if not scale > 0:
-        _fail(origin, f"`solution.pixel_scale` must be positive, was {scale}")
-    pixel_range = _numbers(solution.get("pixel_range"), "solution.pixel_range", origin, length=2)
-    if pixel_range[0] < -0.5 or pixel_range[1] > n_columns - 0.5:
-        _fail(origin, f"`solution.pixel_range` {pixel_range} lies outside the geometry's {n_columns} columns")
+    _validate_solution(data["solution"], origin, n_columns, "solution")
     if not isinstance(data["matches"], list) or not data["matches"]:
         _fail(origin, "`wavelength_calibration.matches` must be a non-empty list")
     for k, match in enumerate(data["matches"]):

@@ -52,6 +52,7 @@ All wavelengths are in air (the line lists are in air).
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import itertools
 import math
@@ -233,6 +234,15 @@ class WavelengthSolution:
         +1 or -1 (grating model only).
     grating_offset_nm : float
         B (grating model only).
+    alternative : WavelengthSolution or None
+        The other model family fitted to the same lines (the grating model beside a polynomial
+        solution, or the polynomial beside a grating one), when both fitted them.
+    alternative_weight : float
+        The alternative's posterior weight from the two models' BIC (1 / (1 + exp(dBIC / 2)),
+        dBIC = BIC(alternative) - BIC(this)); 0 without one. :meth:`uncertainty_nm` adds
+        ``alternative_weight * (alternative - this)**2`` to the variance (Bayesian model averaging
+        about the reported model): where the lines cannot tell the two models apart their
+        disagreement, small between the lines and growing beyond them, is part of the error.
     """
 
     coefficients: tuple[float, ...]
@@ -243,6 +253,8 @@ class WavelengthSolution:
     model: str = "polynomial"
     grating_sign: float = 1.0
     grating_offset_nm: float = 0.0
+    alternative: "WavelengthSolution | None" = None
+    alternative_weight: float = 0.0
 
     def __post_init__(self):
         if self.model not in SOLUTION_MODELS:
@@ -284,7 +296,20 @@ class WavelengthSolution:
             t = self._t(pixel)
             basis = np.stack([t**k for k in range(self.order + 1)], axis=-1)
         cov = np.asarray(self.covariance, dtype=float)
-        return np.sqrt(np.maximum(np.einsum("...i,ij,...j->...", basis, cov, basis), 0.0))
+        variance = np.maximum(np.einsum("...i,ij,...j->...", basis, cov, basis), 0.0)
+        if self.alternative is not None and self.alternative_weight > 0:
+            variance = variance + self.alternative_weight * self.model_difference_nm(pixel) ** 2
+        return np.sqrt(variance)
+
+    def statistical_uncertainty_nm(self, pixel) -> np.ndarray:
+        """1-sigma of this model's own fit at ``pixel`` (nm), without the model-averaging term."""
+        return dataclasses.replace(self, alternative=None, alternative_weight=0.0).uncertainty_nm(pixel)
+
+    def model_difference_nm(self, pixel) -> np.ndarray:
+        """The alternative model's wavelength minus this one's at ``pixel`` (nm); 0 without an alternative."""
+        if self.alternative is None:
+            return np.zeros(np.shape(np.asarray(pixel, dtype=float)))
+        return self.alternative.wavelength_nm(pixel) - self.wavelength_nm(pixel)
 
     def pixel_of(self, wavelength_nm) -> np.ndarray:
         """Pixel at which the solution reaches ``wavelength_nm`` (inverse, by interpolation on a fine grid)."""
@@ -300,6 +325,12 @@ class WavelengthSolution:
         return bool(self.dispersion_nm_per_px(0.5 * sum(self.pixel_range)) < 0)
 
     def to_dict(self) -> dict:
+        out = self._own_dict()
+        if self.alternative is not None:
+            out["alternative"] = {**self.alternative._own_dict(), "weight": float(self.alternative_weight)}
+        return out
+
+    def _own_dict(self) -> dict:
         if self.model == "grating":
             return {
                 "model": "grating",
@@ -326,6 +357,15 @@ class WavelengthSolution:
 
     @classmethod
     def from_dict(cls, data) -> "WavelengthSolution":
+        own = cls._from_own_dict(data)
+        alternative = data.get("alternative")
+        if alternative is None:
+            return own
+        return dataclasses.replace(own, alternative=cls._from_own_dict(alternative),
+                                   alternative_weight=float(alternative.get("weight", 0.0)))
+
+    @classmethod
+    def _from_own_dict(cls, data) -> "WavelengthSolution":
         model = data.get("model", "polynomial")
         pixel_range = (float(data["pixel_range"][0]), float(data["pixel_range"][1]))
         if model == "grating":
@@ -1402,6 +1442,14 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
     if int(keep_poly.sum()) < 6:
         return polynomial
     sign = 1.0 if coeffs[1] > 0 else -1.0
+
+    def grating_solution(params, cov):
+        return WavelengthSolution(
+            coefficients=tuple(float(v) for v in params),
+            covariance=tuple(tuple(float(v) for v in row) for row in cov),
+            pixel_centre=float(centre), pixel_scale=float(scale),
+            pixel_range=(float(pixel_range[0]), float(pixel_range[1])), model="grating", grating_sign=sign)
+
     width = abs(float(pixel_range[1]) - float(pixel_range[0]))
     start = dict(sign=sign, width_px=width, axis_px=0.5 * (float(pixel_range[0]) + float(pixel_range[1])), start_px=centre, start_nm=float(coeffs[0]), start_disp=float(coeffs[1] / scale))
 
@@ -1428,8 +1476,9 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
         log_all = math.log(max(px.size, 2))
         chi2_all = float(np.sum(((lam - np.polynomial.polynomial.polyval(t_all, coeffs)) / ss) ** 2))
         k_all = _grating_effective_parameters(fitted[0], fitted[1], px, ss, sign)
-        if not fitted[2] + k_all * log_all < chi2_all + n_poly * log_all - (2.0 if k_all > n_poly else 0.0):
-            return polynomial
+        bic_all_grating, bic_all_poly = fitted[2] + k_all * log_all, chi2_all + n_poly * log_all
+        if not bic_all_grating < bic_all_poly - (2.0 if k_all > n_poly else 0.0):
+            return _Upgrade(None, grating_solution(fitted[0], fitted[1]), _alternative_weight(bic_all_grating - bic_all_poly))
     for _ in range(max(1, px.size // 3)):
         if fitted is None or keep.sum() <= 6:
             break
@@ -1466,22 +1515,14 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
         refit = _select_order(t_all, lam, ss, union, max_order=3, monotonic_t=(probe_of(union) - centre) / scale)
         bic_poly, n_poly = (np.inf, coeffs.size) if refit is None else (refit[0], refit[4] + 1)
     if not bic_grating < bic_poly - (2.0 if k_grating > n_poly else 0.0):
-        return polynomial
+        return _Upgrade(None, grating_solution(on_union[0], on_union[1]), _alternative_weight(bic_grating - bic_poly))
     jac = _grating_jacobian(params, px[keep], sign) / ss[keep, None]
     leverage = np.einsum("ij,jk,ik->i", jac, cov, jac)
     # scaled up (never down) by the scatter of the tightly known lines: loosely known lines, whose
     # near-zero chi-square terms would dilute a plain reduced chi-square, are left out of it
     cov = cov * max(1.0, _covariance_scale((lam[keep] - _grating_eval(params, px[keep], sign)) / ss[keep], leverage,
                                            tight[keep]))
-    solution = WavelengthSolution(
-        coefficients=tuple(float(v) for v in params),
-        covariance=tuple(tuple(float(v) for v in row) for row in cov),
-        pixel_centre=float(centre),
-        pixel_scale=float(scale),
-        pixel_range=(float(pixel_range[0]), float(pixel_range[1])),
-        model="grating",
-        grating_sign=sign,
-    )
+    solution = grating_solution(params, cov)
     used = keep[:n_lines].copy()
     rejected = ~used
     disp = np.abs(solution.dispersion_nm_per_px(peaks.pixel[p_idx]))
@@ -1491,13 +1532,35 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
     n_back = int(np.count_nonzero(keep[:n_lines] & ~keep_poly[:n_lines]))
     if n_back:
         note += f"; {n_back} line(s) a polynomial had to reject fit it and are used"
-    return solution, used, rejected, anchor, note
+    alternative = WavelengthSolution(
+        coefficients=tuple(float(c) for c in best.coefficients),
+        covariance=tuple(tuple(float(v) for v in row) for row in best.covariance),
+        pixel_centre=float(centre), pixel_scale=float(scale), pixel_range=(float(pixel_range[0]), float(pixel_range[1])))
+    return _Upgrade((solution, used, rejected, anchor, note), alternative, _alternative_weight(bic_poly - bic_grating))
+
+
+@dataclass(frozen=True)
+class _Upgrade:
+    """What the final model comparison gives: the grating model's result when it wins (else None), and
+    the other family's fit with its BIC weight (see ``WavelengthSolution.alternative``)."""
+
+    grating: tuple | None
+    alternative: "WavelengthSolution | None"
+    weight: float
+
+
+def _alternative_weight(delta_bic: float) -> float:
+    """Posterior weight of a model whose BIC exceeds the chosen one's by ``delta_bic`` (two models, equal priors)."""
+    if not math.isfinite(delta_bic):
+        return 0.0
+    return 1.0 / (1.0 + math.exp(min(max(0.5 * delta_bic, -50.0), 50.0)))
 
 
 def _build_result(best: _Candidate, peaks: _Peaks, *, lamps: Sequence[Lamp], pairs, context, pixel_range, extra_notes=(),
-                  grating=None):
+                  upgrade=None):
     centre, scale, t_ends, fwhm = context
     used_mask, rejected_mask, anchor_mask = best.used, best.rejected, best.anchor
+    grating = upgrade.grating if upgrade is not None else None
     if grating is not None:
         solution, used_mask, rejected_mask, anchor_mask, grating_note = grating
         extra_notes = tuple(extra_notes) + ((grating_note,) if grating_note else ())
@@ -1509,6 +1572,8 @@ def _build_result(best: _Candidate, peaks: _Peaks, *, lamps: Sequence[Lamp], pai
             pixel_scale=float(scale),
             pixel_range=(float(pixel_range[0]), float(pixel_range[1])),
         )
+    if upgrade is not None and upgrade.alternative is not None and upgrade.weight > 0:
+        solution = dataclasses.replace(solution, alternative=upgrade.alternative, alternative_weight=float(upgrade.weight))
     f = best.features
     matches = []
     for k, (pi, fi) in enumerate(zip(best.peak_index, best.feature_index)):
@@ -1691,9 +1756,9 @@ def _calibrate_peaks(peaks, lamps, *, pixel_range, d_range, pairs, max_order, su
             if hint:
                 raise CalibrationError(f"{exc}; the lines fit lamp {hint!r}: try --lamp {hint}") from None
         raise
-    grating = _grating_upgrade(best, peaks, pairs=pairs, context=context, pixel_range=pixel_range) if max_order >= 3 else None
+    upgrade = _grating_upgrade(best, peaks, pairs=pairs, context=context, pixel_range=pixel_range) if max_order >= 3 else None
     return _build_result(best, peaks, lamps=lamps, pairs=pairs, context=context, pixel_range=pixel_range,
-                         extra_notes=extra_notes, grating=grating)
+                         extra_notes=extra_notes, upgrade=upgrade)
 
 
 def _suggest_other_lamp(peaks, current, *, pixel_range, d_range, max_order):

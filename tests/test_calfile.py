@@ -127,3 +127,41 @@ def test_grating_shaped_curvature_in_the_file(tmp_path, calibration):
         read_calibration(_written(tmp_path, shaped, lambda d: d["geometry"].update(curvature_grating=["k", 1.0])))
     with pytest.raises(FileFormatError, match="curvature_grating"):
         read_calibration(_written(tmp_path, shaped, lambda d: d["geometry"].update(curvature_grating=[0.0009, 0.33])))
+
+
+def _with_alternative(calibration, weight=0.3):
+    """The fixture's calibration with an invented alternative model 0.5 nm off at the red end (a demo value)."""
+    import dataclasses
+
+    solution = calibration.wavelength.solution
+    coefficients = list(solution.coefficients)
+    coefficients[1] += 0.25  # t is normalised to about +-1: +-0.25 nm at the ends
+    alternative = dataclasses.replace(solution, coefficients=tuple(coefficients))
+    with_alt = dataclasses.replace(solution, alternative=alternative, alternative_weight=weight)
+    return dataclasses.replace(calibration, wavelength=dataclasses.replace(calibration.wavelength, solution=with_alt))
+
+
+def test_model_averaging_alternative_in_the_file(tmp_path, calibration):
+    # Bayesian model averaging about the reported model (common practice, no source):
+    # var = var_own + w (alternative - own)^2 at every pixel.
+    edited = _with_alternative(calibration, weight=0.3)
+    solution = edited.wavelength.solution
+    pixels = np.linspace(*solution.pixel_range, 7)
+    difference = solution.alternative.wavelength_nm(pixels) - solution.wavelength_nm(pixels)
+    assert np.abs(difference).max() > 0.2
+    assert solution.uncertainty_nm(pixels) ** 2 == pytest.approx(
+        solution.statistical_uncertainty_nm(pixels) ** 2 + 0.3 * difference**2, rel=1e-9)
+    assert solution.statistical_uncertainty_nm(pixels) == pytest.approx(calibration.wavelength.solution.uncertainty_nm(pixels))
+    back = read_calibration(write_calibration(edited, tmp_path / "cal.json"))
+    assert back.wavelength.solution == solution
+    # files without the field (written before it existed) load with no alternative
+    assert read_calibration(write_calibration(calibration, tmp_path / "old.json")).wavelength.solution.alternative is None
+
+
+@pytest.mark.parametrize("weight, message", [(1.5, "weight` must lie within 0-1"), (None, "alternative.weight")])
+def test_malformed_alternative_is_refused(tmp_path, calibration, weight, message):
+    def edit(d):
+        d["wavelength_calibration"]["solution"]["alternative"]["weight"] = weight
+
+    with pytest.raises(FileFormatError, match=message):
+        read_calibration(_written(tmp_path, _with_alternative(calibration), edit))

@@ -317,10 +317,15 @@ def calibration_covariance_nm2(solution, pixels) -> np.ndarray:
     ``solution`` is a ``WavelengthSolution`` (or a calibration holding one); J is its wavelength's
     derivative with respect to its coefficients at each pixel, by central differences a thousandth
     of each coefficient's own 1-sigma wide (exact for a polynomial, linear within the uncertainty
-    for the grating model).
+    for the grating model). A solution with a model-averaging ``alternative`` adds
+    ``alternative_weight * d d^T`` (d: the alternative minus the solution at the pixels), so the
+    diagonal is the solution's :meth:`uncertainty_nm` squared.
     """
     solution = _solution_of(solution)
     pixels = np.atleast_1d(np.asarray(pixels, dtype=float))
+    alternative_weight = float(getattr(solution, "alternative_weight", 0.0) or 0.0)
+    difference = solution.model_difference_nm(pixels) if alternative_weight > 0 else None
+    solution = dataclasses.replace(solution, alternative=None, alternative_weight=0.0)
     coefficients = np.asarray(solution.coefficients, dtype=float)
     cov = np.asarray(solution.covariance, dtype=float)
     jac = np.zeros((pixels.size, coefficients.size))
@@ -332,6 +337,9 @@ def calibration_covariance_nm2(solution, pixels) -> np.ndarray:
         jac[:, j] = (dataclasses.replace(solution, coefficients=tuple(up)).wavelength_nm(pixels)
                      - dataclasses.replace(solution, coefficients=tuple(down)).wavelength_nm(pixels)) / (2 * step)
     out = jac @ cov @ jac.T
+    if difference is not None:
+        # the model-averaging term: the two models' disagreement, one coherent error across the lines
+        out = out + alternative_weight * np.outer(difference, difference)
     return 0.5 * (out + out.T)
 
 
