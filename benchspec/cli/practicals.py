@@ -508,11 +508,11 @@ def _run_rydberg(args) -> int:
 
     _caution("discharge")
     spectrum = _load_inputs(args.spectrum, calibration=args.calibration, what="spectrum")
-    # The lines are fitted as independent even when the calibration is at hand: its covariance between
-    # lines has the wrong shape today (too large near the Hg anchors, too small when extrapolating), and
-    # generalised least squares on it gave R_H values 2.6x further from CODATA (RMS over 35 redrawn
-    # virtual-bench setups, benchmark practicals) than the independent fit. The API offers it
-    # (rydberg_from_spectrum(calibration=...)) for when that covariance is right.
+    # The lines are fitted as independent even when the calibration is at hand: generalised least
+    # squares on the calibration's covariance (with its model-averaging term) gives R_H values as close
+    # to CODATA as the independent fit (RMS 980 against 973 /m over 47 redrawn virtual-bench setups,
+    # benchmark practicals; 2.6x further before that term), so it has not earned the switch yet. The
+    # API offers it (rydberg_from_spectrum(calibration=...)).
     result = rydberg_from_spectrum(spectrum, min_snr=args.min_snr)
     if args.plot:
         from ..analysis.plots import rydberg_figure
