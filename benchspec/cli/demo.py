@@ -4,8 +4,6 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from .. import demo
-
 
 def register(subparsers) -> None:
     parser = subparsers.add_parser(
@@ -22,6 +20,8 @@ def register(subparsers) -> None:
 
 def _run(args) -> int:
     if args.regenerate:
+        from .. import demo  # imported when the command runs, not for every command's parser
+
         written = demo.regenerate(args.regenerate, force=args.force)
         print(f"rendered {len(written)} demo frames into {args.regenerate}")
         return 0

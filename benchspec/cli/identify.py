@@ -14,8 +14,8 @@ import argparse
 import json
 import sys
 
-from ..identify import IdentificationResult, identify
-from ..io import read_spectrum
+# identify (and scipy.signal behind it, ~1 s) is imported when the command runs: building the parser
+# for any command must not pay for it
 
 _NAMES = {
     "H": "hydrogen",
@@ -58,6 +58,9 @@ def register(subparsers) -> None:
 
 
 def _run(args) -> int:
+    from ..identify import identify
+    from ..io import read_spectrum
+
     spectrum = read_spectrum(args.spectrum)
     species = None
     if args.species is not None:
@@ -71,7 +74,7 @@ def _run(args) -> int:
     return 0
 
 
-def format_result(result: IdentificationResult, *, title: str = "") -> str:
+def format_result(result: "IdentificationResult", *, title: str = "") -> str:
     """The result as a table for people."""
     out = []
     if title:
@@ -105,7 +108,7 @@ def format_result(result: IdentificationResult, *, title: str = "") -> str:
     return "\n".join(out) + "\n"
 
 
-def _headline_matches(result: IdentificationResult):
+def _headline_matches(result: "IdentificationResult"):
     if result.verdict == "identified":
         return result.matches[:1]
     strong = [m for m in result.matches if m.score >= 0.6]

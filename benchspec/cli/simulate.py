@@ -6,7 +6,6 @@ import argparse
 import json
 from pathlib import Path
 
-from .. import simulate
 from ..errors import BenchFileError, ExportError
 from ..refdata import read_data_text
 from ..safety import cautions_for
@@ -50,7 +49,9 @@ def _parse_value(text: str):
         return text
 
 
-def _build_bench(args) -> simulate.Bench:
+def _build_bench(args) -> "simulate.Bench":
+    from .. import simulate  # imported when the command runs (scipy behind it): not for every command's parser
+
     bench = simulate.load_bench(args.bench) if args.bench else simulate.Bench()
     for item in args.set:
         key, sep, value = item.partition("=")
@@ -69,6 +70,8 @@ def _build_bench(args) -> simulate.Bench:
 
 
 def _run(args) -> int:
+    from .. import simulate
+
     if args.template:
         print(read_data_text("bench-template.toml"), end="")
         return 0
