@@ -815,7 +815,9 @@ class LiveExtractor:
         if len(side_k) == 1:
             side_k.append(np.zeros(n_cols))
         # variance of a side's mean = V(mean) * k / count
-        self._side_scale = [(k / np.maximum(c, 1.0)).astype(np.float32) for k, c in zip(side_k, counts)]
+        # (0 where a side has no row inside the frame: its mean is taken as 0 and adds no noise, as in extract)
+        self._side_scale = [np.where(c > 0, k / np.maximum(c, 1.0), 0.0).astype(np.float32)
+                            for k, c in zip(side_k, counts)]
         first, second = _side_coefficients(geometry, oks)
         self._side_ok = oks
         valid_ap = valid[a0:a1]
@@ -908,7 +910,7 @@ class LiveExtractor:
         takes the other side's mean for both, which gives the same
         constant background.
         """
-        if self.method != "optimal" or self._valid_ap is not None:
+        if self.method != "optimal":
             return None
         profile = self._profile[:, 0].astype(np.float64)
         n_cols = self.geometry.n_columns
@@ -926,6 +928,12 @@ class LiveExtractor:
         if len(self._side_ok) == 1:
             implied_first = np.where(neither, 0.0, np.ones_like(implied_first))
             implied_second = np.zeros_like(implied_second)
+        if self._valid_ap is not None:  # samples outside the frame have no background coefficients
+            implied_first = implied_first * self._valid_ap
+            implied_second = implied_second * self._valid_ap
+        # a column with neither side inside the frame has both means 0 (whatever its coefficients say)
+        implied_first = np.where(neither, self._coef_first, implied_first)
+        implied_second = np.where(neither, self._coef_second, implied_second)
         if np.any(profile < 0) or not (np.allclose(implied_first, self._coef_first, atol=1e-6)
                                        and np.allclose(implied_second, self._coef_second, atol=1e-6)):
             return None
@@ -953,7 +961,7 @@ class LiveExtractor:
                 "reduce": np.ascontiguousarray(np.stack(reduce), dtype=np.float32),
                 "numerator": np.ascontiguousarray(np.stack([profile * w for w in powers]), dtype=np.float32),
                 "variance": np.empty(shape, np.float32), "weighted": np.empty(shape, np.float32),
-                "sides": sides}
+                "sides": sides, "valid": self._valid_ap}
 
     def _optimal_fixed_profile(self, rect: np.ndarray, sums: np.ndarray, m1, m2, v1, v2):
         """Horne's estimate with the stored profile, in a few products over the aperture (no Python loop).
@@ -976,6 +984,8 @@ class LiveExtractor:
         variance = _product(fixed["design"], vector, out=fixed["variance"])  # noise model at f P + B, every pixel
         cv2.max(variance, float(fixed["floor"]), dst=variance)
         inverse = np.reciprocal(variance, out=variance)
+        if fixed["valid"] is not None:  # a sample whose kernel leaves the frame gets no weight
+            np.multiply(inverse, fixed["valid"], out=inverse)
         reduced = _product(fixed["reduce"], inverse)
         weighted = np.multiply(inverse, ap, out=fixed["weighted"])
         numerator = _product(fixed["numerator"], weighted)

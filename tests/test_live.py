@@ -7,6 +7,7 @@ their uncertainties.
 
 from __future__ import annotations
 
+import dataclasses
 import warnings
 
 import numpy as np
@@ -137,6 +138,31 @@ def test_fixed_profile_optimal_matches_the_general_code():
     box = extract.LiveExtractor(g, noise_model=model, method="box").process_arrays(image)[0]
     reference = extract.extract(geometry.rectify(image, g, interpolation="linear"), noise_model=model, method="box")
     assert np.max(np.abs(box - reference.intensity)) / np.abs(reference.intensity).max() < 1e-4
+
+
+def test_fixed_profile_optimal_covers_a_band_whose_ends_leave_the_frame():
+    # A geometry 6 columns wider than the frame at each end: some aperture samples read outside it and
+    # some end columns have no background row inside. The fast form must still apply (at 1280x720 one
+    # corner sample outside the frame used to send every frame to the per-pixel code, 3 times slower)
+    # and agree with the general code; box must agree with extract(), which gives a side with no row
+    # inside the frame no variance.
+    image, g = _band_with_varying_curvature()
+    wide = dataclasses.replace(g, first_column_s_px=g.first_column_s_px - 6, n_columns=g.n_columns + 12)
+    model = extract.NoiseModel(2.0, 3.0)
+    live = extract.LiveExtractor(wide, noise_model=model, method="optimal")
+    assert live._valid_ap is not None and (live._valid_ap == 0).sum() > 50
+    assert not (live._side_ok[0] | live._side_ok[1]).all()
+    assert live._weighted_sums is not None
+    fast_flux, fast_var, _ = live.process_arrays(image)
+    general = extract.LiveExtractor(wide, noise_model=model, method="optimal")
+    general._weighted_sums = None
+    flux, var, _ = general.process_arrays(image)
+    assert np.max(np.abs(fast_flux - flux) / np.sqrt(var)) < 0.25
+    np.testing.assert_allclose(np.sqrt(fast_var), np.sqrt(var), rtol=0.01)
+    box, box_var, _ = extract.LiveExtractor(wide, noise_model=model, method="box").process_arrays(image)
+    reference = extract.extract(geometry.rectify(image, wide, interpolation="linear"), noise_model=model, method="box")
+    assert np.max(np.abs(box - reference.intensity)) / np.abs(reference.intensity).max() < 1e-4
+    np.testing.assert_allclose(np.sqrt(box_var), reference.uncertainty, rtol=0.01)
 
 
 def test_prepare_live_equals_prepare_and_reads_regions_in_place():
