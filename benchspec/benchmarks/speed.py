@@ -683,17 +683,20 @@ def _pipeline_each(scene: _Scene, folder: Path, path: Path, *, n_frames: int, pr
     record["list_memory_held_per_frame_kb"] = per_frame / 1e3
     record["list_memory_one_hour_30fps_gb"] = per_frame * 30 * 3600 / 1e9
     record["command"] = _command_each(calibration, folder, path, n_frames=n_frames, progress=progress)
+    record["command_netcdf"] = _command_each(calibration, folder, path, n_frames=n_frames, progress=progress,
+                                             out_name="S.nc")
     return record
 
 
-def _command_each(calibration, folder: Path, path: Path, *, n_frames: int, progress) -> dict:
-    """``benchspec extract --each VIDEO --calibration CAL.json --out S.csv``, in this process (imports done).
+def _command_each(calibration, folder: Path, path: Path, *, n_frames: int, progress, out_name: str = "S.csv") -> dict:
+    """``benchspec extract --each VIDEO --calibration CAL.json --out S.csv`` (or ``S.nc``), in this process.
 
     The whole command: reading the calibration file, the series, one CSV per
-    frame (each written atomically) and the flush of the series at the end.
-    Interpreter start-up and the imports are not in it (they are the same
-    for every command).
+    frame (each written atomically) and the flush of the series at the end;
+    with ``S.nc`` the whole series in one NetCDF file. Interpreter start-up
+    and the imports are not in it (they are the same for every command).
     """
+    netcdf = out_name.endswith(".nc")
     try:
         from ..calfile import write_calibration
         from ..cli import main
@@ -702,7 +705,7 @@ def _command_each(calibration, folder: Path, path: Path, *, n_frames: int, progr
     cal_path = folder / "series_calibration.json"
     write_calibration(calibration, cal_path, force=True)
     if progress:
-        progress(f"batch {n_frames} frames, benchspec extract --each (CSV per frame)")
+        progress(f"batch {n_frames} frames, benchspec extract --each ({'one NetCDF file' if netcdf else 'CSV per frame'})")
     passes = {"count": 0}
 
     def runner(p):
@@ -715,8 +718,13 @@ def _command_each(calibration, folder: Path, path: Path, *, n_frames: int, progr
 
         try:
             with contextlib.redirect_stdout(_stdio.StringIO()):
-                code = main(["extract", str(p), "--calibration", str(cal_path), "--each", "--out", str(out / "S.csv")])
-            written = sum(1 for _ in out.glob("S_*.csv"))
+                code = main(["extract", str(p), "--calibration", str(cal_path), "--each", "--out", str(out / out_name)])
+            if netcdf:
+                from ..series import read_series
+
+                written = read_series(out / out_name).n_frames
+            else:
+                written = sum(1 for _ in out.glob("S_*.csv"))
         finally:
             shutil.rmtree(out, ignore_errors=True)
         if code != 0:
@@ -725,8 +733,10 @@ def _command_each(calibration, folder: Path, path: Path, *, n_frames: int, progr
 
     try:
         cpu: dict = {}
-        record = _rate_record("benchspec extract --each (a CSV per frame, each written atomically, "
-                              "the series flushed once at the end; after the imports)",
+        what = ("benchspec extract --each --out S.nc (the series in one NetCDF file; after the imports)" if netcdf else
+                "benchspec extract --each (a CSV per frame, each written atomically, "
+                "the series flushed once at the end; after the imports)")
+        record = _rate_record(what,
                               *_rates(runner, path, passes=2, cpu=cpu), cpu=cpu)
     except Exception as exc:  # reported, not hidden
         return {"available": False, "error": f"{type(exc).__name__}: {exc}"}
@@ -1009,6 +1019,10 @@ def _summary(result: dict) -> list[str]:
         if command and command.get("available"):
             out.append(f"  the command writing a CSV per frame: {command['each_fps']:.0f} files/s = "
                        f"{command['ratio']:.2f}x the decode-only rate")
+        netcdf = each.get("command_netcdf")
+        if netcdf and netcdf.get("available"):
+            out.append(f"  the command writing one NetCDF file (--out S.nc): {netcdf['each_fps']:.0f} spectra/s = "
+                       f"{netcdf['ratio']:.2f}x the decode-only rate")
     return out
 
 
@@ -1064,13 +1078,15 @@ def format_report(result: dict) -> str:
                 if "each_cpu_ms_per_frame" in record:
                     out.append(f"    process CPU {record['each_cpu_ms_per_frame']:.2f} ms per frame (all threads) vs "
                                f"{record['decode_only_cpu_ms_per_frame']:.2f} ms decoding alone")
-                command = record.get("command")
-                if command and command.get("available"):
-                    out.append(f"  {command['each_fps']:6.0f} files/s vs decode only {command['decode_only_fps']:4.0f} "
-                               f"fps = {command['ratio']:.2f}x, CPU {command['each_cpu_ms_per_frame']:.2f} ms per frame: "
-                               f"{command['what']}")
-                elif command:
-                    out.append(f"  extract --each: not measured ({command.get('reason') or command.get('error')})")
+                for name, unit in (("command", "files/s"), ("command_netcdf", "spectra/s")):
+                    command = record.get(name)
+                    if command and command.get("available"):
+                        out.append(f"  {command['each_fps']:6.0f} {unit} vs decode only {command['decode_only_fps']:4.0f} "
+                                   f"fps = {command['ratio']:.2f}x, CPU {command['each_cpu_ms_per_frame']:.2f} ms per frame: "
+                                   f"{command['what']}")
+                    elif command:
+                        out.append(f"  extract --each ({name}): not measured "
+                                   f"({command.get('reason') or command.get('error')})")
             out.append(
                 f"memory from frame {memory['from_frame']} to {memory['to_frame']}: resident "
                 f"{memory['rss_growth_mb']:+.1f} MB, Python heap {memory['traced_growth_mb']:+.2f} MB "

@@ -7,8 +7,9 @@
   writes the calibrated spectrum (CSV: ``#`` provenance lines, then
   ``wavelength_nm,intensity,uncertainty,saturated,...``, one row per column,
   wavelength increasing); ``--each`` writes one file per frame
-  (``SPEC_0000.csv``, ``SPEC_0001.csv``, ...), a time series. The extension
-  of ``--out`` picks the format (.csv, .json, .jdx).
+  (``SPEC_0000.csv``, ``SPEC_0001.csv``, ...), a time series, or with
+  ``--out RUN.nc`` the whole series in one NetCDF file (:mod:`benchspec.series`).
+  The extension of ``--out`` picks the format (.csv, .json, .jdx).
 * ``lines SPEC.csv [--absorption] [--json]`` prints the line table.
 
 Errors print one line and exit with code 2; nothing is written then.
@@ -64,7 +65,9 @@ def register(subparsers) -> None:
     ext.add_argument("--extraction", choices=("optimal", "box"), help="override the calibration's extraction method")
     ext.add_argument("--response", metavar="RESP.json",
                      help="divide by the instrument response (from `benchspec response`): relative spectral power")
-    ext.add_argument("--out", required=True, metavar="SPEC.csv", help="output spectrum (.csv, .json or .jdx)")
+    ext.add_argument("--out", required=True, metavar="SPEC.csv",
+                     help="output spectrum (.csv, .json or .jdx); with --each SPEC.csv gives SPEC_0000.csv, "
+                          "SPEC_0001.csv, ... and RUN.nc one NetCDF file holding the whole series")
     ext.add_argument("--force", action="store_true", help="overwrite existing output files")
     ext.set_defaults(handler=_extract)
 
@@ -160,9 +163,13 @@ def _extract(args) -> int:
     from ..pipeline import extract_frames
 
     out = Path(args.out)
-    if out.suffix.lower() not in SPECTRUM_EXTENSIONS:
-        raise ExportError(f"cannot tell the format of {out}: use one of {', '.join(SPECTRUM_EXTENSIONS)}")
-    if not args.each and out.exists() and not args.force:
+    if out.suffix.lower() == ".nc" and not args.each:
+        raise ExportError(f"{out.name}: a .nc file holds a time series; add --each, or write one spectrum "
+                          f"as {', '.join(SPECTRUM_EXTENSIONS)}")
+    if out.suffix.lower() not in SPECTRUM_EXTENSIONS + (".nc",):
+        raise ExportError(f"cannot tell the format of {out}: use one of {', '.join(SPECTRUM_EXTENSIONS)} "
+                          "(or .nc with --each: the whole series in one NetCDF file)")
+    if out.exists() and not args.force and (not args.each or out.suffix.lower() == ".nc"):
         raise ExportError(f"{out} already exists; pass --force to overwrite it, or choose another name")
     response = None
     if args.response:
@@ -190,6 +197,9 @@ def _extract_series(args, out: Path, response) -> int:
     from ..io import SeriesWriter
     from ..pipeline import iter_extract_frames
 
+    if out.suffix.lower() == ".nc":
+        return _extract_series_file(args, out, response)
+
     pattern = re.compile(re.escape(out.stem) + r"_\d{4,}" + re.escape(out.suffix) + "$")
     folder = out.parent if str(out.parent) else Path(".")
     clash = sorted(p for p in folder.glob(f"{out.stem}_*{out.suffix}") if pattern.match(p.name))
@@ -206,6 +216,31 @@ def _extract_series(args, out: Path, response) -> int:
         raise ExportError("no frames to extract; pass image files, a folder, a glob pattern or a video")
     first, last = (out.with_name(f"{out.stem}_{k:04d}{out.suffix}") for k in (0, count - 1))
     print(f"wrote {count} spectra: {first.name} ... {last.name}")
+    return 0
+
+
+def _extract_series_file(args, out: Path, response) -> int:
+    """--each with a .nc destination: the whole series in one NetCDF file (benchspec.series)."""
+    from ..analysis.response import apply_response
+    from ..pipeline import iter_extract_frames
+    from ..series import SeriesFile
+
+    series = SeriesFile(out, force=args.force)
+    try:
+        with series:
+            for spectrum in iter_extract_frames(args.frames, args.calibration, dark=args.dark, extraction=args.extraction):
+                if response is not None:
+                    spectrum = apply_response(spectrum, response)
+                series.write(spectrum)
+    except Exception:
+        if series.count and out.exists():
+            print(f"note: the {series.count} spectra made before the error are in {out} (its `complete` "
+                  "attribute says why the series stopped)", file=sys.stderr)
+        raise
+    if series.count == 0:
+        raise ExportError("no frames to extract; pass image files, a folder, a glob pattern or a video")
+    print(f"wrote {out} ({series.count} spectra, NetCDF; read it with benchspec.series.read_series "
+          "or any NetCDF reader)")
     return 0
 
 
