@@ -129,11 +129,13 @@ def test_polynomial_solution_dict_is_unchanged():
 
 
 def test_a_polynomial_solution_carries_the_grating_model_as_its_alternative():
-    # Setup 0 of the practicals benchmark's redrawn ensemble: the lines cannot tell an order-2
-    # polynomial from the grating model (BIC within a few units), the polynomial is reported, and
-    # beyond the last tightly known line the two disagree by about 1.6 nm at H-alpha (656.28 nm, NIST
-    # ASD air wavelength). The polynomial's own sigma there (0.7 nm) was 2.7 times smaller than its
-    # true error against the simulator's truth; with the model-averaging term the truth is inside 2 sigma.
+    # Setup 5 of the practicals benchmark's redrawn ensemble: the lines barely tell an order-2
+    # polynomial from the grating model, the polynomial is reported (the grating model keeps a weight
+    # of about 0.24), and beyond the last tightly known line the two disagree at H-alpha (656.28 nm,
+    # NIST ASD air wavelength). The polynomial's own sigma there understates its true error against the
+    # simulator's truth; with the model-averaging term the truth is inside 2 sigma.
+    # (Setup 0 was used before; its weight sat at 0.47-0.53, so the reported model flipped with the
+    # last bit of numpy's SIMD maths between CPUs. Setup 5 sits clear of the tie.)
     import warnings
 
     from benchspec import simulate
@@ -142,7 +144,7 @@ def test_a_polynomial_solution_carries_the_grating_model_as_its_alternative():
     from benchspec.errors import DegradedResultWarning
     from benchspec.pipeline import calibrate_frames
 
-    bench, cfl, jpeg, _ = draw_setup(0)
+    bench, cfl, jpeg, _ = draw_setup(5)
     rendered = [simulate.render(bench, seed=s, source=cfl) for s in (1000, 1001)]
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", DegradedResultWarning)
@@ -150,7 +152,7 @@ def test_a_polynomial_solution_carries_the_grating_model_as_its_alternative():
     solution = calibration.wavelength.solution
     assert solution.model == "polynomial"  # on this setup (if that changes, pick a setup where it holds)
     assert solution.alternative is not None and solution.alternative.model == "grating"
-    assert 0.0 < solution.alternative_weight < 1.0
+    assert 0.05 < solution.alternative_weight < 0.45  # clear of the 0.5 tie
     grid = np.linspace(*solution.pixel_range, 4000)
     true = truth_wavelength_at(grid, calibration.geometry, rendered[0].truth)
     ok = np.isfinite(true)
