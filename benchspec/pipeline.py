@@ -38,6 +38,7 @@ from .spectrum import Spectrum
 from .wavecal import (
     ManualPair,
     WavelengthCalibration,
+    _recalibrate_lines,
     calibrate_combined,
     calibrate_lines,
     dispersion_range_for_grating,
@@ -333,8 +334,9 @@ def _refit_curvature(stacked, geometry, wavelength, spectrum, *, lamp, others, e
             observations = [(table, lamp)] + [(find_lines(extract_stack(s, refit, method=extraction), min_snr=min_snr), name)
                                               for s, name in others]
             new_wavelength = calibrate_combined(observations, pairs=pairs, dispersion_range_nm_per_px=d_range)
-        else:
-            new_wavelength = calibrate_lines(table, lamp=lamp, pairs=pairs, dispersion_range_nm_per_px=d_range)
+        else:  # the same lines, moved by a fraction of a pixel: refined from the first solution, no new search
+            new_wavelength = _recalibrate_lines(table, wavelength.solution, lamp=lamp, pairs=pairs,
+                                                dispersion_range_nm_per_px=d_range)
     except CalibrationError:
         return geometry, wavelength, spectrum
     return refit, new_wavelength, new_spectrum

@@ -1229,8 +1229,12 @@ def _lit_pixels(peaks: _Peaks, pairs) -> np.ndarray:
     return np.r_[chosen, [m.pixel for m in pairs]]
 
 
-def _search(peaks: _Peaks, reference, *, pixel_range, d_range, pairs, max_order):
-    """All refined candidates, best first."""
+def _search(peaks: _Peaks, reference, *, pixel_range, d_range, pairs, max_order, seed=None):
+    """All refined candidates, best first.
+
+    ``seed`` (a WavelengthSolution of the same lines, slightly moved): no search, only the
+    full refinement started from it (see :func:`_recalibrate_lines`).
+    """
     # Normalise on the span of the detected lines (and pairs), and judge hypotheses only where there is
     # light: a sensor much wider than the spectrum must not veto a solution by its extrapolation.
     lit = _lit_pixels(peaks, pairs)
@@ -1244,6 +1248,13 @@ def _search(peaks: _Peaks, reference, *, pixel_range, d_range, pairs, max_order)
     t_probe = (peaks.pixel - centre) / scale if peaks.pixel.size else np.linspace(-1, 1, 5)
     fwhm = float(np.median(peaks.fwhm[np.argsort(-peaks.amplitude)[:7]])) if peaks.pixel.size else 3.0
     d_low, d_high = d_range
+    if seed is not None:
+        t_seed = np.linspace(t_ends[0], t_ends[1], 25)
+        start = np.polynomial.polynomial.polyfit(t_seed, np.asarray(seed.wavelength_nm(centre + scale * t_seed), float),
+                                                 min(3, max_order))
+        refined = _refine(start, peaks, reference, centre=centre, scale=scale, fwhm=fwhm, t_ends=t_ends, pairs=pairs,
+                          max_order=max_order)
+        return ([] if refined is None else [refined]), (centre, scale, t_full, fwhm)
     bands = []
     edge = d_low
     while edge < d_high:
@@ -1732,7 +1743,26 @@ def calibrate_lines(
                             max_order=max_order, suggest_lamps=suggest_lamps)
 
 
-def _calibrate_peaks(peaks, lamps, *, pixel_range, d_range, pairs, max_order, suggest_lamps, extra_notes=()):
+def _recalibrate_lines(lines: LineTable, seed: WavelengthSolution, *, lamp: str | Lamp = "cfl",
+                       pairs: Sequence[ManualPair] = (), dispersion_range_nm_per_px: tuple[float, float] = (0.1, 3.0),
+                       max_order: int = 3) -> WavelengthCalibration:
+    """:func:`calibrate_lines` for lines that moved slightly since ``seed`` was found from them.
+
+    After the curvature is refitted the same frame's lines shift by a fraction of a pixel: the
+    search is not made again, the lines are matched and fitted starting from ``seed`` (the
+    first calibration's solution). The same checks decide (enough lines, the brightest
+    explained, RMS, evidence); only the comparison with a runner-up, which the first
+    calibration passed, is not repeated. Raises CalibrationError as calibrate_lines does.
+    """
+    d_range = _check_options(dispersion_range_nm_per_px, max_order, pairs)
+    lamp_obj = _as_lamp(lamp)
+    peaks = _peaks_from_table(lines, kind=lamp_obj.kind)
+    pixel_range = (min(lines.pixel_range), max(lines.pixel_range))
+    return _calibrate_peaks(peaks, [lamp_obj], pixel_range=pixel_range, d_range=d_range, pairs=tuple(pairs),
+                            max_order=max_order, suggest_lamps=False, seed=seed)
+
+
+def _calibrate_peaks(peaks, lamps, *, pixel_range, d_range, pairs, max_order, suggest_lamps, extra_notes=(), seed=None):
     label = " + ".join(f"lamp {l.name!r}" for l in lamps)
     if peaks.pixel.size + len(pairs) < 3:
         raise CalibrationError(
@@ -1747,7 +1777,7 @@ def _calibrate_peaks(peaks, lamps, *, pixel_range, d_range, pairs, max_order, su
     reference = (np.concatenate(wavelength)[order], np.concatenate(intensity)[order], np.concatenate(tolerance)[order],
                  tuple(np.array(species, dtype=object)[order]))
     candidates, context = _search(peaks, reference, pixel_range=pixel_range, d_range=d_range, pairs=pairs,
-                                  max_order=max_order)
+                                  max_order=max_order, seed=seed)
     try:
         best = _decide(candidates, peaks, lamp_label=label, pairs=pairs, context=context)
     except CalibrationError as exc:
