@@ -29,7 +29,7 @@ import numpy as np
 
 from .calfile import Calibration, read_calibration, write_calibration
 from .errors import CalibrationError, DegradedResultWarning, FrameError, InputError
-from .extract import extract_stack
+from .extract import NoiseModel, estimate_noise_model, extract_stack
 from .frames import StackedFrame, expand_sources, file_sha256, iter_frames, load_stack, stack_frames
 from .geometry import measure_band_shift, measure_geometry, refit_curvature_grating
 from .lines import LineTable, find_lines
@@ -233,8 +233,12 @@ def calibrate_frames(
     lamps = [lamp]
     # An absorption reference (daylight) is calibrated from the dips of a continuum, not from bright lines.
     absorption = load_lamp(lamp).kind == "absorption"
+    # The gain and read noise describe the camera's pixels, not the rectification: estimated once
+    # per stack here, they serve the extraction after the curvature refit too.
+    noise: dict[int, NoiseModel] = {}
     if not absorption:
-        spectrum = extract_stack(stacked, geometry, method=extraction)
+        noise[id(stacked)] = estimate_noise_model(stacked, geometry=geometry)
+        spectrum = extract_stack(stacked, geometry, method=extraction, noise_model=noise[id(stacked)])
         table = find_lines(spectrum, min_snr=min_snr)
     if absorption:
         if more_lamps:
@@ -253,7 +257,8 @@ def calibrate_frames(
                     f"{stacked.shape[1]}x{stacked.shape[0]} px; combine frames of one camera setup only"
                 )
             other_stacks.append((other_stack, other_lamp))
-            other_spectrum = extract_stack(other_stack, geometry, method=extraction)
+            noise[id(other_stack)] = estimate_noise_model(other_stack, geometry=geometry)
+            other_spectrum = extract_stack(other_stack, geometry, method=extraction, noise_model=noise[id(other_stack)])
             observations.append((find_lines(other_spectrum, min_snr=min_snr), other_lamp))
             for record in other_records:
                 record["lamp"] = other_lamp
@@ -265,7 +270,7 @@ def calibrate_frames(
     if not absorption:
         geometry, wavelength, spectrum = _refit_curvature(
             stacked, geometry, wavelength, spectrum, lamp=lamp, others=other_stacks if more_lamps else [],
-            extraction=extraction, pairs=pairs, d_range=d_range, min_snr=min_snr)
+            extraction=extraction, pairs=pairs, d_range=d_range, min_snr=min_snr, noise=noise)
     if wavelength.verdict == "poor":
         warnings.warn(f"wavelength calibration is poor: {wavelength.verdict_reason}", DegradedResultWarning, stacklevel=2)
     settings = {
@@ -294,7 +299,8 @@ def calibrate_frames(
     )
 
 
-def _refit_curvature(stacked, geometry, wavelength, spectrum, *, lamp, others, extraction, pairs, d_range, min_snr):
+def _refit_curvature(stacked, geometry, wavelength, spectrum, *, lamp, others, extraction, pairs, d_range, min_snr,
+                     noise=None):
     """The physical curvature shape from the diffraction angle along the band, then extract and calibrate once more.
 
     A grating-shaped solution gives each column's diffraction angle; for a polynomial solution
@@ -305,7 +311,8 @@ def _refit_curvature(stacked, geometry, wavelength, spectrum, *, lamp, others, e
     traced lines support it (no worse than the polynomial by BIC, or not rejected by a
     chi-square test); the lines then move slightly, so
     the spectrum is extracted and calibrated again. When that second calibration is refused,
-    the first geometry and solution are kept. Returns (geometry, wavelength, spectrum).
+    the first geometry and solution are kept. ``noise`` maps id(stack) to the noise model
+    already estimated for it (estimated again where missing). Returns (geometry, wavelength, spectrum).
     """
     solution = wavelength.solution
     if not geometry.curvature_known:
@@ -327,12 +334,14 @@ def _refit_curvature(stacked, geometry, wavelength, spectrum, *, lamp, others, e
         return geometry, wavelength, spectrum
     if not info["used"]:
         return geometry, wavelength, spectrum
-    new_spectrum = extract_stack(stacked, refit, method=extraction)
+    noise = noise or {}
+    new_spectrum = extract_stack(stacked, refit, method=extraction, noise_model=noise.get(id(stacked)))
     table = find_lines(new_spectrum, min_snr=min_snr)
     try:
         if others:
-            observations = [(table, lamp)] + [(find_lines(extract_stack(s, refit, method=extraction), min_snr=min_snr), name)
-                                              for s, name in others]
+            observations = [(table, lamp)] + [
+                (find_lines(extract_stack(s, refit, method=extraction, noise_model=noise.get(id(s))), min_snr=min_snr), name)
+                for s, name in others]
             new_wavelength = calibrate_combined(observations, pairs=pairs, dispersion_range_nm_per_px=d_range)
         else:  # the same lines, moved by a fraction of a pixel: refined from the first solution, no new search
             new_wavelength = _recalibrate_lines(table, wavelength.solution, lamp=lamp, pairs=pairs,
@@ -622,7 +631,7 @@ _PREPARE_AHEAD: int | None = None
 
 def _iter_extract(frames, calibration, *, dark, extraction, band_check_every, interpolation, cal_path):
     """The body of :func:`iter_extract_frames` (arguments checked there)."""
-    from .extract import LiveExtractor, estimate_noise_model
+    from .extract import LiveExtractor
     from .frames import FramePreparer
     from .io import build_provenance
 
