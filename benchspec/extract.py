@@ -176,7 +176,8 @@ def _binned(levels: np.ndarray, values: np.ndarray, *, n_bins: int, statistic, m
     edges[0] = -np.inf
     index = np.digitize(levels, edges) - 1
     out_l, out_v, out_n = [], [], []
-    order = np.argsort(index, kind="stable")
+    # a stable sort of small integers is a radix sort in numpy: the same order, several times faster
+    order = np.argsort(index.astype(np.int16), kind="stable")
     index_sorted = index[order]
     bounds = np.searchsorted(index_sorted, np.arange(n_bins + 1))
     for k in range(n_bins):
