@@ -462,7 +462,7 @@ class WavelengthCalibration:
         span = f" (lines at {min(used):.1f}-{max(used):.1f} nm, extrapolated beyond)" if used else ""
         rows.append(
             f"{self.solution.description}, {self.n_used} lines used of {len(self.matches)} matched "
-            f"({self.n_detected} detected); RMS {self.rms_px:.3f} px = {self.rms_nm:.4f} nm; "
+            f"({self.n_detected} detected); weighted RMS {self.rms_px:.3f} px = {self.rms_nm:.4f} nm; "
             f"columns {low:.0f}-{high:.0f} px map to {w0:.1f}-{w1:.1f} nm{span} at {disp:.3f} nm/px, "
             f"blue on the {'right' if self.solution.blue_on_right else 'left'}; "
             f"solution 1-sigma <= {self.max_uncertainty_nm:.4f} nm between the outer lines"
@@ -1646,7 +1646,7 @@ def _build_result(best: _Candidate, peaks: _Peaks, *, lamps: Sequence[Lamp], pai
         notes.append("saturated lines were fitted from their unclipped wings; shorten the exposure for better centres")
     n_fit = sum(1 for m in matches if m.used_in_fit)
     n_anchor = sum(1 for m in matches if m.used_in_fit and m.anchor)
-    summary = f"{n_fit} lines fitted ({n_anchor} with tightly known wavelengths), RMS {rms_px:.2f} px, lines span {coverage:.0%} of the range"
+    summary = f"{n_fit} lines fitted ({n_anchor} with tightly known wavelengths), weighted RMS {rms_px:.2f} px, lines span {coverage:.0%} of the range"
     if n_fit >= 5 and n_anchor >= 3 and rms_px <= 0.3 and coverage >= 0.4:
         verdict, reason = "good", summary
     elif n_fit >= 4 and rms_px <= 0.6:

@@ -141,7 +141,9 @@ def test_demo_calibrate_identify_save(make_viewer, tmp_path, xdisplay):
     calibration = _core_calibration(frames, "cfl")
     core = calibration.wavelength
     # what the window shows equals the core's answer on the same frames
-    assert f"RMS {core.rms_nm:.3f} nm = {core.rms_px:.3f} px" in viewer.fit_summary.cget("text")
+    assert f"weighted RMS {core.rms_nm:.3f} nm = {core.rms_px:.3f} px" in viewer.fit_summary.cget("text")
+    # and names the model the core chose (a grating solution is not "polynomial order 3")
+    assert core.solution.description in viewer.fit_summary.cget("text")
     assert viewer.calibration.rms_px == pytest.approx(core.rms_px, rel=1e-9)
     rows = [viewer.fit_table.item(i, "values") for i in viewer.fit_table.get_children()]
     assert len(rows) == len(core.matches)

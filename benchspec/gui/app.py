@@ -135,6 +135,11 @@ def _demo_scenes() -> list[str]:
     return names
 
 
+def _model_words(summary) -> str:
+    """The solution's model in a few words ("grating model", "order 2 polynomial")."""
+    return summary.model or f"order {summary.order} polynomial"
+
+
 def _freeze_heap() -> None:
     """Move the objects alive now out of the garbage collector's sight.
 
@@ -1172,8 +1177,8 @@ class Viewer:
         self.calibration = summary
         self.identification = None
         self._show_calibration(summary)
-        self.report(f"calibrated with {summary.lamp}: RMS {summary.rms_nm:.3f} nm ({summary.rms_px:.2f} px), "
-                    f"{sum(1 for r in summary.rows if r.get('used', True))} lines, order {summary.order}, "
+        self.report(f"calibrated with {summary.lamp}: weighted RMS {summary.rms_nm:.3f} nm ({summary.rms_px:.2f} px), "
+                    f"{sum(1 for r in summary.rows if r.get('used', True))} lines, {_model_words(summary)}, "
                     f"{summary.verdict}")
         self._spec_axis_state = None
         self._refresh_held()
@@ -1186,8 +1191,8 @@ class Viewer:
     def _show_calibration(self, summary: CalibrationSummary) -> None:
         used = [r for r in summary.rows if r.get("used", True)]
         self.fit_summary.configure(
-            text=f"Lamp {summary.lamp}: RMS {summary.rms_nm:.3f} nm = {summary.rms_px:.3f} px, "
-                 f"{len(used)} of {len(summary.rows)} lines, polynomial order {summary.order}.\n"
+            text=f"Lamp {summary.lamp}: weighted RMS {summary.rms_nm:.3f} nm = {summary.rms_px:.3f} px, "
+                 f"{len(used)} of {len(summary.rows)} lines, {_model_words(summary)}.\n"
                  f"Verdict: {summary.verdict}. {summary.message}".strip())
         self.fit_table.delete(*self.fit_table.get_children())
         for row in summary.rows:

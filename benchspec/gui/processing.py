@@ -110,6 +110,7 @@ class CalibrationSummary:
     frames_used: int
     message: str = ""
     core: Any = None                   # the core's own result, for saving and tests
+    model: str = ""                    # "order 2 polynomial" or "grating model" (WavelengthSolution.description)
 
 
 @dataclass(frozen=True)
@@ -655,7 +656,8 @@ def _calibration_summary(result, *, lamp: str, frames_used: int, message: str = 
         lamp=lamp, rms_px=float(result.rms_px), rms_nm=float(result.rms_nm), order=result.solution.order,
         verdict=result.verdict, rows=rows, fit_pixel=grid, fit_wavelength_nm=result.wavelength_nm(grid),
         uncertainty_nm=result.uncertainty_nm(grid), frames_used=frames_used,
-        message=" ".join(filter(None, [result.verdict_reason, message])), core=result)
+        message=" ".join(filter(None, [result.verdict_reason, message])), core=result,
+        model=result.solution.description)
 
 
 def _identification_summary(result) -> IdentificationSummary:
