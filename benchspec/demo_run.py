@@ -77,7 +77,7 @@ def run_demo(out: Path, *, force: bool = False) -> int:
     solution = calibration.wavelength
     _say("1. Wavelength calibration on the desk lamp (3 frames stacked, dark subtracted, no clicks)")
     _say(
-        f"   {solution.n_used} lines used, RMS {solution.rms_px:.3f} px = {solution.rms_nm:.4f} nm, "
+        f"   {solution.n_used} lines used, weighted RMS {solution.rms_px:.3f} px = {solution.rms_nm:.4f} nm, "
         f"verdict: {solution.verdict}; wrote calibration.json"
     )
 

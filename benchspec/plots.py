@@ -239,6 +239,12 @@ def _x_of(spectrum: Spectrum) -> tuple[np.ndarray, str]:
     return spectrum.pixel, "pixel (column of the rectified band)"
 
 
+#: Wavelengths a plot of a calibrated spectrum shows (nm): a silicon camera behind glass optics records
+#: about 350-1050 nm (common practice, no source); columns whose calibration is extrapolated beyond
+#: this are left out of the plot (not of the data). The viewer uses the same range.
+VIEW_RANGE_NM = (300.0, 1100.0)
+
+
 def plot_spectrum(ax, spectrum: Spectrum, *, lines=None, label: str | None = None, colour: str = _TRACE,
                   show_uncertainty: bool = True, colour_strip: bool = True, saturation_legend: bool = True) -> None:
     """Draw one spectrum on ``ax`` (a matplotlib Axes).
@@ -261,23 +267,27 @@ def plot_spectrum(ax, spectrum: Spectrum, *, lines=None, label: str | None = Non
         Name the saturated-sample markers in the legend.
     """
     x, x_label = _x_of(spectrum)
-    y = spectrum.intensity
+    y, sigma, saturated = spectrum.intensity, spectrum.uncertainty, spectrum.saturated
+    if spectrum.is_calibrated:  # columns extrapolated far past what a camera records are not drawn
+        shown = (x >= VIEW_RANGE_NM[0]) & (x <= VIEW_RANGE_NM[1])
+        if np.count_nonzero(shown) > 8:
+            x, y, sigma, saturated = x[shown], y[shown], sigma[shown], saturated[shown]
     ax.grid(True, which="major")
     ax.set_axisbelow(True)
     if show_uncertainty:
-        ax.fill_between(x, y - spectrum.uncertainty, y + spectrum.uncertainty, color=_BAND, alpha=0.55, linewidth=0, zorder=1)
+        ax.fill_between(x, y - sigma, y + sigma, color=_BAND, alpha=0.55, linewidth=0, zorder=1)
     ax.plot(x, y, color=colour, linewidth=0.9, zorder=3, label=label)
     ax.set_xlabel(x_label)
     ax.set_ylabel(_y_label(spectrum))
     ax.set_xlim(float(x.min()), float(x.max()))
-    top = float(np.max(y + spectrum.uncertainty)) if y.size else 1.0
-    bottom = float(np.min(y - spectrum.uncertainty)) if y.size else 0.0
+    top = float(np.max(y + sigma)) if y.size else 1.0
+    bottom = float(np.min(y - sigma)) if y.size else 0.0
     span = top - bottom if top > bottom else 1.0
     labelled = normalise_line_labels(lines) if (lines and spectrum.is_calibrated) else []
     headroom = 0.42 if labelled else 0.06
     ax.set_ylim(bottom - 0.07 * span, top + headroom * span)
-    if spectrum.saturated.any():
-        ax.plot(x[spectrum.saturated], y[spectrum.saturated], linestyle="none", marker="o", markersize=1.8,
+    if saturated.any():
+        ax.plot(x[saturated], y[saturated], linestyle="none", marker="o", markersize=1.8,
                 color=_SATURATED, zorder=4, label="saturated samples" if saturation_legend else None)
         ax.legend(loc="upper right", fontsize=6.5, handletextpad=0.3, borderaxespad=0.2)
     if labelled:
@@ -369,9 +379,11 @@ def plot_residuals(ax, residuals, *, title: str | None = None) -> bool:
     ax.set_ylim(-1.35 * limit - 1e-6, 1.35 * limit + 1e-6)
     span = float(w.max() - w.min()) or 10.0
     ax.set_xlim(float(w.min()) - 0.05 * span, float(w.max()) + 0.05 * span)
-    text = f"RMS {data['rms_nm']:.3f} nm" if data["rms_nm"] is not None else ""
+    text = f"weighted RMS {data['rms_nm']:.3f} nm" if data["rms_nm"] is not None else ""
     text += f", {int(used.sum())} of {used.size} lines used"
-    ax.text(0.99, 0.97, text.strip(", "), transform=ax.transAxes, ha="right", va="top", fontsize=7, color="0.2")
+    # below the axes, right-aligned on the x label's line: inside, it could cover a point or its label
+    ax.annotate(text.strip(", "), xy=(1.0, 0.0), xycoords="axes fraction", xytext=(0, -15), textcoords="offset points",
+                ha="right", va="top", fontsize=7, color="0.2")
     if (~used).any():
         ax.legend(loc="lower right", fontsize=6.5)
     if title:

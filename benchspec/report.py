@@ -308,7 +308,8 @@ def build_report(
         if core.get("verdict"):
             residual_title += f"; verdict: {core['verdict']}"
             if core.get("verdict_reason"):
-                residual_title += f" ({str(core['verdict_reason'])[:90]})"
+                residual_title += f" ({str(core['verdict_reason'])[:200]})"
+        residual_title = "\n".join(textwrap.wrap(residual_title, 110)[:2])
         plot_residuals(residual_ax, residual_data, title=residual_title)
         residual_ax.xaxis.label.set_size(7.5)
         residual_ax.yaxis.label.set_size(7.5)

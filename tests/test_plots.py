@@ -133,3 +133,17 @@ def test_no_pyplot_and_no_matplotlib_in_the_core():
     for module in (plots, __import__("benchspec.report", fromlist=["x"])):
         source = Path(module.__file__).read_text(encoding="utf-8")
         assert "pyplot" not in source.replace("never through pyplot", "").replace("no pyplot", ""), module.__name__
+
+
+def test_columns_extrapolated_past_what_a_camera_records_are_not_drawn(lamp):
+    # A calibration extrapolated to 60-1400 nm (wide lens, lines only in the middle): the plot keeps to
+    # the 300-1100 nm a silicon camera behind glass can record (common practice, no source); the data stay.
+    from matplotlib.figure import Figure
+
+    wide = lamp.with_(wavelength_nm=np.linspace(60.0, 1400.0, lamp.size))
+    ax = Figure().add_subplot()
+    plots.plot_spectrum(ax, wide)
+    low, high = ax.get_xlim()
+    assert low >= plots.VIEW_RANGE_NM[0] and high <= plots.VIEW_RANGE_NM[1]
+    assert high - low > 700  # the whole recordable range is still shown
+    assert wide.wavelength_nm.min() == 60.0  # the spectrum itself is not cut

@@ -26,6 +26,7 @@ from ..errors import (
     IdentificationError,
     InputError,
 )
+from ..plots import VIEW_RANGE_NM as _VIEW_RANGE_NM  # wavelengths shown on the live axis, as in the plots
 from ..safety import SOURCE_TYPES as _SOURCE_TYPES
 from ..spectrum import Spectrum
 
@@ -169,8 +170,6 @@ def _full_scale(image: np.ndarray) -> float:
     return float(np.nanmax(image)) or 1.0
 
 
-# Wavelengths shown on the live axis: the range identification works in (benchspec.identify).
-_VIEW_RANGE_NM = (300.0, 1100.0)
 
 # --------------------------------------------------------------------------- the processor
 
