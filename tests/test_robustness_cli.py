@@ -332,3 +332,26 @@ def test_unknown_far_outside_the_calibration_is_refused(tmp_path, capsys):
     capsys.readouterr()
     assert main(["concentration", "--table", str(path), "--unknown-absorbance", "1e308"]) == 2
     assert "outside the calibration" in capsys.readouterr().err
+
+
+def test_a_reader_that_stops_early_is_not_a_bug(tmp_path):
+    # `benchspec lines SPEC.csv | head -3`: the pipe closes while the table is written; the command
+    # ends quietly (the Unix convention for a closed pipe, common practice, no source), no "internal error".
+    import subprocess
+    import sys
+
+    from benchspec.io import write_spectrum
+    from benchspec import Spectrum
+
+    pixel = np.arange(4000.0)
+    intensity = 10.0 + sum(500.0 * np.exp(-0.5 * ((pixel - c) / 1.5) ** 2) for c in range(20, 4000, 25))
+    path = tmp_path / "many.csv"
+    write_spectrum(Spectrum(intensity=intensity, uncertainty=np.full(pixel.size, 2.0), pixel=pixel,
+                            wavelength_nm=300.0 + 0.2 * pixel), path)
+    reader = subprocess.Popen([sys.executable, "-c", "pass"], stdin=subprocess.PIPE)
+    reader.wait(timeout=30)  # gone before the first row: every write meets a closed pipe
+    writer = subprocess.run([sys.executable, "-c", "from benchspec.cli import run; run()", "lines", str(path)],
+                            stdout=reader.stdin, stderr=subprocess.PIPE, text=True, timeout=120)
+    reader.stdin.close()
+    assert "internal error" not in writer.stderr and "Traceback" not in writer.stderr, writer.stderr
+    assert writer.returncode == 0

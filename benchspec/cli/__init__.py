@@ -73,6 +73,8 @@ def main(argv: list[str] | None = None) -> int:
         except KeyboardInterrupt:
             print("benchspec: interrupted", file=sys.stderr)
             return 130
+        except BrokenPipeError:
+            raise  # the reader of our output went away: not a bug (run() ends quietly)
         except (MemoryError, RecursionError, OSError, ValueError, TypeError, ArithmeticError, LookupError, RuntimeError) as exc:
             # Not a message we wrote: a bug of ours. Still one line, and a different exit code
             # from bad input (2), so scripts can tell them apart.
