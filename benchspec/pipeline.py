@@ -455,9 +455,17 @@ def _calibration_mapping(calibration: Calibration, path) -> dict:
         "rms_px": w.rms_px,
         "line_list_source": "; ".join(w.line_list_sources),
         "polynomial_order": w.solution.order,
+        "model": w.solution.description,
+        # the wavelengths between the outermost lines the solution was fitted to; beyond, it is extrapolated
+        "lines_span_nm": _lines_span_nm(w),
         "verdict": w.verdict,
         "created_utc": calibration.created_utc,
     }
+
+
+def _lines_span_nm(wavelength: WavelengthCalibration) -> list[float] | None:
+    used = [m.reference_nm for m in wavelength.matches if m.used_in_fit]
+    return [float(min(used)), float(max(used))] if used else None
 
 
 def _check_band(image, calibration: Calibration, label: str) -> dict:

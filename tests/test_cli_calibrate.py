@@ -112,6 +112,26 @@ def test_lines_table_and_json(capsys, frames, cal_file, tmp_path):
     assert code == 0 and "absorption lines" in stdout
 
 
+def test_lines_beyond_the_calibrations_lines_are_flagged_extrapolated(capsys, frames, cal_file, tmp_path):
+    # The spectrum records the span of the lines its calibration was fitted to (and the model); a neon
+    # frame's lines beyond that span are flagged, inside it not.
+    calibration = json.loads(cal_file.read_text())["wavelength_calibration"]
+    used = [m["reference_nm"] for m in calibration["matches"] if m["used_in_fit"]]
+    spec = tmp_path / "ne.csv"
+    assert main(["extract", str(frames / "ne.png"), "--calibration", str(cal_file), "--out", str(spec)]) == 0
+    capsys.readouterr()
+    code, stdout, _ = run(capsys, "lines", str(spec), "--json")
+    table = json.loads(stdout)
+    assert table["calibrated_span_nm"] == pytest.approx([min(used), max(used)])
+    low, high = table["calibrated_span_nm"]
+    flags = {round(l["centre_nm"], 3): l["extrapolated"] for l in table["lines"]}
+    assert flags and all(flag == (not low <= centre <= high) for centre, flag in flags.items())
+    # Ne I 703.24 nm (NIST ASD, air) lies beyond a CFL calibration's last line (650 nm)
+    assert any(flag and abs(centre - 703.24) < 1.0 for centre, flag in flags.items())
+    code, stdout, _ = run(capsys, "lines", str(spec))
+    assert "extrapolated" in stdout and "the span of the calibration's lines" in stdout
+
+
 @pytest.mark.parametrize(
     "args, message",
     [

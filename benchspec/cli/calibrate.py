@@ -180,7 +180,9 @@ def _extract(args) -> int:
     if response is not None:
         result = apply_response(result, response)
     path = _write(result, out, force=args.force)
-    print(f"wrote {path} ({result.size} columns, {result.wavelength_nm[0]:.1f}-{result.wavelength_nm[-1]:.1f} nm)")
+    span = _calibrated_span(result)
+    fitted = f"; calibrated by lines at {span[0]:.1f}-{span[1]:.1f} nm, extrapolated beyond" if span else ""
+    print(f"wrote {path} ({result.size} columns, {result.wavelength_nm[0]:.1f}-{result.wavelength_nm[-1]:.1f} nm{fitted})")
     return 0
 
 
@@ -253,20 +255,38 @@ def _lines(args) -> int:
 
     spectrum = read_spectrum(args.spectrum)
     table = find_lines(spectrum, absorption=args.absorption, min_snr=args.min_snr)
+    calibrated = spectrum.is_calibrated
+    span = _calibrated_span(spectrum) if calibrated else None
+    outside = [span is not None and not (span[0] <= line.centre_nm <= span[1]) for line in table]
     if args.json:
-        json.dump({"kind": table.kind, "noise": table.noise, "min_snr": table.min_snr, "lines": table.to_dicts()},
-                  sys.stdout, indent=1)
+        rows = [dict(row, extrapolated=None if span is None else flag) for row, flag in zip(table.to_dicts(), outside)]
+        json.dump({"kind": table.kind, "noise": table.noise, "min_snr": table.min_snr, "calibrated_span_nm": span,
+                   "lines": rows}, sys.stdout, indent=1)
         print()
         return 0
-    calibrated = spectrum.is_calibrated
     header = "   centre_nm  +-1s_nm  fwhm_nm" if calibrated else "   centre_px  +-1s_px  fwhm_px"
     print(header + "        peak        area     snr  flags")
-    for line in table:
-        flags = ",".join(f for f, on in (("blend", line.blended), ("sat", line.saturated)) if on)
+    for line, beyond in zip(table, outside):
+        flags = ",".join(f for f, on in (("blend", line.blended), ("sat", line.saturated), ("extrapolated", beyond)) if on)
         if calibrated:
             position = f"{line.centre_nm:12.3f} {line.centre_uncertainty_nm:8.3f} {line.fwhm_nm:8.3f}"
         else:
             position = f"{line.centre_px:12.2f} {line.centre_uncertainty_px:8.3f} {line.fwhm_px:8.2f}"
         print(f"{position} {line.peak:11.4g} {line.area:11.4g} {line.snr:7.1f}  {flags}")
-    print(f"{len(table)} {table.kind} lines (SNR >= {table.min_snr:g})")
+    print(f"{len(table)} {table.kind} lines, detected at {table.min_snr:g} sigma or more on the smoothed spectrum "
+          "(the snr column: the fitted peak over one sample's noise)")
+    if any(outside):
+        print(f"{sum(outside)} of them outside {span[0]:.1f}-{span[1]:.1f} nm, the span of the calibration's lines: "
+              "their wavelengths are extrapolated (see +-1s)")
     return 0
+
+
+def _calibrated_span(spectrum) -> list[float] | None:
+    """[low, high] nm between the outermost lines of the calibration that gave ``spectrum`` its axis, if recorded."""
+    record = (spectrum.provenance or {}).get("calibration") or {}
+    span = record.get("lines_span_nm") if isinstance(record, dict) else None
+    try:
+        low, high = (float(v) for v in span)
+    except (TypeError, ValueError):
+        return None
+    return [low, high] if low <= high else None
