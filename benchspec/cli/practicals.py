@@ -542,6 +542,11 @@ def _find_laser(key: str):
     raise InputError(f"unknown laser {key!r}; choose one of: {', '.join(l.key for l in lasers)}")
 
 
+def _small(sigma: float) -> str:
+    """A chromaticity's 1-sigma to 4 decimals, and "<0.0001" rather than a misleading 0.0000."""
+    return "<0.0001" if 0 <= sigma < 0.00005 else f"{sigma:.4f}"
+
+
 def _run_metrics(args) -> int:
     _check_outputs(args)
     from ..analysis.metrics import source_metrics
@@ -574,7 +579,8 @@ def _run_metrics(args) -> int:
     print(f"peak {metrics.peak_nm:.2f} +- {metrics.peak_uncertainty_nm:.2f} nm; centroid {metrics.centroid_nm:.2f} +- "
           f"{metrics.centroid_uncertainty_nm:.2f} nm; FWHM {_fmt(metrics.fwhm_nm, '.2f', ' nm')}"
           + (" (resolution-limited)" if metrics.fwhm_resolution_limited else ""))
-    print(f"CIE 1931 x = {metrics.cie_x:.4f} +- {metrics.cie_x_uncertainty:.4f}, y = {metrics.cie_y:.4f} +- {metrics.cie_y_uncertainty:.4f}")
+    print(f"CIE 1931 x = {metrics.cie_x:.4f} +- {_small(metrics.cie_x_uncertainty)}, "
+          f"y = {metrics.cie_y:.4f} +- {_small(metrics.cie_y_uncertainty)}")
     if metrics.is_white:
         print(f"white source: CCT {metrics.cct_k:.0f} +- {metrics.cct_uncertainty_k:.0f} K, Duv {metrics.duv:+.4f} ({metrics.cct_method})")
     elif metrics.dominant_wavelength_nm is not None:
