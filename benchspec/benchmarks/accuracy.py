@@ -307,7 +307,10 @@ def _lines_vs_nist(calibration, bench, drawn, seed):
                                    "sigma_total_px": getattr(line, "centre_total_uncertainty_px", line.centre_uncertainty_px),
                                    "snr": line.snr,
                                    "jpeg": drawn["jpeg_quality"] is not None, "gamma": drawn["gamma"]}
-            rows.append(((line.centre_nm - near[0][0]) / disp, inside, near[0][0], truth_error))
+            # against the line's whole stated 1-sigma: its own fit and the calibration's at that pixel
+            pull = (line.centre_nm - near[0][0]) / line.centre_uncertainty_nm if line.centre_uncertainty_nm else np.nan
+            rows.append(((line.centre_nm - near[0][0]) / disp, inside, near[0][0], truth_error, float(pull),
+                         drawn["jpeg_quality"] is not None))
         out[species] = rows
     return out
 
@@ -486,8 +489,20 @@ def run(quick: bool = False, *, seed: int = 20261201, n_benches: int | None = No
             "n_all": len(every),
             "rms_px_all": float(np.sqrt(np.mean(np.square(every)))) if every else float("nan"),
         }
+    def pulls_of(keep):
+        values = np.array([r[4] for rows in nist.values() for r in rows if r[1] and keep(r) and np.isfinite(r[4])])
+        if values.size < 2:
+            return {"n": int(values.size)}
+        return {"n": int(values.size), "pull_rms": float(np.sqrt(np.mean(values**2))),
+                "pull_width_mad": float(1.4826 * np.median(np.abs(values - np.median(values)))),
+                "fraction_beyond_3_sigma": float(np.mean(np.abs(values) > 3))}
+
     lines_summary = {
         "per_species": per_species,
+        # (measured - NIST) / the line's stated 1-sigma (fit and calibration), inside the calibrated span:
+        # how honest the uncertainty a user is given for a measured wavelength is
+        "stated_sigma_pulls": {"all": pulls_of(lambda r: True), "png": pulls_of(lambda r: not r[5]),
+                               "jpeg": pulls_of(lambda r: r[5])},
         "rms_px_inside": float(np.sqrt(np.mean(np.square(inside_all)))) if inside_all else float("nan"),
         "rms_px_all": float(np.sqrt(np.mean(np.square(all_rows)))) if all_rows else float("nan"),
         "n_inside": len(inside_all),
@@ -616,6 +631,10 @@ def format_report(figures: dict) -> str:
     for species, s in lines["per_species"].items():
         out.append(f"  {species:<3s} inside span {s['rms_px_inside']:.3f} ({s['n_inside']})   all {s['rms_px_all']:.3f} ({s['n_all']})")
     out.append(f"  all species: inside span {lines['rms_px_inside']:.3f} px ({lines['n_inside']}), all {lines['rms_px_all']:.3f} px ({lines['n_all']})")
+    for label, p in lines.get("stated_sigma_pulls", {}).items():
+        if "pull_rms" in p:
+            out.append(f"  against the stated 1-sigma ({label}, {p['n']} lines inside span): pull RMS {p['pull_rms']:.2f}, "
+                       f"width (MAD) {p['pull_width_mad']:.2f}, beyond 3 sigma {100 * p['fraction_beyond_3_sigma']:.1f}%")
     nan = float("nan")
     centres = figures.get("line_centres_vs_truth", {})
     for name, c in centres.items():
