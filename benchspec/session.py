@@ -534,16 +534,27 @@ class Session:
     # ------------------------------------------------------------------ loading
 
     def record(self, capture_id: str) -> CaptureRecord:
-        """The record of a capture by id (a unique prefix, or "latest", also works)."""
+        """The record of a capture by id; a unique prefix, "latest", or its number in the session (1 = first,
+        as ``session list`` numbers them; up to 3 digits, so that a year such as 2026 is still read as a prefix) also work."""
         if not self.captures:
             raise InputError(f"session {self.path} has no captures yet")
         if capture_id in ("latest", "last"):
             return self.captures[-1]
-        matches = [r for r in self.captures if r.id == capture_id] or [r for r in self.captures if r.id.startswith(capture_id)]
+        exact = [r for r in self.captures if r.id == capture_id]
+        if exact:
+            return exact[0]
+        if capture_id.isdigit() and len(capture_id) <= 3:
+            number = int(capture_id)
+            if 1 <= number <= len(self.captures):
+                return self.captures[number - 1]
+            raise InputError(f"capture number {number} is not in session {self.path}: it has {len(self.captures)} "
+                             f"capture(s), numbered 1-{len(self.captures)} by `benchspec session list`")
+        matches = [r for r in self.captures if r.id.startswith(capture_id)]
         if len(matches) != 1:
             known = ", ".join(r.id for r in self.captures[-5:])
             what = "matches several captures" if matches else "is not a capture of this session"
-            raise InputError(f"{capture_id!r} {what}; recent captures: {known}")
+            raise InputError(f"{capture_id!r} {what}; give its number (`benchspec session list`), its id, "
+                             f"or latest; recent captures: {known}")
         return matches[0]
 
     def load_capture(self, capture_id: str, *, frames: bool = True, verify: bool = True) -> Capture:
@@ -636,14 +647,15 @@ class Session:
     def summary_lines(self) -> list[str]:
         """A plain-text listing of the session for the command line."""
         lines = [f"session {self.path}: {self.title!r}, created {self.created_utc}, {len(self.captures)} capture(s)"]
-        for record in self.captures:
+        width = len(str(len(self.captures)))
+        for number, record in enumerate(self.captures, 1):
             n_frames = len(record.files_with_role("frame"))
             has = [f"{n_frames} frame(s)"]
             if "spectrum.json" in record.files:
                 has.append("spectrum")
             if "calibration.json" in record.files:
                 has.append("calibration")
-            lines.append(f"  {record.id}  {record.label}  ({', '.join(has)})")
+            lines.append(f"  {number:>{width}}  {record.id}  {record.label}  ({', '.join(has)})")
         lines.extend(f"  problem: {p}" for p in self.problems)
         return lines
 

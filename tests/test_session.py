@@ -226,6 +226,13 @@ def test_capture_lookup(session, spectrum):
     assert session.record("latest") == record and session.record(record.id[:10]) == record
     with pytest.raises(InputError, match="not a capture"):
         session.record("1999")
+    # by number, as `session list` shows them (1 = first); a year stays a prefix of the ids
+    second = session.add_capture(spectrum=spectrum)
+    assert session.record("1") == record and session.record("2") == second and session.record("002") == second
+    with pytest.raises(InputError, match="matches several"):  # both ids start with the same year
+        session.record(record.id[:4])
+    with pytest.raises(InputError, match="numbered 1-2"):
+        session.record("3")
 
 
 def test_session_commands(tmp_path, spectrum, capsys):

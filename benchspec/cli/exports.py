@@ -161,13 +161,13 @@ def _register_session(subparsers) -> None:
 
     show = actions.add_parser("show", help="show one capture (default: the latest), checking its files")
     show.add_argument("folder", metavar="FOLDER")
-    show.add_argument("capture", nargs="?", default="latest", metavar="CAPTURE", help="capture id or unique prefix (default: latest)")
+    show.add_argument("capture", nargs="?", default="latest", metavar="CAPTURE", help="capture number (as session list shows it), id, unique prefix, or latest (the default)")
     show.add_argument("--json", action="store_true", help="print the capture manifest as JSON")
     show.set_defaults(handler=_run_session_show)
 
     export = actions.add_parser("export", help="write a capture's spectrum in any format")
     export.add_argument("folder", metavar="FOLDER")
-    export.add_argument("capture", metavar="CAPTURE", help="capture id, unique prefix, or 'latest'")
+    export.add_argument("capture", metavar="CAPTURE", help="capture number (as session list shows it), id, unique prefix, or latest")
     export.add_argument("--out", required=True, metavar="PATH", help=f"file to write ({', '.join(SPECTRUM_EXTENSIONS)})")
     export.add_argument("--force", action="store_true", help="overwrite an existing file")
     export.set_defaults(handler=_run_session_export)
