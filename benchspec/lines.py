@@ -1032,10 +1032,10 @@ def _inverse_3x3(m: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     a, b, c, d, e, f = m[:, 0, 0], m[:, 0, 1], m[:, 0, 2], m[:, 1, 1], m[:, 1, 2], m[:, 2, 2]
     A, B, C = d * f - e * e, c * e - b * f, b * e - c * d
     determinant = a * A + b * B + c * C
-    with np.errstate(divide="ignore", invalid="ignore"):
-        scale = 1.0 / determinant
     D, E, F = a * f - c * c, b * c - a * e, a * d - b * b
-    inverse = np.stack([A, B, C, B, D, E, C, E, F], -1).reshape(-1, 3, 3) * scale[:, None, None]
+    with np.errstate(divide="ignore", invalid="ignore"):  # a singular matrix gives inf * 0 = nan, quietly
+        scale = 1.0 / determinant
+        inverse = np.stack([A, B, C, B, D, E, C, E, F], -1).reshape(-1, 3, 3) * scale[:, None, None]
     return inverse, determinant
 
 

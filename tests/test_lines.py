@@ -177,3 +177,21 @@ def test_noise_estimate_ignores_lines(rng):
     x = np.arange(2000.0)
     y = rng.normal(0, 3.0, x.size) + 500 * np.exp(-0.5 * ((x - 1000) / 2) ** 2)
     assert estimate_noise(y) == pytest.approx(3.0, rel=0.1)
+
+
+def test_quick_finder_inverse_is_nan_for_a_singular_matrix_without_a_warning():
+    # A flat stretch gives the live finder's 3x3 normal matrix a zero determinant. The inverse is
+    # then nan by design (the peak is dropped), and it must not print a RuntimeWarning on every
+    # live frame. The inverse of a regular matrix is checked against numpy.linalg.inv.
+    import warnings
+
+    from benchspec.lines import _inverse_3x3
+
+    regular = np.array([[4.0, 1.0, 0.5], [1.0, 3.0, 0.2], [0.5, 0.2, 2.0]])
+    singular = np.array([[1.0, 2.0, 3.0], [2.0, 4.0, 6.0], [3.0, 6.0, 9.0]])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        inverse, determinant = _inverse_3x3(np.stack([regular, singular]))
+    assert np.allclose(inverse[0], np.linalg.inv(regular), rtol=1e-12)
+    assert determinant[1] == 0.0
+    assert np.all(np.isnan(inverse[1]) | np.isinf(inverse[1]))
