@@ -694,7 +694,8 @@ def _command_each(calibration, folder: Path, path: Path, *, n_frames: int, progr
     The whole command: reading the calibration file, the series, one CSV per
     frame (each written atomically) and the flush of the series at the end;
     with ``S.nc`` the whole series in one NetCDF file. Interpreter start-up
-    and the imports are not in it (they are the same for every command).
+    and the imports are not in it (they are the same for every command), nor is removing the
+    files it wrote, which happens after the timing.
     """
     netcdf = out_name.endswith(".nc")
     try:
@@ -707,26 +708,24 @@ def _command_each(calibration, folder: Path, path: Path, *, n_frames: int, progr
     if progress:
         progress(f"batch {n_frames} frames, benchspec extract --each ({'one NetCDF file' if netcdf else 'CSV per frame'})")
     passes = {"count": 0}
+    outputs: list[Path] = []  # removed after the timing: deleting the output is not part of the command
 
     def runner(p):
         out = folder / f"each_{passes['count']}"
         passes["count"] += 1
         out.mkdir()
+        outputs.append(out)
         import contextlib
         import io as _stdio
-        import shutil
 
-        try:
-            with contextlib.redirect_stdout(_stdio.StringIO()):
-                code = main(["extract", str(p), "--calibration", str(cal_path), "--each", "--out", str(out / out_name)])
-            if netcdf:
-                from ..series import read_series
+        with contextlib.redirect_stdout(_stdio.StringIO()):
+            code = main(["extract", str(p), "--calibration", str(cal_path), "--each", "--out", str(out / out_name)])
+        if netcdf:
+            from ..series import read_series
 
-                written = read_series(out / out_name).n_frames
-            else:
-                written = sum(1 for _ in out.glob("S_*.csv"))
-        finally:
-            shutil.rmtree(out, ignore_errors=True)
+            written = read_series(out / out_name).n_frames
+        else:
+            written = sum(1 for _ in out.glob("S_*.csv"))
         if code != 0:
             raise RuntimeError(f"benchspec extract --each exited with {code}")
         return written
@@ -740,6 +739,11 @@ def _command_each(calibration, folder: Path, path: Path, *, n_frames: int, progr
                               *_rates(runner, path, passes=2, cpu=cpu), cpu=cpu)
     except Exception as exc:  # reported, not hidden
         return {"available": False, "error": f"{type(exc).__name__}: {exc}"}
+    finally:
+        import shutil
+
+        for out in outputs:
+            shutil.rmtree(out, ignore_errors=True)
     return record
 
 
