@@ -100,6 +100,10 @@ class CameraSettings:
 
     ``tilt_deg`` is the angle between the camera axis and the grating normal;
     ``None`` points the camera at 550 nm. ``sensor`` is ``"rgb"`` or ``"mono"``.
+    ``mosaic`` ``"rggb"`` samples an RGB sensor through a colour-filter mosaic (red at the
+    top-left pixel) and rebuilds the three channels by OpenCV's bilinear demosaicing, as a
+    webcam does before it encodes a frame; ``"none"`` (default) gives every pixel all three
+    channels.
     """
 
     width_px: int = 1280
@@ -109,6 +113,7 @@ class CameraSettings:
     rotation_deg: float = 0.0
     sensor: str = "rgb"
     ir_cut_nm: float = 670.0
+    mosaic: str = "none"
 
 
 @dataclass(frozen=True)
@@ -254,6 +259,7 @@ _RANGES = {
 }
 _CHOICES = {
     "camera.sensor": ("rgb", "mono"),
+    "camera.mosaic": ("none", "rggb"),
     "output.gamma": ("1", "2.2", "srgb"),
     "output.bit_depth": (8, 16),
 }
@@ -279,7 +285,7 @@ def _section_from(cls, section: str, values: Mapping[str, Any]):
             value = str(value)
             if value == "1.0":
                 value = "1"
-        elif isinstance(default, bool) or key == "sensor":
+        elif isinstance(default, bool) or key in ("sensor", "mosaic"):
             value = str(value)
         elif isinstance(default, int) and not isinstance(default, bool):
             if isinstance(value, float) and value.is_integer():
@@ -313,6 +319,9 @@ def _validate(bench: Bench) -> None:
                 low, high = _RANGES[key]
                 if not (low <= value <= high):
                     raise BenchFileError(f"'{key}' was {value!r}; accepted range {low} to {high}")
+    if bench.camera.mosaic != "none" and bench.camera.sensor != "rgb":
+        raise BenchFileError(f"'camera.mosaic' was {bench.camera.mosaic!r} on a mono sensor; a colour-filter mosaic "
+                             "needs camera.sensor = \"rgb\" (or set camera.mosaic = \"none\")")
     if bench.grating.order == 0:
         raise BenchFileError("'grating.order' was 0; zero order carries no spectrum: use 1 (or -1, -2, 2)")
     if bench.output.bit_depth == 16 and bench.noise.adc_bits < 8:
@@ -949,11 +958,32 @@ class _Renderer:
         electrons += rng.normal(0.0, noise.read_noise_e, size=electrons.shape) if noise.read_noise_e > 0 else 0.0
         dn = np.clip(np.round(electrons / gain), 0, self.full_dn)
         linear = np.moveaxis(dn, 0, -1).astype(np.float32)
+        if cam.mosaic == "rggb" and self.channels == 3:
+            linear = _demosaiced_rggb(linear)
         image = _encode(bench, linear / self.full_dn)
         if self.channels == 1:
             image = image[..., 0]
             linear = linear[..., 0]
         return Rendered(image=image, linear=linear, truth=self.truth)
+
+
+def _demosaiced_rggb(linear: np.ndarray) -> np.ndarray:
+    """(H, W, 3) linear DN seen through an RGGB colour-filter mosaic, then rebuilt by bilinear demosaicing.
+
+    Each pixel keeps only its filter's channel (its own noise draw), and OpenCV's
+    ``COLOR_BayerRGGB2RGB`` interpolates the other two from the neighbours (it fills the
+    outermost row and column from the next ones in). The DN are whole
+    numbers up to the ADC's full scale, so the 16-bit mosaic holds them exactly.
+    """
+    import cv2
+
+    dn = np.clip(np.round(linear), 0, 65535).astype(np.uint16)
+    mosaic = np.empty(dn.shape[:2], np.uint16)
+    mosaic[0::2, 0::2] = dn[0::2, 0::2, 0]
+    mosaic[0::2, 1::2] = dn[0::2, 1::2, 1]
+    mosaic[1::2, 0::2] = dn[1::2, 0::2, 1]
+    mosaic[1::2, 1::2] = dn[1::2, 1::2, 2]
+    return cv2.cvtColor(mosaic, cv2.COLOR_BayerRGGB2RGB).astype(np.float32)
 
 
 def render(bench: Bench, *, seed: int = 0, source: Mapping[str, Any] | str | None = None) -> Rendered:

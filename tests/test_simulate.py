@@ -245,3 +245,40 @@ def test_lamp_unit_draws_one_lamp_within_the_listed_tolerance():
     assert np.all(np.abs(one - listed) <= 5 * tolerance)
     # Atomic Hg lines (tolerance <= 0.01 nm) stay within a hundredth of a nanometre.
     assert np.all(np.abs(one - listed)[tolerance <= 0.01] <= 0.05)
+
+
+def _rggb_sites(image, channel):
+    """The pixels whose filter is ``channel`` in an RGGB mosaic (red at the top-left pixel)."""
+    if channel == 0:
+        return image[0::2, 0::2, 0]
+    if channel == 2:
+        return image[1::2, 1::2, 2]
+    return np.concatenate([image[0::2, 1::2, 1].ravel(), image[1::2, 0::2, 1].ravel()])
+
+
+def test_mosaic_keeps_each_filters_own_sample_and_interpolates_the_others_bilinearly():
+    # The mosaic is applied after the noise draw, so with the same seed every pixel keeps its own
+    # filter's value exactly. The missing colours follow bilinear demosaicing (the mean of the
+    # nearest same-colour neighbours: the four diagonal red pixels at a blue site, the two
+    # horizontal ones at a green site on a red row; common practice, no source).
+    bench = simulate.Bench().with_(camera={"width_px": 320, "height_px": 180, "horizontal_fov_deg": 30.0},
+                                   output={"gamma": "1", "bit_depth": 16}, noise={"adc_bits": 12})
+    # OpenCV fills the outermost row and column from their neighbours: compare inside them (an even
+    # offset keeps the pattern's phase)
+    plain = simulate.render(bench, seed=3).linear[2:-2, 2:-2]
+    mosaic = simulate.render(bench.with_(camera={"mosaic": "rggb"}), seed=3).linear[2:-2, 2:-2]
+    for channel in range(3):
+        np.testing.assert_array_equal(_rggb_sites(mosaic, channel), _rggb_sites(plain, channel))
+    red = plain[..., 0]
+    at_blue = 0.25 * (red[0:-2:2, 0:-2:2] + red[0:-2:2, 2::2] + red[2::2, 0:-2:2] + red[2::2, 2::2])
+    np.testing.assert_allclose(mosaic[1:-1:2, 1:-1:2, 0], at_blue, atol=0.5)  # 16-bit result, rounded
+    at_green = 0.5 * (red[0::2, 0:-2:2] + red[0::2, 2::2])
+    np.testing.assert_allclose(mosaic[0::2, 1:-1:2, 0], at_green, atol=0.5)
+    assert np.any(mosaic != plain)
+
+
+def test_mosaic_needs_an_rgb_sensor_and_a_known_pattern():
+    with pytest.raises(BenchFileError, match="mono sensor"):
+        simulate._validate(simulate.Bench().with_(camera={"sensor": "mono", "mosaic": "rggb"}))
+    with pytest.raises(BenchFileError, match="accepted: none, rggb"):
+        simulate._validate(simulate.Bench().with_(camera={"mosaic": "bayer"}))

@@ -45,6 +45,9 @@ def register(subparsers) -> None:
     parser.add_argument("benchmark", nargs="?", default="speed", choices=sorted(BENCHMARKS),
                         help="which benchmark (default: speed)")
     parser.add_argument("--quick", action="store_true", help="short run: fewer sizes, repeats and trials (for CI)")
+    parser.add_argument("--mosaic", choices=("none", "rggb"), default=None,
+                        help="accuracy only: render the benches through an RGGB colour-filter mosaic and bilinear "
+                             "demosaicing, as a webcam does (default none)")
     parser.add_argument("--json", action="store_true", help="print the figures as one JSON object")
     parser.add_argument("--sizes", metavar="WxH[,WxH...]",
                         help="speed only: frame sizes to time (default 640x480,1280x720,1920x1080)")
@@ -104,6 +107,8 @@ def _load(name: str):
 def _run(args) -> int:
     if args.repeats is not None and args.repeats < 1:
         raise InputError(f"--repeats must be at least 1, was {args.repeats}")
+    if args.mosaic is not None and args.benchmark != "accuracy":
+        raise InputError("--mosaic applies to the accuracy benchmark only; drop it or run `benchspec benchmark accuracy`")
     if args.benchmark != "speed" and (args.sizes or args.repeats):
         raise InputError("--sizes and --repeats apply to the speed benchmark only")
     if args.out and not args.force:
@@ -119,6 +124,8 @@ def _run(args) -> int:
         progress = None if args.json else (lambda message: print(f"  timing {message}", file=sys.stderr, flush=True))
         figures = module.run(quick=args.quick, sizes=parse_sizes(args.sizes) if args.sizes else None,
                              repeats=args.repeats, progress=progress)
+    elif args.benchmark == "accuracy" and args.mosaic is not None:
+        figures = module.run(quick=args.quick, mosaic=args.mosaic)
     else:
         figures = module.run(quick=args.quick)
     from ..io import atomic_write_text
