@@ -482,9 +482,12 @@ def _outer_edges(profile: np.ndarray, level: float, lo: int, hi: int):
     return lo + top, lo + bottom
 
 
-def _robust_line_fit(x, y, w, *, degree: int, clip: float = 3.0, floor: float = 0.05, iterations: int = 5):
+def _robust_line_fit(x, y, w, *, degree: int, clip: float = 3.0, floor: float = 0.05, iterations: int = 5,
+                     scale_covariance: bool = True):
     """Weighted polynomial fit with iterative sigma clipping.
 
+    The covariance is scaled by the reduced chi-square unless ``scale_covariance`` is False
+    (the weights are then taken as 1 / the points' true variances).
     Returns (coefficients lowest-first, covariance, keep mask, residual rms).
     """
     x = np.asarray(x, float)
@@ -514,7 +517,7 @@ def _robust_line_fit(x, y, w, *, degree: int, clip: float = 3.0, floor: float = 
         dof = max(1, keep.sum() - degree - 1)
         chi2 = float(np.sum(w[keep] * resid**2) / dof)
         try:
-            cov = np.linalg.inv((A * w[keep][:, None]).T @ A) * chi2
+            cov = np.linalg.inv((A * w[keep][:, None]).T @ A) * (chi2 if scale_covariance else 1.0)
         except np.linalg.LinAlgError:
             pass
         rms = float(np.sqrt(np.mean(resid**2)))
@@ -1344,7 +1347,14 @@ def _measure_curvature(band, sat_band, *, centre_index, half_height, s0, min_snr
     scale = max(1.0, span / 2)
     centre_s = 0.5 * (line_s.max() + line_s.min())
     z = (line_s - centre_s) / scale
-    c_coef, keep_c = _significant_fit(z, np.array(line_c), np.array(line_wc), max_degree=max_c, floor=1e-7)
+    # With few lines the fit's significance rests on each line's stated curvature variance: its
+    # parabola fit's plus a systematic sag at its trace's edge (CURVATURE_SYSTEMATIC_SAG_PX, measured).
+    t_edge = np.array([np.max(np.abs(t)) for t, _ in traces])
+    wc_total = 1.0 / (1.0 / np.minimum(np.array(line_wc), 1e16) + (CURVATURE_SYSTEMATIC_SAG_PX / t_edge**2) ** 2)
+    c_coef, keep_c = _significant_fit(z, np.array(line_c), np.array(line_wc), max_degree=max_c, floor=1e-7,
+                                      trust_weights_below_dof=3, trusted_weights=wc_total)
+    if n == 2:
+        c_coef = _two_line_curvature(z, np.array(line_c), wc_total, fallback=c_coef)
     b_coef, keep_b = _significant_fit(z, np.array(line_b), np.array(line_wb), max_degree=max_b, floor=1e-4)
     curvature = _unscale_poly(c_coef, centre_s, scale)
     tilt = _unscale_poly(b_coef, centre_s, scale)
@@ -1462,7 +1472,9 @@ def refit_curvature_grating(image, geometry: Geometry, *, theta_rad: float, x0_p
     coef, _, keep, _ = _robust_line_fit(z, c_total, w, degree=degree, floor=1e-7)
     n = int(keep.sum())
     info["n_lines"] = n
-    if n < 3 or n <= degree + 1:
+    # Two lines can only choose between one-parameter shapes: a constant (the polynomial of
+    # degree 0) and k tan(beta), each left one degree of freedom.
+    if n < 2 or (n == 2 and degree > 0) or (n >= 3 and n <= degree + 1):
         info["reason"] = f"{n} traced lines: too few to compare shapes"
         return geometry, info
 
@@ -1482,7 +1494,8 @@ def refit_curvature_grating(image, geometry: Geometry, *, theta_rad: float, x0_p
            "k tan(beta)": chi2_k / s2 + math.log(n),
            "c0 + k tan(beta)": chi2_both / s2 + 2 * math.log(n)}
     info["bic"] = bic
-    best = min(("k tan(beta)", "c0 + k tan(beta)"), key=lambda name: bic[name])
+    shapes = ("k tan(beta)",) if n == 2 else ("k tan(beta)", "c0 + k tan(beta)")
+    best = min(shapes, key=lambda name: bic[name])
     chi2_best, p_best = (chi2_k, 1) if best == "k tan(beta)" else (chi2_both, 2)
     from scipy.stats import chi2 as chi2_distribution
 
@@ -1510,15 +1523,61 @@ def refit_curvature_grating(image, geometry: Geometry, *, theta_rad: float, x0_p
     return refit, info
 
 
-def _significant_fit(x, y, w, *, max_degree: int, floor: float):
+def _two_line_curvature(z, c, w, *, fallback):
+    """c(z) through two traced lines when their curvatures differ significantly, else ``fallback``.
+
+    The curvature of slit images changes with wavelength (conical diffraction); a constant
+    through two lines whose curvatures differ by more than 2.5 sigma extrapolates a wrong
+    sag to every line outside them. ``w`` is 1 / each line's variance (with the systematic
+    sag included). Two points leave no residual to judge a fit by, so the test rests on
+    those stated variances.
+    """
+    variance = 1.0 / w
+    if not (np.all(np.isfinite(variance)) and abs(z[1] - z[0]) > 0):
+        return fallback
+    if abs(c[1] - c[0]) <= 2.5 * math.sqrt(variance.sum()):
+        return fallback
+    if c[0] * c[1] <= 0:
+        # across one order's visible band beta keeps its sign, and so does the slit images'
+        # curvature: opposite signs are not two slit images (e.g. features of a continuum)
+        return fallback
+    slope = (c[1] - c[0]) / (z[1] - z[0])
+    return np.array([c[0] - slope * z[0], slope])
+
+
+def _consistent(x, y, w, coef, keep, degree) -> bool:
+    """Whether the kept points' chi-square about the fit is below its 99th percentile (True with no residual left)."""
+    dof = int(keep.sum()) - degree - 1
+    if dof < 1:
+        return True
+    from scipy.stats import chi2 as chi2_distribution
+
+    resid = y[keep] - np.polynomial.polynomial.polyval(x[keep], coef)
+    return float(np.sum(w[keep] * resid**2)) <= chi2_distribution.ppf(0.99, dof)
+
+
+def _significant_fit(x, y, w, *, max_degree: int, floor: float, trust_weights_below_dof: int = 0,
+                     trusted_weights=None):
     """Robust polynomial fit of the highest degree <= max_degree whose top coefficient is significant (> 2.5 sigma).
 
+    With fewer than ``trust_weights_below_dof`` degrees of freedom the fit takes
+    ``trusted_weights`` (default ``w``: 1 / each point's full variance) and its significance
+    rests on them alone: the reduced chi-square of one or two residuals is too noisy a
+    scale, and one poorly measured point would inflate it many times.
     Returns (coefficients lowest first, keep mask); degree 0 falls back to the
     weighted median when clipping leaves nothing.
     """
     for degree in range(max_degree, 0, -1):
-        coef, cov, keep, _ = _robust_line_fit(x, y, w, degree=degree, floor=floor)
-        if keep.sum() > degree + 1 and np.isfinite(cov[degree, degree]) and cov[degree, degree] > 0:
+        scaled = np.count_nonzero(np.isfinite(y)) - degree - 1 >= trust_weights_below_dof
+        weights = w if scaled or trusted_weights is None else trusted_weights
+        coef, cov, keep, _ = _robust_line_fit(x, y, weights, degree=degree, floor=floor, scale_covariance=scaled)
+        if not scaled and not _consistent(x, y, weights, coef, keep, degree):
+            # the points scatter beyond their stated variances (e.g. features of a continuum, not
+            # slit images): those variances cannot be trusted, the scaled covariance judges
+            coef, cov, keep, _ = _robust_line_fit(x, y, w, degree=degree, floor=floor)
+            scaled = True
+        enough = keep.sum() > degree + (1 if scaled else 0)  # trusted weights need no residual
+        if enough and np.isfinite(cov[degree, degree]) and cov[degree, degree] > 0:
             if abs(coef[degree]) > 2.5 * math.sqrt(cov[degree, degree]):
                 return coef, keep
     coef, cov, keep, _ = _robust_line_fit(x, y, w, degree=0, floor=floor)
