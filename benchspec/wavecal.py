@@ -888,6 +888,39 @@ def _with_pairs(values, extra):
     return np.concatenate((values, np.asarray(extra, dtype=float))) if extra else values
 
 
+def _on_lit_branch(coeffs, t, t_ends) -> np.ndarray:
+    """Which of the positions ``t`` the polynomial reaches from the lit range without folding.
+
+    Beyond a turning point outside the lit range the polynomial runs back over wavelengths it
+    has already given: a faint detection there (noise far along the sensor) could land on one
+    of the lamp's lines by that accident alone, so it is not matched.
+    """
+    reach = np.ones(t.shape, dtype=bool)
+    if len(coeffs) < 3:
+        return reach
+    roots = np.roots(_derivative_coeffs(np.asarray(coeffs, dtype=float))[::-1])
+    for r in roots[np.abs(roots.imag) < 1e-9].real:
+        if r > t_ends[1]:
+            reach &= t < r
+        elif r < t_ends[0]:
+            reach &= t > r
+    return reach
+
+
+def _fold_probe(tt, t_ends) -> np.ndarray:
+    """Where a solution through lines at ``tt`` must not fold: their span, a margin of 15% beyond it
+    inside ``t_ends`` (the lit range), and always every line itself.
+
+    A faint detection matched outside the lit range (noise far along the sensor) must still lie
+    on the same monotonic branch as the others: a cubic that turns back there would assign it a
+    wavelength of the lamp's lines it cannot have.
+    """
+    margin = 0.15 * (tt.max() - tt.min())
+    low = min(max(t_ends[0], tt.min() - margin), tt.min())
+    high = max(min(t_ends[1], tt.max() + margin), tt.max())
+    return np.linspace(low, high, 33)
+
+
 def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, pairs, max_order, n_trials=1, quick=False,
             seen=None):
     """Iterative matching + robust fit from a starting polynomial. Returns a _Candidate or None.
@@ -918,7 +951,7 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
         fw = features.wavelength
         cost = np.abs(lam[:, None] - fw[None, :]) / disp[:, None]  # px
         allowed = tol_px + 0.3 * peaks.fwhm[:, None] + 2 * features.sigma[None, :] / disp[:, None] + 3 * peaks.sigma[:, None]
-        ok = cost < allowed
+        ok = (cost < allowed) & _on_lit_branch(coeffs, t, t_ends)[:, None]
         pi, fi = np.nonzero(ok)
         order = np.argsort(cost[pi, fi])
         taken_p, taken_f, chosen = set(), set(), []
@@ -947,8 +980,7 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
             [math.hypot(m.tolerance_nm, _CENTRE_FLOOR_PX * median_disp) for m in pairs],
         )
         # The solution must not fold where there is light: over the lines' span and a margin beyond it.
-        margin = 0.15 * (tt.max() - tt.min())
-        monotonic_t = np.linspace(max(t_ends[0], tt.min() - margin), min(t_ends[1], tt.max() + margin), 33)
+        monotonic_t = _fold_probe(tt, t_ends)
         if quick:
             keep = np.ones(tt.size, dtype=bool)
             fit = _select_order(tt, ll, ss, keep, max_order=min(max_order, max(1, tt.size - 2)), monotonic_t=monotonic_t)
@@ -1004,8 +1036,7 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
     if inconsistent.any() and (keep.sum() - inconsistent.sum()) >= 3:
         keep = keep.copy()
         keep[:n_lines][inconsistent] = False
-        margin = 0.15 * (tt[keep].max() - tt[keep].min())
-        monotonic_t = np.linspace(max(t_ends[0], tt[keep].min() - margin), min(t_ends[1], tt[keep].max() + margin), 33)
+        monotonic_t = _fold_probe(tt[keep], t_ends)
         refit = _select_order(tt, np.r_[features.wavelength[f_idx], [m.wavelength_nm for m in pairs]], ss, keep,
                               max_order=min(max_order, max(1, int(keep.sum()) - 2)), monotonic_t=monotonic_t)
         if refit is None:
