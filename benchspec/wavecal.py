@@ -898,8 +898,17 @@ def _on_lit_branch(coeffs, t, t_ends) -> np.ndarray:
     reach = np.ones(t.shape, dtype=bool)
     if len(coeffs) < 3:
         return reach
-    roots = np.roots(_derivative_coeffs(np.asarray(coeffs, dtype=float))[::-1])
-    for r in roots[np.abs(roots.imag) < 1e-9].real:
+    c = [float(v) for v in coeffs]
+    if len(c) == 3:  # the derivative c1 + 2 c2 t: one root
+        roots = [-c[1] / (2 * c[2])] if c[2] != 0 else []
+    elif len(c) == 4 and c[3] != 0:  # c1 + 2 c2 t + 3 c3 t^2, in closed form (np.roots is 10x slower)
+        a, b, q = 3 * c[3], 2 * c[2], c[1]
+        disc = b * b - 4 * a * q
+        roots = [] if disc < 0 else [(-b + sign * math.sqrt(disc)) / (2 * a) for sign in (1.0, -1.0)]
+    else:
+        found = np.roots(_derivative_coeffs(np.asarray(c))[::-1])
+        roots = found[np.abs(found.imag) < 1e-9].real.tolist()
+    for r in roots:
         if r > t_ends[1]:
             reach &= t < r
         elif r < t_ends[0]:
