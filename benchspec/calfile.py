@@ -44,6 +44,7 @@ Top level (all keys required unless marked optional)::
                         reference_nm, reference_uncertainty_nm, fitted_nm, residual_nm,
                         residual_px, species, members_nm (blend members), lamp,
                         used_in_fit, anchor, rejected, blended, saturated, snr
+                        (null for a manual --pair: no detected line)
         rms_px, rms_nm  weighted RMS residual of the fitted lines
         max_uncertainty_nm   largest 1-sigma of the solution between the outer lines
         verdict         "good" | "fair" | "poor";  verdict_reason: one line
@@ -264,6 +265,8 @@ def _validate_wavelength(data, origin: str, n_columns: int) -> WavelengthCalibra
             if key not in match:
                 _fail(origin, f"`matches[{k}].{key}` is missing")
             value = match[key]
+            if key == "snr" and value is None and match.get("species") == "manual":
+                continue  # a manual pair has no detected line, so no SNR
             if kind is float and (isinstance(value, bool) or not isinstance(value, (int, float))):
                 _fail(origin, f"`matches[{k}].{key}` must be a number")
             if kind is not float and not isinstance(value, kind):

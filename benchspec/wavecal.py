@@ -193,12 +193,16 @@ class MatchedLine:
     def to_dict(self) -> dict:
         d = {name: getattr(self, name) for name in self.__dataclass_fields__}
         d["members_nm"] = list(self.members_nm)
+        if not math.isfinite(self.snr):
+            d["snr"] = None  # a manual pair: no detected line (JSON has no NaN)
         return d
 
     @classmethod
     def from_dict(cls, data) -> "MatchedLine":
         values = dict(data)
         values["members_nm"] = tuple(float(v) for v in values["members_nm"])
+        if values.get("snr") is None:
+            values["snr"] = float("nan")
         return cls(**values)
 
 
@@ -1779,8 +1783,49 @@ def calibrate_lines(
     lamp_obj = _as_lamp(lamp)
     peaks = _peaks_from_table(lines, kind=lamp_obj.kind)
     pixel_range = (min(lines.pixel_range), max(lines.pixel_range))
-    return _calibrate_peaks(peaks, [lamp_obj], pixel_range=pixel_range, d_range=d_range, pairs=tuple(pairs),
-                            max_order=max_order, suggest_lamps=suggest_lamps)
+    result = _calibrate_peaks(peaks, [lamp_obj], pixel_range=pixel_range, d_range=d_range, pairs=tuple(pairs),
+                              max_order=max_order, suggest_lamps=suggest_lamps)
+    if pairs:
+        _check_pairs_against_lines(pairs, lambda: _calibrate_peaks(
+            peaks, [lamp_obj], pixel_range=pixel_range, d_range=d_range, pairs=(), max_order=max_order,
+            suggest_lamps=False), lamp_label=f"lamp {lamp_obj.name!r}")
+    return result
+
+
+def _check_pairs_against_lines(pairs, calibrate_without, *, lamp_label: str) -> None:
+    """Refuse manual pairs that the lamp's own lines contradict.
+
+    A pair constrains the search, so a wrong one (a pixel misread, a wavelength mistyped) can
+    steer it to a solution through the pair and a few loosely known lines. When the lines alone
+    give a solution that passes every check, each pair must agree with it within 5 sigma of
+    their combined uncertainty (the pair's tolerance, the solution's own 1-sigma at that pixel
+    and the 0.03 px centre floor); otherwise CalibrationError names the pair and where the lines
+    put its wavelength. Lines that cannot be calibrated alone (the usual reason for a pair)
+    leave the pairs unchecked.
+    """
+    try:
+        alone = calibrate_without()
+    except CalibrationError:
+        return
+    if alone.verdict == "poor":
+        return
+    solution = alone.solution
+    for pair in pairs:
+        fitted = float(solution.wavelength_nm(pair.pixel))
+        disp = abs(float(solution.dispersion_nm_per_px(pair.pixel)))
+        sigma = math.sqrt(pair.tolerance_nm**2 + float(solution.uncertainty_nm(pair.pixel)) ** 2
+                          + (_CENTRE_FLOOR_PX * disp) ** 2)
+        if abs(fitted - pair.wavelength_nm) > 5.0 * sigma:
+            grid = np.linspace(*solution.pixel_range, 4096)
+            wl = solution.wavelength_nm(grid)
+            where = grid[int(np.argmin(np.abs(wl - pair.wavelength_nm)))]
+            placed = (f"{pair.wavelength_nm:g} nm at pixel {where:.1f}"
+                      if np.min(np.abs(wl - pair.wavelength_nm)) < 2 * disp else f"{pair.wavelength_nm:g} nm off the frame")
+            raise CalibrationError(
+                f"the pair {pair.pixel:g}={pair.wavelength_nm:g} disagrees with the {lamp_label} lines, which alone put "
+                f"{fitted:.1f} nm at pixel {pair.pixel:g} and {placed} ({abs(fitted - pair.wavelength_nm) / disp:.0f} px "
+                "apart); check the pair's pixel (a rectified column, as in the line table) and wavelength, or leave it out"
+            )
 
 
 def _recalibrate_lines(lines: LineTable, seed: WavelengthSolution, *, lamp: str | Lamp = "cfl",

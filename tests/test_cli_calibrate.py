@@ -167,3 +167,44 @@ def test_existing_output_is_not_overwritten(capsys, frames, cal_file, tmp_path):
     spec.write_text("keep")
     code, _, stderr = run(capsys, "extract", str(frames / "hg.png"), "--calibration", str(cal_file), "--out", str(spec))
     assert code == 2 and spec.read_text() == "keep"
+
+
+def _pixel_of(cal_path, wavelength_nm):
+    from benchspec.calfile import read_calibration
+
+    solution = read_calibration(cal_path).wavelength.solution
+    grid = np.linspace(*solution.pixel_range, 20001)
+    return float(grid[int(np.argmin(np.abs(solution.wavelength_nm(grid) - wavelength_nm)))])
+
+
+def test_a_manual_pair_is_written_to_the_calibration_file(capsys, frames, cal_file, tmp_path):
+    """A 532 nm laser pair where the lamp's lines put 532 nm: the file is written and reads back.
+
+    A manual pair has no detected line, so no SNR: the file holds null there (it held NaN,
+    which JSON cannot carry, and the writer refused every --pair). 532 nm: the frequency-doubled
+    Nd:YAG green laser (from memory).
+    """
+    from benchspec.calfile import read_calibration
+
+    pixel = _pixel_of(cal_file, 532.0)
+    out = tmp_path / "pair.json"
+    code, stdout, err = run(capsys, "calibrate", str(frames / "cfl.png"), "--pair", f"{pixel:.2f}=532.0", "--out", str(out))
+    assert code == 0, err
+    manual = [m for m in json.loads(out.read_text())["wavelength_calibration"]["matches"] if m["species"] == "manual"]
+    assert len(manual) == 1 and manual[0]["snr"] is None
+    back = read_calibration(out)
+    assert [m.pixel for m in back.wavelength.matches if m.species == "manual"] == [pytest.approx(pixel, abs=0.01)]
+
+
+def test_a_pair_the_lamp_lines_contradict_is_refused(capsys, frames, cal_file, tmp_path):
+    """532 nm given 60 px from where the CFL's lines put it: one line naming the pair, exit 2, no file.
+
+    Before, the pair steered the search to a solution through it and a few loosely known
+    phosphor lines, blue on the wrong side, verdict "fair".
+    """
+    pixel = _pixel_of(cal_file, 532.0) + 60.0
+    out = tmp_path / "bad_pair.json"
+    code, stdout, err = run(capsys, "calibrate", str(frames / "cfl.png"), "--pair", f"{pixel:.1f}=532.0", "--out", str(out))
+    assert code == 2
+    assert len(err.strip().splitlines()) == 1 and "disagrees with the lamp 'cfl' lines" in err and "Traceback" not in err
+    assert not out.exists()
