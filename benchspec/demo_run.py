@@ -73,7 +73,8 @@ def run_demo(out: Path, *, force: bool = False) -> int:
     dark = [_frame("dark.png")]
     lamp_frames = [_frame(f"cfl_{i}.png") for i in (1, 2, 3)]
     calibration = calibrate_frames(lamp_frames, lamp="cfl", dark=dark)
-    write_calibration(calibration, out / "calibration.json", force=force)
+    cal_path = out / "calibration.json"
+    write_calibration(calibration, cal_path, force=force)
     solution = calibration.wavelength
     _say("1. Wavelength calibration on the desk lamp (3 frames stacked, dark subtracted, no clicks)")
     _say(
@@ -82,19 +83,22 @@ def run_demo(out: Path, *, force: bool = False) -> int:
     )
 
     spectra = {}
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", DegradedResultWarning)
-        for frame in demo.demo_frames():
-            if frame.file == "dark.png":
-                continue
-            spectrum = extract_frames([frame.path], calibration, dark=dark)
-            stem = Path(frame.file).stem
-            write_spectrum(spectrum, out / f"{stem}.csv", force=force)
-            save_spectrum_plot(spectrum, out / f"{stem}.png", force=force, title=frame.label, dpi=110)
-            spectra[frame.file] = spectrum
+    notes = []
+    for frame in demo.demo_frames():
+        if frame.file == "dark.png":
+            continue
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", DegradedResultWarning)
+            # the written file, not the object in memory: the spectra's provenance names it and its hash
+            spectrum = extract_frames([frame.path], cal_path, dark=dark)
+        notes.extend(f"{frame.file}: {w.message}" for w in caught)
+        stem = Path(frame.file).stem
+        write_spectrum(spectrum, out / f"{stem}.csv", force=force)
+        save_spectrum_plot(spectrum, out / f"{stem}.png", force=force, title=frame.label, dpi=110)
+        spectra[frame.file] = spectrum
     _say(f"2. Extracted {len(spectra)} demo frames: a CSV spectrum and a PNG plot each")
-    for warning in caught:
-        _say(f"   warning: {warning.message}")
+    for note in notes:
+        _say(f"   warning: {note}")
 
     _say("3. The mystery tubes")
     results = {}
@@ -136,12 +140,16 @@ def run_demo(out: Path, *, force: bool = False) -> int:
 
 
 def _run_step(title: str, step) -> None:
-    try:
-        text = step()
-    except BenchspecError as exc:
-        _say(f"   {title}: not possible: {exc}")
-        return
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", DegradedResultWarning)
+        try:
+            text = step()
+        except BenchspecError as exc:
+            _say(f"   {title}: not possible: {exc}")
+            return
     _say(f"   {title}: {text}")
+    for warning in caught:  # said under the step it belongs to, not as an anonymous warning at the end
+        _say(f"      warning: {warning.message}")
 
 
 def _response(spectra, compute_response, apply_response, write_table, out, force) -> str:
