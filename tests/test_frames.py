@@ -254,6 +254,25 @@ def test_dark_is_subtracted_and_its_variance_added(rng):
     assert st.settings["dark"]["n_frames"] == 8
 
 
+def test_a_lamp_frame_given_as_the_dark_is_warned_about():
+    """The demo's CFL frame with the helium tube's frame as its "dark": a warning that names it.
+
+    A real dark (the demo's own, lens capped) leaves only noise, and no warning. Invented demo
+    frames (demo_images/, rendered by the virtual bench).
+    """
+    import warnings as _warnings
+    from pathlib import Path
+
+    from benchspec.errors import DegradedResultWarning
+
+    demo = Path(frames.__file__).resolve().parent.parent / "demo_images"
+    with _warnings.catch_warnings():
+        _warnings.simplefilter("error", DegradedResultWarning)
+        frames.load_stack(demo / "cfl_1.png", dark=demo / "dark.png")
+    with pytest.warns(DegradedResultWarning, match=r"tube_A.jpg is brighter than the frames .*check --dark"):
+        frames.load_stack(demo / "cfl_1.png", dark=demo / "tube_A.jpg")
+
+
 def test_dark_of_another_size(rng):
     dark = frames.stack_frames([np.zeros((10, 10), np.uint16)], check=False)
     with pytest.raises(FrameError, match=r"the dark is 10x10 but the frames are 80x60"):
