@@ -101,6 +101,9 @@ __all__ = [
 DEFAULT_SPECIES = ("H", "He", "Ne", "Ar", "Kr", "Xe", "Hg", "Na", "CFL-phosphor")
 VERDICTS = ("identified", "mixture", "uncertain", "unknown")
 
+#: Wavelengths a silicon camera behind glass optics can record, with a margin (about 350-1050 nm;
+#: common practice, no source): samples outside are dropped here, and `benchspec lines` leaves lines
+#: outside out of its table. ``plots.VIEW_RANGE_NM`` is the same range.
 WAVELENGTH_RANGE_NM = (300.0, 1100.0)
 MIN_OVERLAP_NM = 50.0
 _FWHM_PER_SIGMA = 2.0 * np.sqrt(2.0 * np.log(2.0))
@@ -218,7 +221,16 @@ class SpeciesMatch:
         The observed lines it explains, by wavelength.
     missing_nm : tuple of float
         Its lines predicted above 3 sigma that the data lack (beyond the
-        intensity tolerance), strongest first, at most ten.
+        intensity tolerance), strongest first, at most ten. A line that makes
+        one of the matched peaks in ``lines`` is never listed here, however
+        weak: it is in ``weaker_nm``.
+    weaker_nm : tuple of float
+        Its lines that make a matched peak (within max(FWHM, 3 sigma of the
+        line profile) of a matched observed line, the reach that assigns
+        reference lines to a peak) but carry less than half of ``1/intensity_tolerance``
+        of the flux the NIST ratios and the fitted response predict (a webcam
+        sees little at the UV and IR edges), strongest first, at most ten.
+        They lower ``presence`` as the missing lines do.
     """
 
     symbol: str
@@ -228,6 +240,7 @@ class SpeciesMatch:
     shift_nm: float
     lines: tuple[LineMatch, ...]
     missing_nm: tuple[float, ...] = ()
+    weaker_nm: tuple[float, ...] = ()
 
     def to_dict(self) -> dict:
         return {
@@ -1044,8 +1057,12 @@ def _assess(wavelength, intensity, sigma, templates, profiles, line_weights, shi
             _line_match(lines[i], template, line_weights[k] * species_coef[k], shifts[k], fwhm, species_share[i])
             for i in mine
         )
-        presence, missing = _presence(template, profiles[k], line_weights[k] * species_coef[k], intensity, continuum,
-                                      model - components[:, k], sigma, response, tolerance)
+        presence, absent = _presence(template, profiles[k], line_weights[k] * species_coef[k], intensity, continuum,
+                                     model - components[:, k], sigma, response, tolerance)
+        # A weak line that still makes a matched peak is seen, not missing (listing it as both contradicted itself)
+        seen = _makes_a_matched_peak(template, shifts[k], fwhm, [lines[i].wavelength_nm for i in mine])
+        missing = tuple(float(template.wavelength_nm[j]) for j in absent if not seen[j])[:10]
+        weaker = tuple(float(template.wavelength_nm[j]) for j in absent if seen[j])[:10]
         fraction = float(np.clip(fractions[k], 0.0, 1.0))
         if not line_matches:
             score = 0.0
@@ -1054,7 +1071,7 @@ def _assess(wavelength, intensity, sigma, templates, profiles, line_weights, shi
         shift_array = np.asarray(shifts[k], dtype=float)
         shift_reported = float(shift_array[int(np.argmax(template.intensity))]) if shift_array.ndim else float(shift_array)
         matches.append(SpeciesMatch(template.symbol, float(score), fraction, float(presence), shift_reported,
-                                    line_matches, missing))
+                                    line_matches, missing, weaker))
     matches.sort(key=lambda m: (-m.score, -m.fraction))
     reported = tuple(m for m in matches if m.score >= _REPORTED_SCORE)
 
@@ -1118,8 +1135,20 @@ def _line_match(line: ObservedLine, template: _Template, amplitude: np.ndarray, 
     return LineMatch(centre, reference, centre - reference, strongest, blend, float(min(share, 1.0)), line.snr)
 
 
-def _presence(template, profile, amplitude, intensity, continuum, others, sigma, response, tolerance) -> tuple[float, tuple[float, ...]]:
+def _makes_a_matched_peak(template: _Template, shift, fwhm: float, matched_nm) -> np.ndarray:
+    """Which of the template's lines lie close enough to a matched observed line to make it (as in ``_line_match``)."""
+    if not len(matched_nm):
+        return np.zeros(template.wavelength_nm.size, dtype=bool)
+    reach = max(fwhm, 3 * float(template.sigma_nm.min()))
+    shifted = template.wavelength_nm + np.asarray(shift, dtype=float)
+    return np.min(np.abs(shifted[:, None] - np.asarray(matched_nm, dtype=float)[None, :]), axis=1) <= reach
+
+
+def _presence(template, profile, amplitude, intensity, continuum, others, sigma, response, tolerance) -> tuple[float, np.ndarray]:
     """How much of what the species predicts is really there: 1 - flux share of its lines missing beyond tolerance.
+
+    Returns the presence and the indices of the template's lines that carry
+    less than half of ``expected / tolerance`` (strongest expected first).
 
     The species' expected line fluxes are its NIST ASD relative intensities
     times the fitted instrument response, scaled by observed/expected over the
@@ -1134,15 +1163,16 @@ def _presence(template, profile, amplitude, intensity, continuum, others, sigma,
     data = np.bincount(template.pair_line, weights=rest[template.pair_sample] * profile, minlength=size)
     noise = np.sqrt(np.bincount(template.pair_line, weights=(sigma[template.pair_sample] * profile) ** 2, minlength=size))
     inside = pp > 0
+    none = np.zeros(0, dtype=int)
     if not np.any(inside):
-        return 1.0, ()
+        return 1.0, none
     observed = np.where(inside, data / np.where(inside, pp, 1.0), 0.0)  # least-squares line flux at each line
     noise_flux = np.where(inside, noise / np.where(inside, pp, 1.0), np.inf)
     nominal = template.intensity * response(template.wavelength_nm)
     claimed = np.clip(np.minimum(observed, amplitude), 0.0, None)
     modelled = np.where(inside, amplitude, 0.0)
     if modelled.sum() <= 0 or not np.any(claimed >= 3.0 * noise_flux):
-        return 1.0, ()
+        return 1.0, none
     # The species' scale: data over NIST expectation on the lines that carry half of its
     # modelled flux (where the fit put it), so that a species fitted to one line is judged
     # by what that line implies for all the others.
@@ -1153,10 +1183,8 @@ def _presence(template, profile, amplitude, intensity, continuum, others, sigma,
     expected = scale * nominal
     strong = inside & (expected / tolerance >= 3.0 * noise_flux)
     if not np.any(strong):
-        return 1.0, ()
+        return 1.0, none
     shortfall = np.clip(1.0 - tolerance * np.clip(observed, 0.0, None) / np.where(expected > 0, expected, 1.0), 0.0, 1.0)
     presence = 1.0 - float(np.sum((expected * shortfall)[strong]) / np.sum(expected[strong]))
-    absent = strong & (shortfall > 0.5)
-    order = np.argsort(-expected[absent])
-    missing = tuple(float(w) for w in template.wavelength_nm[absent][order][:10])
-    return float(np.clip(presence, 0.0, 1.0)), missing
+    absent = np.flatnonzero(strong & (shortfall > 0.5))
+    return float(np.clip(presence, 0.0, 1.0)), absent[np.argsort(-expected[absent], kind="stable")]

@@ -132,6 +132,49 @@ def test_lines_beyond_the_calibrations_lines_are_flagged_extrapolated(capsys, fr
     assert "extrapolated" in stdout and "the span of the calibration's lines" in stdout
 
 
+def test_lines_outside_what_a_webcam_records_are_left_out_and_counted(capsys, tmp_path):
+    """A calibrated axis extrapolated to 250-1150 nm: He I lines (NIST ASD air wavelengths, the packaged
+    calibration/lines/He.csv) inside, and two peaks at 270 and 1130 nm, where a silicon webcam behind glass
+    records no light (common practice, no source): artefacts of the extrapolated columns, as in the demo's
+    tube A (82.97 and 276.87 nm). `identify` and the plots ignore 300-1100 nm's outside; `lines` must too.
+    """
+    from benchspec.identify import WAVELENGTH_RANGE_NM
+    from benchspec.io import write_spectrum
+    from benchspec.refdata import load_line_list
+    from benchspec.spectrum import as_spectrum
+
+    rng = np.random.default_rng(31)
+    helium = load_line_list("He")
+    strong = helium.wavelength_nm[helium.relative_intensity >= 0.1 * helium.relative_intensity.max()]
+    wavelength = np.arange(250.0, 1150.0, 0.25)
+    sigma = 1.0 / 2.3548  # 1 nm FWHM
+    intensity = sum(np.exp(-0.5 * ((wavelength - centre) / sigma) ** 2) for centre in list(strong) + [270.0, 1130.0])
+    noise = 0.005
+    spectrum = as_spectrum(wavelength, intensity + rng.normal(0.0, noise, wavelength.size),
+                           uncertainty=np.full(wavelength.size, noise))
+    spec = write_spectrum(spectrum, tmp_path / "extrapolated.csv")
+    low, high = WAVELENGTH_RANGE_NM
+
+    code, stdout, _ = run(capsys, "lines", str(spec), "--json")
+    table = json.loads(stdout)
+    kept = np.array([l["centre_nm"] for l in table["lines"]])
+    assert code == 0 and kept.size and np.all((kept >= low) & (kept <= high))
+    assert table["recordable_range_nm"] == [low, high]
+    outside = sorted(l["centre_nm"] for l in table["outside_recordable_range"])
+    # a fifth of a 0.25 nm sample: the fitted centre of a SNR-200 line is far closer than that
+    assert outside == pytest.approx([270.0, 1130.0], abs=0.05)
+    for nist_nm in strong:  # every strong He I line is still in the table
+        assert np.min(np.abs(kept - nist_nm)) < 0.05
+
+    code, stdout, _ = run(capsys, "lines", str(spec))
+    rows = [line for line in stdout.splitlines() if line[:12].strip().replace(".", "").isdigit()]
+    centres = np.array([float(row.split()[0]) for row in rows])
+    assert code == 0 and np.all((centres >= low) & (centres <= high)) and centres.size == kept.size
+    assert f"{kept.size} emission lines" in stdout
+    note = [line for line in stdout.splitlines() if "left out" in line]
+    assert len(note) == 1 and note[0].startswith("2 more left out") and f"{low:g}-{high:g} nm" in note[0]
+
+
 @pytest.mark.parametrize(
     "args, message",
     [

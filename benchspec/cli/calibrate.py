@@ -10,7 +10,9 @@
   (``SPEC_0000.csv``, ``SPEC_0001.csv``, ...), a time series, or with
   ``--out RUN.nc`` the whole series in one NetCDF file (:mod:`benchspec.series`).
   The extension of ``--out`` picks the format (.csv, .json, .jdx).
-* ``lines SPEC.csv [--absorption] [--json]`` prints the line table.
+* ``lines SPEC.csv [--absorption] [--json]`` prints the line table; lines of a calibrated spectrum
+  outside 300-1100 nm (``identify.WAVELENGTH_RANGE_NM``, which a webcam cannot record) are counted,
+  not listed (``--json``: under ``outside_recordable_range``).
 
 Errors print one line and exit with code 2; nothing is written then.
 """
@@ -250,6 +252,7 @@ def _extract_series_file(args, out: Path, response) -> int:
 
 
 def _lines(args) -> int:
+    from ..identify import WAVELENGTH_RANGE_NM
     from ..io import read_spectrum
     from ..lines import find_lines
 
@@ -257,27 +260,46 @@ def _lines(args) -> int:
     table = find_lines(spectrum, absorption=args.absorption, min_snr=args.min_snr)
     calibrated = spectrum.is_calibrated
     span = _calibrated_span(spectrum) if calibrated else None
-    outside = [span is not None and not (span[0] <= line.centre_nm <= span[1]) for line in table]
+    # A calibration extrapolated to the sensor's far columns can put "lines" where no light reaches a
+    # silicon webcam behind glass: they are left out of the table, as identify and the plots ignore them
+    low, high = WAVELENGTH_RANGE_NM
+    recordable = [not calibrated or low <= line.centre_nm <= high for line in table]
+    rows = list(zip(table, table.to_dicts()))
+    shown = [pair for pair, keep in zip(rows, recordable) if keep]
+    left_out = [pair for pair, keep in zip(rows, recordable) if not keep]
+
+    def beyond_span(line) -> bool:
+        return span is not None and not (span[0] <= line.centre_nm <= span[1])
+
     if args.json:
-        rows = [dict(row, extrapolated=None if span is None else flag) for row, flag in zip(table.to_dicts(), outside)]
+        def listed(pairs):
+            return [dict(row, extrapolated=None if span is None else beyond_span(line)) for line, row in pairs]
+
         json.dump({"kind": table.kind, "noise": table.noise, "min_snr": table.min_snr, "calibrated_span_nm": span,
-                   "lines": rows}, sys.stdout, indent=1)
+                   "recordable_range_nm": [low, high] if calibrated else None, "lines": listed(shown),
+                   "outside_recordable_range": listed(left_out)}, sys.stdout, indent=1)
         print()
         return 0
     header = "   centre_nm  +-1s_nm  fwhm_nm" if calibrated else "   centre_px  +-1s_px  fwhm_px"
     print(header + "        peak        area     snr  flags")
-    for line, beyond in zip(table, outside):
-        flags = ",".join(f for f, on in (("blend", line.blended), ("sat", line.saturated), ("extrapolated", beyond)) if on)
+    for line, _ in shown:
+        flags = ",".join(f for f, on in (("blend", line.blended), ("sat", line.saturated),
+                                         ("extrapolated", beyond_span(line))) if on)
         if calibrated:
             position = f"{line.centre_nm:12.3f} {line.centre_uncertainty_nm:8.3f} {line.fwhm_nm:8.3f}"
         else:
             position = f"{line.centre_px:12.2f} {line.centre_uncertainty_px:8.3f} {line.fwhm_px:8.2f}"
         print(f"{position} {line.peak:11.4g} {line.area:11.4g} {line.snr:7.1f}  {flags}")
-    print(f"{len(table)} {table.kind} lines, detected at {table.min_snr:g} sigma or more on the smoothed spectrum "
+    print(f"{len(shown)} {table.kind} lines, detected at {table.min_snr:g} sigma or more on the smoothed spectrum "
           "(the snr column: the fitted peak over one sample's noise)")
-    if any(outside):
-        print(f"{sum(outside)} of them outside {span[0]:.1f}-{span[1]:.1f} nm, the span of the calibration's lines: "
+    extrapolated = sum(beyond_span(line) for line, _ in shown)
+    if extrapolated:
+        print(f"{extrapolated} of them outside {span[0]:.1f}-{span[1]:.1f} nm, the span of the calibration's lines: "
               "their wavelengths are extrapolated (see +-1s)")
+    if left_out:
+        print(f"{len(left_out)} more left out, outside {low:g}-{high:g} nm: a silicon webcam behind glass optics "
+              "records no light there (identify and the plots ignore it too); --json lists them under "
+              "outside_recordable_range")
     return 0
 
 

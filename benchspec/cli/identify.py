@@ -98,14 +98,32 @@ def format_result(result: "IdentificationResult", *, title: str = "") -> str:
             for line in m.lines:
                 blend = f"  blend of {line.blend}" if line.blend > 1 else ""
                 out.append(f"    {line.observed_nm:9.2f} -> {line.reference_nm:9.3f} ({line.residual_nm:+.2f})  SNR {line.snr:.0f}{blend}")
+            if m.weaker_nm:
+                out.append("    seen, but far weaker than the NIST ratios predict: " + ", ".join(f"{w:.2f}" for w in m.weaker_nm))
             if m.missing_nm:
-                out.append("    expected but missing: " + ", ".join(f"{w:.2f}" for w in m.missing_nm[:6]))
+                out.append("    expected but missing: " + ", ".join(f"{w:.2f}" for w in m.missing_nm))
     if result.unexplained:
         out.append("")
-        out.append("  lines nothing explains: " + ", ".join(f"{l.wavelength_nm:.2f} nm (SNR {l.snr:.0f})" for l in result.unexplained[:12]))
+        # every one of them (the note below counts them all), a few to a line
+        items = [f"{l.wavelength_nm:.2f} nm (SNR {l.snr:.0f})" for l in result.unexplained]
+        out.extend(_wrapped(items, first="  lines nothing explains: ", indent="    "))
     for note in result.notes:
         out.append(f"note: {note}")
     return "\n".join(out) + "\n"
+
+
+def _wrapped(items, *, first: str, indent: str, width: int = 100) -> list[str]:
+    """``items`` joined by commas on lines of at most ``width`` characters, never breaking inside an item."""
+    rows, row = [], []
+    for k, item in enumerate(items):
+        piece = item + ("," if k < len(items) - 1 else "")
+        start = indent if rows else first
+        if row and len(start) + len(" ".join(row + [piece])) > width:
+            rows.append(start + " ".join(row))
+            row = []
+        row.append(piece)
+    rows.append((indent if rows else first) + " ".join(row))
+    return rows
 
 
 def _headline_matches(result: "IdentificationResult"):
