@@ -22,6 +22,8 @@ from .refdata import load_line_list
 __all__ = ["run_demo"]
 
 _TUBES = ("tube_A.jpg", "tube_B.jpg", "tube_C.jpg")
+# Their plots are drawn once their lines are known: the tubes' identified lines, daylight's dark lines.
+_LABELLED_PLOTS = frozenset(_TUBES + ("daylight.jpg",))
 
 
 def _frame(name: str) -> Path:
@@ -61,7 +63,7 @@ def run_demo(out: Path, *, force: bool = False) -> int:
     from .io import write_spectrum, write_table
     from .pipeline import calibrate_frames, extract_frames, write_calibration
     from .plots import save_spectrum_plot
-    from .report import write_report
+    from .report import lines_from_results, write_report
 
     out = Path(out)
     _prepare_folder(out, force=force)
@@ -82,7 +84,7 @@ def run_demo(out: Path, *, force: bool = False) -> int:
         f"verdict: {solution.verdict}; wrote calibration.json"
     )
 
-    spectra = {}
+    spectra, titles = {}, {}
     notes = []
     for frame in demo.demo_frames():
         if frame.file == "dark.png":
@@ -94,9 +96,15 @@ def run_demo(out: Path, *, force: bool = False) -> int:
         notes.extend(f"{frame.file}: {w.message}" for w in caught)
         stem = Path(frame.file).stem
         write_spectrum(spectrum, out / f"{stem}.csv", force=force)
-        save_spectrum_plot(spectrum, out / f"{stem}.png", force=force, title=frame.label, dpi=110)
-        spectra[frame.file] = spectrum
-    _say(f"2. Extracted {len(spectra)} demo frames: a CSV spectrum and a PNG plot each")
+        if frame.file not in _LABELLED_PLOTS:
+            save_spectrum_plot(spectrum, out / f"{stem}.png", force=force, title=frame.label, dpi=110)
+        spectra[frame.file], titles[frame.file] = spectrum, frame.label
+    _say(f"2. Extracted {len(spectra)} demo frames: a CSV spectrum and a PNG plot each "
+         "(the tubes' and daylight's plots with their lines labelled, once these are found below)")
+
+    def plot_with_lines(name: str, lines) -> None:
+        save_spectrum_plot(spectra[name], out / f"{Path(name).stem}.png", force=force, title=titles[name],
+                           lines=lines or None, dpi=110)
     for note in notes:
         _say(f"   warning: {note}")
 
@@ -105,6 +113,7 @@ def run_demo(out: Path, *, force: bool = False) -> int:
     for name in _TUBES:
         result = identify(spectra[name])
         results[name] = result
+        plot_with_lines(name, lines_from_results(result.to_dict()))  # each identified line: species and nm
         if result.matches:
             top = result.matches[0]
             rms, count = _nist_residuals(result)
@@ -121,7 +130,8 @@ def run_demo(out: Path, *, force: bool = False) -> int:
     _run_step("Rydberg constant from tube C", lambda: _rydberg(spectra["tube_C.jpg"], rydberg_from_spectrum))
     _run_step("LED", lambda: _led(spectra["led.jpg"], source_metrics))
     _run_step("laser", lambda: _laser(spectra["laser.jpg"], source_metrics))
-    _run_step("daylight lines", lambda: _daylight(spectra["daylight.jpg"], identify_daylight_lines))
+    _run_step("daylight lines", lambda: _daylight(spectra["daylight.jpg"], identify_daylight_lines,
+                                                  plot=lambda lines: plot_with_lines("daylight.jpg", lines)))
 
     top = results["tube_A.jpg"]
     write_report(
@@ -212,8 +222,13 @@ def _laser(spectrum, source_metrics) -> str:
     )
 
 
-def _daylight(spectrum, identify_daylight_lines) -> str:
-    result = identify_daylight_lines(spectrum)
+def _daylight(spectrum, identify_daylight_lines, *, plot) -> str:
+    try:
+        result = identify_daylight_lines(spectrum)
+    except BenchspecError:
+        plot(None)  # the plot is written all the same, without labels
+        raise
     labelled = [line for line in result.lines if getattr(line, "label", None)]
+    plot([(l.wavelength_nm, f"{l.label} {l.wavelength_nm:.1f}") for l in labelled])  # letters, as printed
     names = ", ".join(f"{l.label} {l.wavelength_nm:.1f}" for l in labelled[:10])
     return f"{len(labelled)} dark lines labelled: {names}"

@@ -71,6 +71,11 @@ _TRACE = "0.12"
 _BAND = "0.72"
 _OVERLAY = ("0.12", "#1f4e79", "#8c2d04", "#276419", "#5e3c99", "#7f6000")
 _SATURATED = "#b2182b"
+#: Marker shapes of the species in a residual plot, in order of first appearance (the last one
+#: stands for all further species when there are more).
+_RESIDUAL_MARKERS = ("o", "s", "^", "v", "D", "P")
+#: How far under the residual axes its legend starts (pt): below the tick labels and the x label.
+_RESIDUAL_LEGEND_DROP_PT = 30.0
 
 
 def _cie_srgb(wavelength_nm: np.ndarray) -> np.ndarray:
@@ -296,24 +301,76 @@ def plot_spectrum(ax, spectrum: Spectrum, *, lines=None, label: str | None = Non
         _colour_strip(ax, x)
 
 
-def _spread(positions: np.ndarray, *, gap: float, low: float, high: float) -> np.ndarray:
-    """Move sorted label positions apart to at least ``gap``, staying in [low, high] and in order."""
-    placed = positions.astype(float).copy()
-    for _ in range(200):
-        moved = False
-        for i in range(1, placed.size):
-            overlap = gap - (placed[i] - placed[i - 1])
-            if overlap > 1e-12:
-                placed[i - 1] -= overlap / 2
-                placed[i] += overlap / 2
-                moved = True
-        placed = np.clip(placed, low, high)
-        if not moved:
-            break
-    return placed
+def _isotonic(values: np.ndarray) -> np.ndarray:
+    """Least-squares non-decreasing fit to ``values`` (pool adjacent violators)."""
+    means: list[float] = []
+    counts: list[int] = []
+    for value in values.astype(float):
+        means.append(value)
+        counts.append(1)
+        while len(means) > 1 and means[-2] > means[-1]:
+            total = means[-2] * counts[-2] + means[-1] * counts[-1]
+            counts[-2] += counts[-1]
+            means[-2] = total / counts[-2]
+            means.pop()
+            counts.pop()
+    return np.repeat(means, counts)
+
+
+def _spread(positions: np.ndarray, *, gap: float, low: float, high: float) -> np.ndarray | None:
+    """Label positions at least ``gap`` apart, in the order given, within [low, high], moved as
+    little as possible (least squares); None when they cannot all fit.
+
+    With q_i = p_i - i * gap the spacing rule is q non-decreasing, so the answer is the isotonic
+    regression of ``positions - i * gap``, clipped to the range (exact for bounds common to all).
+    """
+    positions = np.asarray(positions, dtype=float)
+    count = positions.size
+    if count == 0:
+        return positions.copy()
+    shift = gap * np.arange(count)
+    upper = high - shift[-1]
+    if upper < low - 1e-12:
+        return None
+    return np.clip(_isotonic(positions - shift), low, max(low, upper)) + shift
+
+
+#: Size (pt) of the line labels on a spectrum, and their spacing across the axis (in label heights).
+_LINE_LABEL_PT = 6.5
+_LINE_LABEL_PITCH = 1.35
+#: How far (in label spacings) a label may stand beside its line: a longer leader is hard to follow.
+_LABEL_MAX_SHIFT = 3.0
+
+
+def _label_gap(ax, width: float) -> float:
+    """The spacing of vertical labels in data units: ``_LINE_LABEL_PITCH`` text heights.
+
+    Measured on the axes as placed now; a constrained layout only widens the default subplot,
+    so the spacing in data units can only fall short of what was reserved, never overlap.
+    """
+    axes_width_in = ax.get_position().width * ax.figure.get_size_inches()[0]
+    return _LINE_LABEL_PITCH * _LINE_LABEL_PT / 72.0 / max(axes_width_in, 0.5) * width
+
+
+def _choose_labels(wavelengths: np.ndarray, strength: np.ndarray, *, gap: float, low: float, high: float,
+                   max_shift: float) -> tuple[np.ndarray, np.ndarray]:
+    """Which lines get a label, and where. Strongest first, a line's label is taken when all the labels
+    taken so far still fit ``gap`` apart with none further than ``max_shift`` from its line (a long
+    leader cannot be followed). Returns (indices in wavelength order, label x)."""
+    chosen = np.zeros(0, dtype=int)
+    placed = np.zeros(0)
+    for index in np.argsort(-strength, kind="stable"):
+        trial = np.sort(np.append(chosen, index))
+        spread = _spread(wavelengths[trial], gap=gap, low=low, high=high)
+        if spread is not None and np.max(np.abs(spread - wavelengths[trial])) <= max_shift:
+            chosen, placed = trial, spread
+    return chosen, placed
 
 
 def _label_lines(ax, x, y, labelled, *, top, span) -> None:
+    """A tick over every line and, for as many as fit without overlapping, a vertical label above the
+    trace joined to its tick by a thin leader. The strongest lines are labelled first; labels that do
+    not fit are left out (their ticks stay)."""
     x_min, x_max = float(x.min()), float(x.max())
     inside = [d for d in labelled if x_min <= d["wavelength_nm"] <= x_max]
     if not inside:
@@ -321,20 +378,52 @@ def _label_lines(ax, x, y, labelled, *, top, span) -> None:
     wavelengths = np.array([d["wavelength_nm"] for d in inside])
     colours = wavelength_colour(wavelengths)
     width = x_max - x_min
-    label_x = _spread(wavelengths, gap=0.021 * width, low=x_min + 0.01 * width, high=x_max - 0.01 * width)
+    # the trace's top near each line: a line's peak, or a dip's shoulders (the tick must clear the trace)
+    near = 0.004 * width
+    local_top = np.array([float(np.max(y[(x >= w - near) & (x <= w + near)], initial=np.interp(w, x, y)))
+                          for w in wavelengths])
+    gap = _label_gap(ax, width)
+    chosen, label_x = _choose_labels(wavelengths, local_top, gap=gap, low=x_min + 0.5 * gap,
+                                     high=x_max - 0.5 * gap, max_shift=_LABEL_MAX_SHIFT * gap)
     base = top + 0.10 * span
     edge = [patheffects.Stroke(linewidth=2.8, foreground="0.3"), patheffects.Normal()]
-    for entry, rgb, lx in zip(inside, colours, label_x):
-        w = entry["wavelength_nm"]
-        peak = float(np.interp(w, x, y))
+    for w, peak, rgb in zip(wavelengths, local_top, colours):
         tick_low = peak + 0.02 * span
-        tick_high = tick_low + 0.045 * span
-        ax.plot([w, w], [tick_low, tick_high], color=tuple(rgb), linewidth=1.8, solid_capstyle="butt",
+        ax.plot([w, w], [tick_low, tick_low + 0.045 * span], color=tuple(rgb), linewidth=1.8, solid_capstyle="butt",
                 path_effects=edge, zorder=5)
+    for index, lx in zip(chosen, label_x):
+        w, tick_high = wavelengths[index], local_top[index] + 0.065 * span
         ax.plot([w, w, lx], [tick_high, max(tick_high, base - 0.035 * span), base - 0.005 * span], color="0.55",
                 linewidth=0.5, zorder=4)
-        ax.text(lx, base, entry["label"], rotation=90, ha="center", va="bottom", fontsize=6.5, color="0.15",
-                zorder=6, clip_on=False)
+        ax.text(lx, base, inside[index]["label"], rotation=90, ha="center", va="bottom", fontsize=_LINE_LABEL_PT,
+                color="0.15", zorder=6, clip_on=False, gid=_LINE_LABEL_GID)
+
+
+#: gid of the line labels' Text artists (found again by :func:`_fit_line_labels`).
+_LINE_LABEL_GID = "benchspec-line-label"
+
+
+def _fit_line_labels(figure: Figure, *, margin_pt: float = 3.0) -> None:
+    """Raise the top of every axes whose line labels run past it, now that the figure is laid out.
+
+    A label stands at a fixed data height with a fixed length in points; raising the axis top
+    brings its foot down until its head is ``margin_pt`` inside the axes.
+    """
+    figure.draw_without_rendering()
+    for ax in figure.axes:
+        labels = [t for t in ax.texts if t.get_gid() == _LINE_LABEL_GID and t.get_visible()]
+        if not labels:
+            continue
+        box = ax.get_window_extent()
+        margin = margin_pt * figure.dpi / 72.0
+        heights = [t.get_window_extent().height for t in labels]
+        if max(t.get_window_extent().y1 for t in labels) <= box.y1 - margin:
+            continue
+        low, high = ax.get_ylim()
+        base = labels[0].get_position()[1]
+        room = (box.height - margin - max(heights)) / box.height  # axes fraction the labels' feet may reach
+        room = max(room, 0.35)  # labels longer than the axes is tall: keep the trace readable
+        ax.set_ylim(low, low + (base - low) / room)
 
 
 def _colour_strip(ax, x) -> None:
@@ -368,13 +457,40 @@ def plot_residuals(ax, residuals, *, title: str | None = None) -> bool:
     if data["rms_nm"] is not None:
         ax.axhspan(-data["rms_nm"], data["rms_nm"], color="0.9", zorder=1, linewidth=0)
     colours = wavelength_colour(w)
-    ax.scatter(w[used], r[used], s=22, c=colours[used], edgecolors="0.15", linewidths=0.6, zorder=4, label="used in fit")
+    # Each species (or label) gets a marker shape named once in a legend under the axes: a text
+    # beside every point overprints its neighbours (542.4 and 546.1 nm in a CFL) and runs off the ends.
+    names = [name for name in dict.fromkeys(data["label"]) if name]
+    unnamed = bool(names) and not all(data["label"])
+    slots = len(_RESIDUAL_MARKERS) - unnamed
+    shown = names[: slots - 1] if len(names) > slots else names
+    marker_of = {name: _RESIDUAL_MARKERS[k] for k, name in enumerate(shown)}
+    spare = iter(_RESIDUAL_MARKERS[len(shown):])
+    others = next(spare) if len(shown) < len(names) else None     # the species beyond the legend's room
+    blank = next(spare) if unnamed else "o"                        # points without a species
+    markers = np.array([marker_of.get(name, others) if name else blank for name in data["label"]])
+    for marker in dict.fromkeys(markers):
+        mine = markers == marker
+        if (mine & used).any():
+            ax.scatter(w[mine & used], r[mine & used], s=22, c=colours[mine & used], marker=marker, edgecolors="0.15",
+                       linewidths=0.6, zorder=4)
+        if (mine & ~used).any():
+            ax.scatter(w[mine & ~used], r[mine & ~used], s=22, facecolors="none", edgecolors=_SATURATED, marker=marker,
+                       linewidths=0.8, zorder=4)
+    from matplotlib.lines import Line2D
+    from matplotlib.transforms import ScaledTranslation
+
+    def key(marker, label, **style):
+        style = {"markerfacecolor": "0.72", "markeredgecolor": "0.15", "markeredgewidth": 0.6, **style}
+        return Line2D([], [], linestyle="none", marker=marker, markersize=4.5, label=label, **style)
+
+    handles = [key(marker_of[name], name) for name in shown]
+    if others is not None:
+        handles.append(key(others, f"{len(names) - len(shown)} more species"))
+    if unnamed:
+        handles.append(key(blank, "no species given"))
     if (~used).any():
-        ax.scatter(w[~used], r[~used], s=22, facecolors="none", edgecolors=_SATURATED, linewidths=0.8, marker="D",
-                   zorder=4, label="rejected")
-    for wi, ri, text in zip(w, r, data["label"]):
-        if text:
-            ax.annotate(text, (wi, ri), textcoords="offset points", xytext=(3, 3), fontsize=6, color="0.3")
+        handles.append(key("o", "rejected (open, red)", markerfacecolor="none", markeredgecolor=_SATURATED,
+                           markeredgewidth=0.8))
     limit = float(np.max(np.abs(r))) if r.size else 1.0
     ax.set_ylim(-1.35 * limit - 1e-6, 1.35 * limit + 1e-6)
     span = float(w.max() - w.min()) or 10.0
@@ -384,8 +500,11 @@ def plot_residuals(ax, residuals, *, title: str | None = None) -> bool:
     # below the axes, right-aligned on the x label's line: inside, it could cover a point or its label
     ax.annotate(text.strip(", "), xy=(1.0, 0.0), xycoords="axes fraction", xytext=(0, -15), textcoords="offset points",
                 ha="right", va="top", fontsize=7, color="0.2")
-    if (~used).any():
-        ax.legend(loc="lower right", fontsize=6.5)
+    if handles:
+        # one line under the x label, from the left (the RMS note ends the x label's own line)
+        below = ax.transAxes + ScaledTranslation(0.0, -_RESIDUAL_LEGEND_DROP_PT / 72.0, ax.figure.dpi_scale_trans)
+        ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(0.0, 0.0), bbox_transform=below, ncol=len(handles),
+                  fontsize=6.5, handletextpad=0.2, columnspacing=1.0, borderaxespad=0.0, borderpad=0.0)
     if title:
         ax.set_title(title, loc="left")
     return True
@@ -411,6 +530,8 @@ def spectrum_figure(spectra, *, lines=None, title: str | None = None, labels: Se
         _draw_spectra(ax, spectra, lines=lines, labels=labels)
         if title:
             ax.set_title(title, loc="left")
+        if lines:
+            _fit_line_labels(figure)
     return figure
 
 

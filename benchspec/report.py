@@ -31,7 +31,7 @@ from matplotlib.figure import Figure
 
 from . import __version__
 from .errors import InputError
-from .plots import STYLE, _draw_spectra, normalise_residuals, plot_residuals
+from .plots import STYLE, _draw_spectra, _fit_line_labels, normalise_residuals, plot_residuals
 from .safety import GENERAL_CAUTION, SOURCE_TYPES, cautions_for
 from .spectrum import Spectrum
 
@@ -334,6 +334,8 @@ def build_report(
             prov.extend(provenance_lines(spectrum.provenance, name=name, max_frames=6 if len(items) == 1 else 2))
         _text_block(figure, prov, x=0.06, top=0.215, width_in=0.88 * page_w, height_in=0.195 * page_h,
                     size=6.0, mono=True, heading="Provenance", shrink_to=4.5)
+        if lines:
+            _fit_line_labels(figure)  # the line labels stay inside the spectrum panel
     return figure
 
 

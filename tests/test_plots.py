@@ -147,3 +147,122 @@ def test_columns_extrapolated_past_what_a_camera_records_are_not_drawn(lamp):
     assert low >= plots.VIEW_RANGE_NM[0] and high <= plots.VIEW_RANGE_NM[1]
     assert high - low > 700  # the whole recordable range is still shown
     assert wide.wavelength_nm.min() == 60.0  # the spectrum itself is not cut
+
+
+# --------------------------------------------------------------------------- labels that can be read
+
+
+def _extents(figure, texts):
+    """Window extents (display px) of ``texts`` after the figure's layout, by matplotlib's own renderer."""
+    figure.draw_without_rendering()
+    return [t.get_window_extent() for t in texts if t.get_visible() and t.get_text()]
+
+
+def _overlapping(boxes):
+    """Pairs of boxes that share more than half a pixel in both directions."""
+    pairs = []
+    for i in range(len(boxes)):
+        for j in range(i + 1, len(boxes)):
+            a, b = boxes[i], boxes[j]
+            if min(a.x1, b.x1) - max(a.x0, b.x0) > 0.5 and min(a.y1, b.y1) - max(a.y0, b.y0) > 0.5:
+                pairs.append((i, j))
+    return pairs
+
+
+def _line_labels(ax):
+    return [t for t in ax.texts if t.get_rotation() == 90]  # the line labels stand upright
+
+
+@pytest.mark.parametrize("species, name", [("Ne", "Ne"), ("CFL-phosphor", "CFL-phosphor")])
+def test_line_labels_never_overlap_and_stay_inside_the_axes(rng, species, name):
+    # Every line of a packaged list labelled: Ne I from the NIST ASD (160 lines, many closer than a label's
+    # height) and the CFL phosphor features (common practice, no source) with long labels.
+    from benchspec import load_line_list
+
+    lines = load_line_list(species).lines
+    wavelength = np.linspace(380.0, 760.0, 1400)
+    intensity = np.full(wavelength.size, 10.0)
+    for line in lines:
+        intensity += 500.0 * np.sqrt(line.relative_intensity) * np.exp(-0.5 * ((wavelength - line.wavelength_nm) / 0.6) ** 2)
+    intensity += rng.normal(0.0, 2.0, wavelength.size)
+    spectrum = Spectrum(intensity=intensity, uncertainty=np.full(wavelength.size, 2.0), pixel=np.arange(wavelength.size, dtype=float),
+                        wavelength_nm=wavelength)
+    labels = [(line.wavelength_nm, f"{name} {line.wavelength_nm:.2f}") for line in lines]
+    figure = plots.spectrum_figure(spectrum, lines=labels)
+    ax = figure.axes[0]
+    texts = _line_labels(ax)
+    boxes = _extents(figure, texts)
+    assert len(boxes) >= min(len(lines), 12)  # a crowded axis still names a dozen lines
+    assert _overlapping(boxes) == []
+    frame = ax.get_window_extent()
+    for text, box in zip(texts, boxes):
+        assert frame.x0 <= box.x0 and box.x1 <= frame.x1 and frame.y0 <= box.y0 and box.y1 <= frame.y1, text.get_text()
+    # the strongest line is always among those named
+    strongest = max(lines, key=lambda line: line.relative_intensity)
+    assert f"{name} {strongest.wavelength_nm:.2f}" in {t.get_text() for t in texts}
+
+
+def test_label_spreading_keeps_order_and_spacing():
+    # positions closer than the spacing are moved apart as little as possible and kept in the range
+    placed = plots._spread(np.array([10.0, 10.5, 11.0, 30.0]), gap=2.0, low=0.0, high=31.0)
+    np.testing.assert_allclose(np.diff(placed)[:2], 2.0)
+    assert placed[1] == pytest.approx(10.5)  # the middle of a symmetric cluster stays put
+    assert placed[-1] == pytest.approx(30.0)
+    assert plots._spread(np.array([1.0, 2.0, 3.0]), gap=2.0, low=0.0, high=3.0) is None  # 3 labels need 4 units
+
+
+def test_residual_panel_names_each_species_once_without_overprinting(rng):
+    # A CFL's calibration lines: Hg I from the NIST ASD and the phosphor features (common practice, no
+    # source); 542.4 and 546.075 nm lie closer than a label's width, 650.0 nm ends the axis.
+    from benchspec import load_line_list
+
+    rows = [{"wavelength_nm": line.wavelength_nm, "residual_nm": float(rng.normal(0.0, 0.05)), "species": species}
+            for species in ("Hg", "CFL-phosphor") for line in load_line_list(species).lines
+            if line.relative_intensity >= 100 and 400.0 < line.wavelength_nm <= 650.0]
+    rows[-1]["used"] = False
+    figure = plots.residuals_figure(rows)
+    ax = figure.axes[0]
+    texts = list(ax.texts) + (ax.get_legend().get_texts() if ax.get_legend() else [])
+    boxes = _extents(figure, texts)
+    names = [t.get_text() for t in texts if t.get_visible() and t.get_text()]
+    assert names.count("Hg") == 1 and names.count("CFL-phosphor") == 1
+    assert _overlapping(boxes) == []
+    frame, page = ax.get_window_extent(), figure.bbox
+    for name, box in zip(names, boxes):
+        inside = frame.x0 <= box.x0 and box.x1 <= frame.x1 and frame.y0 <= box.y0 and box.y1 <= frame.y1
+        outside = box.y1 <= frame.y0 or box.y0 >= frame.y1
+        assert inside or outside, f"{name!r} crosses the edge of the axes"
+        assert page.x0 <= box.x0 and box.x1 <= page.x1 and page.y0 <= box.y0, name
+    # nor does any text stand on a data point
+    points = np.vstack([c.get_offset_transform().transform(c.get_offsets()) for c in ax.collections if len(c.get_offsets())])
+    assert len(points) == len(rows)
+    for name, box in zip(names, boxes):
+        assert not np.any((points[:, 0] > box.x0) & (points[:, 0] < box.x1) & (points[:, 1] > box.y0) & (points[:, 1] < box.y1)), name
+
+
+def test_demo_plots_carry_their_lines(tmp_path, monkeypatch):
+    # The demo's tube plots name the identified lines (species and nm), its daylight plot the dark lines.
+    from benchspec import demo_run
+
+    drawn = {}
+    original = plots.save_spectrum_plot
+
+    def recording(spectrum, path, **options):
+        drawn[path.name] = options.get("lines")
+        return original(spectrum, path, **options)
+
+    monkeypatch.setattr(plots, "save_spectrum_plot", recording)
+    assert demo_run.run_demo(tmp_path / "demo") == 0
+    assert {"tube_A.png", "tube_B.png", "tube_C.png", "daylight.png", "cfl_1.png"} <= set(drawn)
+    for name in ("tube_A.png", "tube_B.png", "tube_C.png", "daylight.png"):
+        assert (tmp_path / "demo" / name).stat().st_size > 5000
+    tube_a = [d["label"] for d in drawn["tube_A.png"]]
+    # demo_images/README.md: tube A is helium; He I 587.562 nm from the NIST ASD
+    assert tube_a and all(label.startswith("He ") for label in tube_a)
+    assert "He 587.56" in tube_a
+    assert all(drawn[name] for name in ("tube_B.png", "tube_C.png"))
+    daylight = dict((label.split()[0], wavelength) for wavelength, label in drawn["daylight.png"])
+    # Fraunhofer F is H-beta, 486.13 nm, and D the Na I pair 588.995/589.592 nm (NIST ASD air wavelengths)
+    assert daylight["F"] == pytest.approx(486.13, abs=0.5)
+    assert daylight["D2+D1"] == pytest.approx(589.3, abs=1.0)
+    assert drawn["cfl_1.png"] is None  # the other plots are as before

@@ -169,3 +169,39 @@ def test_calibration_file_layout_gives_residuals_and_verdict(tmp_path, helium):
     assert any("verdict: good" in t for t in titles)
     residual_ax = next(ax for ax in figure.axes if ax.get_ylabel() == "residual (nm)")
     assert len(residual_ax.collections[-1].get_offsets()) == len(CALIBRATION["matches"])
+
+
+def test_report_labels_neither_overprint_nor_leave_their_panels(helium, rng):
+    # A CFL calibration: Hg I lines from the NIST ASD and the phosphor features (common practice, no
+    # source; calibration/lines); 542.4 and 546.075 nm are closer than a label's width, 650.0 ends the axis.
+    from benchspec.identify import identify
+
+    matches = [{"reference_nm": line.wavelength_nm, "residual_nm": float(rng.normal(0.0, 0.05)), "species": species,
+                "used_in_fit": True}
+               for species in ("Hg", "CFL-phosphor") for line in load_line_list(species).lines
+               if line.relative_intensity >= 100 and 400.0 < line.wavelength_nm <= 650.0]
+    figure = build_report(helium, calibration={"verdict": "good", "matches": matches}, results=identify(helium))
+    figure.draw_without_rendering()
+    residual_ax = next(ax for ax in figure.axes if ax.get_ylabel() == "residual (nm)")
+    spectrum_ax = figure.axes[0]
+
+    def overlaps(a, b):
+        return min(a.x1, b.x1) - max(a.x0, b.x0) > 0.5 and min(a.y1, b.y1) - max(a.y0, b.y0) > 0.5
+
+    legend = residual_ax.get_legend()
+    texts = [t for t in list(residual_ax.texts) + (legend.get_texts() if legend else []) if t.get_text()]
+    boxes = [t.get_window_extent() for t in texts]
+    frame = residual_ax.get_window_extent()
+    for i, (text, box) in enumerate(zip(texts, boxes)):
+        assert not any(overlaps(box, other) for other in boxes[i + 1:]), text.get_text()
+        inside = frame.x0 <= box.x0 and box.x1 <= frame.x1 and frame.y0 <= box.y0 and box.y1 <= frame.y1
+        assert inside or box.y1 <= frame.y0, f"{text.get_text()!r} runs across the residual panel's edge"
+    assert [t.get_text() for t in texts].count("CFL-phosphor") == 1  # each species named once
+    # the spectrum's line labels (He I, NIST ASD) stay inside their panel and apart
+    labels = [t for t in spectrum_ax.texts if t.get_rotation() == 90]
+    assert len(labels) >= 5
+    frame = spectrum_ax.get_window_extent()
+    boxes = [t.get_window_extent() for t in labels]
+    for i, box in enumerate(boxes):
+        assert frame.x0 <= box.x0 and box.x1 <= frame.x1 and box.y1 <= frame.y1
+        assert not any(overlaps(box, other) for other in boxes[i + 1:])
