@@ -190,6 +190,59 @@ def test_demo_calibrate_identify_save(make_viewer, tmp_path, xdisplay):
     assert shot.stat().st_size > 10000
 
 
+def test_wavelength_fit_page_is_scaled_to_the_residuals_and_their_error_bars(make_viewer):
+    from matplotlib.collections import PolyCollection
+
+    viewer = make_viewer(DemoSource("cfl"))
+    _first_frame(viewer)
+    viewer.buttons["calibrate"].invoke()
+    _wait_log(viewer, "calibrated with cfl", timeout=30)
+    core = viewer.calibration.core
+    used = [m for m in core.matches if m.used_in_fit]
+
+    def sigma_nm(m):  # the line's 1-sigma as the fit weighs it: reference tolerance and centre (wavecal.MatchedLine)
+        return np.hypot(m.reference_uncertainty_nm, m.pixel_uncertainty * abs(float(core.solution.dispersion_nm_per_px(m.pixel))))
+
+    reach = max(abs(m.residual_nm) + sigma_nm(m) for m in used)
+    low, high = viewer.fit_axes.get_ylim()
+    # every residual and its error bar is inside, and the axis is not stretched far beyond them (it was
+    # +-20 nm, the solution's extrapolated uncertainty at 900 nm)
+    assert low == pytest.approx(-high) and reach <= high <= 3 * reach
+    span = (min(m.reference_nm for m in used), max(m.reference_nm for m in used))
+    x_low, x_high = viewer.fit_axes.get_xlim()
+    assert x_low < span[0] and x_high > span[1] and x_high - x_low < 1.25 * (span[1] - span[0])
+    # the fit's 1-sigma band is drawn between the outermost lines only
+    bands = [c for c in viewer.fit_axes.collections if isinstance(c, PolyCollection)]
+    assert bands
+    for band in bands:
+        x = np.concatenate([path.vertices[:, 0] for path in band.get_paths()])
+        assert span[0] - 1e-6 <= x.min() and x.max() <= span[1] + 1e-6
+
+
+def test_a_long_source_name_is_shortened_to_fit_the_header(make_viewer, tmp_path):
+    import tkinter.font as tkfont
+    from tkinter import ttk
+
+    path = tmp_path / "cfl-720p-30fps-bench-3-morning-session.avi"
+    frame = read_image(DEMO / "cfl_1.png")[::2, ::2]
+    writer = cv2.VideoWriter(str(path), cv2.VideoWriter_fourcc(*"MJPG"), 30.0, (frame.shape[1], frame.shape[0]))
+    for _ in range(6):
+        writer.write(np.ascontiguousarray(frame[..., ::-1]))
+    writer.release()
+    viewer = make_viewer(VideoSource(path, loop=True, pace=True))
+    _first_frame(viewer)
+    root, label = viewer.root, viewer.source_label
+    font = tkfont.Font(root=root, font=ttk.Style(root).lookup("Panel.TLabel", "font"))
+    _pump(root, 0.2)
+    shown = label.cget("text")
+    assert font.measure(shown) <= label.winfo_width(), (shown, label.winfo_width())  # nothing is cut off
+    assert shown.startswith("video cfl-") and shown.endswith(".avi") and "…" in shown
+    assert viewer.source_text == f"video {path.name}"
+    root.geometry("1800x900")  # room enough: the whole name
+    _wait(root, lambda: label.cget("text") == f"video {path.name}", what="the whole name")
+    assert font.measure(label.cget("text")) <= label.winfo_width()
+
+
 def test_each_source_type_shows_its_cautions_before_capture(make_viewer):
     source = DemoSource("cfl_1")
     viewer = make_viewer(source, confirm=None)

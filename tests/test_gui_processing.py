@@ -75,3 +75,58 @@ def test_marks_on_the_wavelength_axis_are_named_after_the_lamp_lines(cfl_frames)
 def test_the_live_finder_marks_nothing_on_a_dark_spectrum():
     assert processing._core_marks(np.arange(640.0), False, np.zeros(640), np.zeros(640, bool), np.ones(640),
                                   quick=True) == ()
+
+
+def _display_line(geometry, row, scale, columns):
+    """Where rectified ``row`` crosses display ``columns`` (display px, pixel centres on integers),
+    through the geometry's own mapping: what a smooth line must follow."""
+    u = np.linspace(-0.5, geometry.n_columns - 0.5, 4000)
+    x, y = geometry.frame_coordinates(u, np.full(u.size, float(row)))
+    return np.interp(columns, (x + 0.5) * scale - 0.5, (y + 0.5) * scale - 0.5)
+
+
+def test_the_overlay_is_drawn_smooth_along_the_geometry_and_apart_from_the_background_shade(cfl_frames):
+    processor = BenchProcessor()
+    result = processor.live(cfl_frames[0], display_size=(320, 180))
+    plain, scale = processing.prepare_display(cfl_frames[0], (320, 180))
+    assert scale == result.display_scale
+    drawn = result.display_image.astype(float) - plain.astype(float)
+    assert not np.shares_memory(result.display_image, cfl_frames[0])
+    geometry = processor.geometry
+    columns = np.arange(16, 300)
+    # Aperture edges (teal: green above red, unlike the amber outline and the violet shade) follow the
+    # band's rotation and curvature: the teal centroid of each column within a quarter pixel of the
+    # mapped edge. A line drawn in whole-pixel steps is up to half a pixel off (common practice, no source).
+    teal = np.clip(drawn[..., 1] - drawn[..., 0], 0.0, None)
+    for row in (geometry.aperture_rows[0] - 0.5, geometry.aperture_rows[1] - 0.5):
+        expected = _display_line(geometry, row, scale, columns)
+        errors = []
+        for column, centre in zip(columns, expected):
+            rows = np.arange(int(np.floor(centre)) - 2, int(np.ceil(centre)) + 3)
+            weight = teal[rows, column]
+            assert weight.sum() > 30, (column, centre)  # the edge is drawn in this column
+            errors.append(np.sum(weight * rows) / weight.sum() - centre)
+        assert np.max(np.abs(errors)) < 0.25, np.max(np.abs(errors))
+    # The background strips are a violet shade (blue above green), the band outline an amber line (red
+    # above blue) just outside the band: in no column does the outline's line sit on the shade.
+    violet = drawn[..., 2] - drawn[..., 1]
+    amber = drawn[..., 0] - drawn[..., 2]
+    shade_rows = violet > 8.0
+    assert shade_rows[:, columns].sum(axis=0).min() >= 2 * 8  # two strips, each several pixels tall
+    for edge in (-0.5, geometry.n_rows - 0.5):
+        expected = _display_line(geometry, edge, scale, columns)
+        for column, centre in zip(columns, expected):
+            rows = np.arange(int(round(centre)) - 3, int(round(centre)) + 4)
+            peak = rows[int(np.argmax(amber[rows, column]))]
+            assert amber[peak, column] > 60, (column, centre)
+            assert not shade_rows[peak, column], (column, peak)
+
+
+def test_residual_plot_limits_follow_the_residuals_and_their_error_bars():
+    # two lines used, one rejected far off: the y range is the used lines' largest |residual| + 1-sigma
+    rows = ({"wavelength_nm": 404.656, "residual_nm": 0.004, "uncertainty_nm": 0.02, "used": True},
+            {"wavelength_nm": 546.075, "residual_nm": -0.010, "uncertainty_nm": 0.03, "used": True},
+            {"wavelength_nm": 611.6, "residual_nm": 3.0, "uncertainty_nm": 0.5, "used": False})
+    (low, high), reach = processing.residual_plot_limits(rows)
+    assert reach == pytest.approx(0.040)
+    assert low < 404.656 and high > 611.6 and high - low < 1.2 * (611.6 - 404.656)

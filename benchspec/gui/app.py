@@ -47,7 +47,7 @@ from ..safety import GENERAL_CAUTION, SOURCE_TYPES, cautions_for
 from ..sources import FrameSource, open_source
 from .canvas import ThreadedCanvas
 from .colours import PALETTE, wavelength_hex
-from .processing import BenchProcessor, CalibrationSummary, IdentificationSummary, LiveResult
+from .processing import BenchProcessor, CalibrationSummary, IdentificationSummary, LiveResult, residual_plot_limits
 from .worker import Event, LiveWorker
 
 __all__ = ["Viewer", "SHORTCUTS", "ViewerStats"]
@@ -133,6 +133,18 @@ def _demo_scenes() -> list[str]:
         if path.suffix.lower() in IMAGE_SUFFIXES and _scene_name(path) not in names:
             names.append(_scene_name(path))
     return names
+
+
+def elide_middle(text: str, width_px: float, measure: Callable[[str], float]) -> str:
+    """``text`` shortened in the middle with an ellipsis until ``measure(text) <= width_px``."""
+    if measure(text) <= width_px:
+        return text
+    for keep in range(len(text) - 1, 0, -1):
+        head, tail = text[: (keep + 1) // 2], text[len(text) - keep // 2:] if keep // 2 else ""
+        candidate = f"{head}…{tail}"
+        if measure(candidate) <= width_px:
+            return candidate
+    return "…"
 
 
 def _model_words(summary) -> str:
@@ -294,7 +306,7 @@ class Viewer:
         header.columnconfigure(2, weight=1)
         ttk.Label(header, text="benchspec bench viewer", style="Title.TLabel",
                   background=p["panel"]).grid(row=0, column=0, padx=(0, 12))
-        self.open_button = ttk.Menubutton(header, text="Source ▾")
+        self.open_button = ttk.Menubutton(header, text="Source ▾", width=8)
         menu = tk.Menu(self.open_button, tearoff=False)
         menu.add_command(label="Demo bench (desk CFL)", command=lambda: self.open_spec("demo"))
         scenes = tk.Menu(menu, tearoff=False)
@@ -307,8 +319,13 @@ class Viewer:
         self.open_button["menu"] = menu
         self.open_menu = menu
         self.open_button.grid(row=0, column=1)
-        self.source_label = ttk.Label(header, text="no source", style="Panel.TLabel")
-        self.source_label.grid(row=0, column=2, sticky="w", padx=8)
+        # The label takes the room left in the header and shows as much of the name as fits
+        # (shortened in the middle, so the kind and the file's ending stay); width=1 keeps a long
+        # name from claiming room the buttons need.
+        self.source_text = "no source"
+        self.source_label = ttk.Label(header, text=self.source_text, style="Panel.TLabel", width=1)
+        self.source_label.grid(row=0, column=2, sticky="ew", padx=8)
+        self.source_label.bind("<Configure>", lambda event: self._fit_source_label())
         self.light_button = ttk.Button(header, text="Light: not chosen", command=self.show_light_chooser)
         self.light_button.grid(row=0, column=3, padx=6)
         self.save_button = ttk.Menubutton(header, text="Save ▾", width=7)
@@ -323,7 +340,7 @@ class Viewer:
         self.save_button.grid(row=0, column=4, padx=(0, 6))
         self.buttons["keys"] = ttk.Button(header, text="Keys", width=5, command=self.show_keys)
         self.buttons["keys"].grid(row=0, column=5, padx=(0, 6))
-        self.rate_label = ttk.Label(header, text="", style="Panel.TLabel", width=22, anchor="e")
+        self.rate_label = ttk.Label(header, text="", style="Panel.TLabel", width=19, anchor="e")
         self.rate_label.grid(row=0, column=6, sticky="e")
 
         # -- body: views on the left, result pages on the right
@@ -363,7 +380,7 @@ class Viewer:
         self.spec_figure = Figure(figsize=(6.4, 3.0), dpi=100, facecolor=p["paper"])
         self.spec_axes = self.spec_figure.add_subplot(1, 1, 1)
         self._style_axes(self.spec_axes)
-        self.spec_figure.subplots_adjust(left=0.1, right=0.99, top=0.95, bottom=0.16)
+        self.spec_figure.subplots_adjust(left=0.12, right=0.975, top=0.95, bottom=0.16)  # room for the y label and the last x tick
         self.spec_canvas = ThreadedCanvas(self.spec_figure, spec_box, self._plot_executor)
         self.spec_canvas.on_rendered = self._on_spec_rendered
         self.spec_canvas.get_tk_widget().configure(height=260, highlightthickness=0)
@@ -444,6 +461,25 @@ class Viewer:
         self._clip_text = ""
 
         self._build_light_chooser()
+
+    def _set_source_text(self, text: str) -> None:
+        self.source_text = text
+        self._fit_source_label()
+
+    def _fit_source_label(self) -> None:
+        """Show the source's name in the width the header leaves it (shortened in the middle)."""
+        import tkinter.font as tkfont
+
+        label = self.source_label
+        width = label.winfo_width()
+        if width <= 1:  # not laid out yet: the <Configure> that follows fits it
+            label.configure(text=self.source_text)
+            return
+        font = getattr(self, "_source_font", None)
+        if font is None:
+            font = self._source_font = tkfont.Font(
+                root=self.root, font=ttk.Style(self.root).lookup("Panel.TLabel", "font") or "TkDefaultFont")
+        label.configure(text=elide_middle(self.source_text, width - 2, font.measure))
 
     def _on_root_resize(self, event) -> None:
         if event.widget is self.root:
@@ -622,7 +658,7 @@ class Viewer:
         self._stop_worker()
         info = source.info
         short = f"{info.kind} {Path(info.name.split(' (')[0]).name}"
-        self.source_label.configure(text=short[:28])
+        self._set_source_text(short)
         self.report(f"source: {info.describe()}")
         for note in info.notes:
             self.report(note, level="warning")
@@ -758,13 +794,13 @@ class Viewer:
             kept = len(self.held_frames) or (1 if self.last_frame_image is not None else 0)
             self.report(f"source lost: {event.message}", level="error")
             self.frame_canvas.itemconfigure(self._frame_text, text="SOURCE LOST — last frame kept; open another source")
-            self.source_label.configure(text=self.source_label.cget("text") + " — lost")
+            self._set_source_text(self.source_text + " — lost")
             if kept:
                 self.report(f"{kept} frame(s) stay available for calibrate, identify and save")
             return
         if event.kind == "ended":
             self.report(event.message, level="warning")
-            self.source_label.configure(text=self.source_label.cget("text") + " — ended")
+            self._set_source_text(self.source_text + " — ended")
             return
         if event.kind == "job":
             handler = getattr(self, f"_done_{event.name}", None)
@@ -819,24 +855,16 @@ class Viewer:
         offset_x = max(0, (self._display_size[0] - width) // 2)
         offset_y = max(0, (self._display_size[1] - height) // 2)
         canvas.coords(self._frame_image_item, offset_x, offset_y)
-        key = (id(result.overlay), result.display_scale, offset_x, offset_y)
+        # The overlay is drawn into the image on the worker thread (processing.paint_overlay:
+        # antialiased, through the geometry's mapping); only its legend lives here.
+        key = result.overlay is not None
         if key == self._overlay_key:
             return
         self._overlay_key = key
-        canvas.delete("overlay")
-        overlay = result.overlay
-        if overlay is None:
+        if result.overlay is None:
             self.frame_legend.configure(text="no band found")
             return
-        s = result.display_scale
-        styles = (("band", overlay.band, PALETTE["band"], ()), ("aperture", overlay.aperture, PALETTE["aperture"], (6, 3)),
-                  ("background", overlay.background, PALETTE["background"], (2, 3)))
-        for _name, lines, colour, dash in styles:
-            for poly in lines:
-                coords = (np.asarray(poly) * s + (offset_x, offset_y)).ravel().tolist()
-                if len(coords) >= 4:
-                    canvas.create_line(*coords, fill=colour, width=1.5, dash=dash, tags="overlay")
-        self.frame_legend.configure(text="amber: band   teal: aperture   violet: background rows")
+        self.frame_legend.configure(text="amber: band   teal: aperture   violet shade: background rows")
 
     def _on_spec_rendered(self) -> None:
         """A full render is on screen: keep it as the background and draw the newest trace on it."""
@@ -1204,17 +1232,36 @@ class Viewer:
         ax.clear()
         self._style_axes(ax)
         ax.axhline(0, color=PALETTE["muted"], lw=0.8)
-        if summary.uncertainty_nm.size:
-            ax.fill_between(summary.fit_wavelength_nm, -summary.uncertainty_nm, summary.uncertainty_nm,
-                            color=PALETTE["accent_light"], lw=0, label="1σ of the fit")
-        xs = [r["wavelength_nm"] for r in used]
-        ys = [r["residual_nm"] for r in used]
-        ax.scatter(xs, ys, s=18, c=[wavelength_hex(x) for x in xs], edgecolors=PALETTE["ink"], linewidths=0.6,
-                   zorder=3)
+        (x_low, x_high), reach = residual_plot_limits(summary.rows)
+        xs = np.array([r["wavelength_nm"] for r in used], dtype=float)
+        ys = np.array([r["residual_nm"] for r in used], dtype=float)
+        errors = np.array([r.get("uncertainty_nm", 0.0) for r in used], dtype=float)
+        if xs.size and summary.uncertainty_nm.size:
+            # the fit's 1-sigma between the outermost lines; beyond them it is extrapolated
+            inside = (summary.fit_wavelength_nm >= xs.min()) & (summary.fit_wavelength_nm <= xs.max())
+            if np.count_nonzero(inside) >= 2:
+                ax.fill_between(summary.fit_wavelength_nm[inside], -summary.uncertainty_nm[inside],
+                                summary.uncertainty_nm[inside], color=PALETTE["accent_light"], lw=0,
+                                label="1σ of the fit")
+        if xs.size:
+            ax.errorbar(xs, ys, yerr=errors, fmt="none", ecolor=PALETTE["muted"], elinewidth=0.8, capsize=1.5,
+                        zorder=2)
+            ax.scatter(xs, ys, s=18, c=[wavelength_hex(x) for x in xs], edgecolors=PALETTE["ink"], linewidths=0.6,
+                       zorder=3)
+        top = 1.2 * reach
         out = [r for r in summary.rows if not r.get("used", True)]
-        if out:
-            ax.scatter([r["wavelength_nm"] for r in out], [r["residual_nm"] for r in out], s=18, marker="x",
+        if out:  # rejected lines; one far off is drawn at the edge, pointing the way it lies
+            rx = np.array([r["wavelength_nm"] for r in out], dtype=float)
+            ry = np.array([r["residual_nm"] for r in out], dtype=float)
+            near = np.abs(ry) <= top
+            ax.scatter(rx[near], ry[near], s=18, marker="x", color=PALETTE["warning"], zorder=3)
+            edge = 0.93 * top
+            ax.scatter(rx[~near & (ry > 0)], np.full(np.count_nonzero(~near & (ry > 0)), edge), s=22, marker="^",
                        color=PALETTE["warning"], zorder=3)
+            ax.scatter(rx[~near & (ry < 0)], np.full(np.count_nonzero(~near & (ry < 0)), -edge), s=22, marker="v",
+                       color=PALETTE["warning"], zorder=3)
+        ax.set_xlim(x_low, x_high)
+        ax.set_ylim(-top, top)
         ax.set_xlabel("wavelength (nm)", fontsize=8)
         ax.set_ylabel("residual (nm)", fontsize=8)
         self.fit_canvas.draw_idle()
@@ -1360,7 +1407,7 @@ class Viewer:
         path = self._ask("Save the plot", "spectrum.png", [("PNG", "*.png"), ("SVG", "*.svg"), ("PDF", "*.pdf")])
         if path is None:
             return
-        title = f"benchspec bench viewer: {self.source_label.cget('text')}"  # read on the Tk thread
+        title = f"benchspec bench viewer: {self.source_text}"  # read on the Tk thread
         self._run("save_plot", lambda processor=self.processor: processor.save_plot(result, path, title=title),
                   message=f"saving the plot to {path}…")
 

@@ -32,6 +32,7 @@ from ..spectrum import Spectrum
 
 __all__ = [
     "BandOverlay",
+    "residual_plot_limits",
     "LiveLine",
     "LiveResult",
     "CalibrationSummary",
@@ -46,11 +47,12 @@ __all__ = [
 
 @dataclass(frozen=True)
 class BandOverlay:
-    """What to draw on the frame: polylines in frame pixel coordinates (x, y)."""
+    """What to draw on the frame: polylines in frame pixel coordinates (x, y), through the
+    geometry's own mapping (rotation, tilt and curvature), along pixel edges."""
 
-    band: tuple[np.ndarray, ...]          # outline(s) of the band
+    band: tuple[np.ndarray, ...]          # closed outline of the band (drawn just outside it)
     aperture: tuple[np.ndarray, ...]      # top and bottom edge of the extraction aperture
-    background: tuple[np.ndarray, ...]    # edges of the background strips
+    background: tuple[np.ndarray, ...]    # closed outlines of the background strips (shaded)
     description: str = ""
 
 
@@ -200,6 +202,7 @@ class BenchProcessor:
         self.geometry_shape: tuple[int, ...] | None = None
         self.extractor = None                # benchspec.extract.LiveExtractor for that geometry
         self.overlay: BandOverlay | None = None
+        self._layer: tuple[tuple, _OverlayLayer] | None = None   # the overlay painted for one display size
         self.dark = None                     # benchspec.frames.StackedFrame of the dark
         self.calibration: CalibrationSummary | None = None
         self.calibration_file = None         # benchspec.calfile.Calibration behind it
@@ -337,6 +340,7 @@ class BenchProcessor:
                     variance = variance[seen]
             lines = self._live_lines(frame_index, axis, is_wl, intensity, saturated, variance)
             overlay = self.overlay
+            display = self._paint_overlay(display, image, scale)
             note = ""
             if self.dark is not None and self._dark_for(image.shape) is None:
                 note = "the dark was taken at another resolution and is not applied; take a new dark"
@@ -344,6 +348,24 @@ class BenchProcessor:
                           int(np.count_nonzero(saturated)), peak, lines, overlay,
                           held=stacked is not None, frames_in_stack=stacked.n_frames if stacked is not None else 1,
                           note=note)
+
+    def _paint_overlay(self, display: np.ndarray, image: np.ndarray, scale: float) -> np.ndarray:
+        """The frame view with the band, aperture and background strips drawn in (antialiased).
+
+        The overlay is rendered once per geometry and display size; each frame is then one blend
+        over the pixels it covers. Called with the lock held.
+        """
+        geometry = self.geometry
+        if geometry is None or self.overlay is None:
+            return display
+        if np.shares_memory(display, image):
+            display = display.copy()  # the frame itself is never drawn on
+        key = (id(geometry), display.shape[:2], round(float(scale), 9))
+        if self._layer is None or self._layer[0] != key:
+            overlay = _overlay_of(geometry, outline_margin_px=OVERLAY_OUTLINE_MARGIN_PX / max(scale, 1e-6))
+            self._layer = (key, _overlay_layer(overlay, display.shape[:2], scale))
+        paint_overlay(display, self._layer[1])
+        return display
 
     def _live_lines(self, frame_index, axis, is_wl, intensity, saturated, variance=None) -> tuple[LiveLine, ...]:
         """Line marks of the spectrum shown.
@@ -644,8 +666,14 @@ def _within(spectrum: Spectrum, low_nm: float, high_nm: float) -> Spectrum:
 
 
 def _calibration_summary(result, *, lamp: str, frames_used: int, message: str = "") -> CalibrationSummary:
+    # each line's 1-sigma in nm, as the fit weighs it: its reference's tolerance and its centre's
+    # uncertainty (floor included) through the local dispersion
+    dispersion = np.abs(np.atleast_1d(result.solution.dispersion_nm_per_px(
+        np.array([m.pixel for m in result.matches], dtype=float)))) if result.matches else np.zeros(0)
     rows = tuple({"pixel": m.pixel, "wavelength_nm": m.reference_nm, "species": m.species,
-                  "residual_nm": m.residual_nm, "used": m.used_in_fit} for m in result.matches)
+                  "residual_nm": m.residual_nm, "used": m.used_in_fit,
+                  "uncertainty_nm": float(np.hypot(m.reference_uncertainty_nm, m.pixel_uncertainty * d))}
+                 for m, d in zip(result.matches, dispersion))
     low, high = result.solution.pixel_range
     grid = np.linspace(low, high, 400)
     seen = (result.wavelength_nm(grid) >= _VIEW_RANGE_NM[0]) & (result.wavelength_nm(grid) <= _VIEW_RANGE_NM[1])
@@ -669,21 +697,117 @@ def _identification_summary(result) -> IdentificationSummary:
 # --------------------------------------------------------------------------- drawing helpers
 
 
-def _overlay_of(geometry) -> BandOverlay:
-    """Frame-coordinate polylines of the band's edges, aperture and background rows."""
-    columns = np.linspace(0, geometry.n_columns - 1, 24)
+def residual_plot_limits(rows) -> tuple[tuple[float, float], float]:
+    """The wavelength-fit plot's x range (nm) and y half-range (nm).
 
-    def row_line(row: float) -> np.ndarray:
-        x, y = geometry.frame_coordinates(columns, np.full(columns.shape, float(row)))
+    x: the matched lines' span with a margin; y: the largest residual plus its 1-sigma among the
+    lines used in the fit (the solution's extrapolated uncertainty beyond the lines, tens of nm at
+    the ends of a wide sensor, would flatten every residual onto zero). Rejected lines beyond that
+    are drawn at the edge.
+    """
+    used = [r for r in rows if r.get("used", True)] or list(rows)
+    if not used:
+        return (_VIEW_RANGE_NM[0], _VIEW_RANGE_NM[1]), 1.0
+    wavelengths = np.array([r["wavelength_nm"] for r in rows], dtype=float)
+    low, high = float(wavelengths.min()), float(wavelengths.max())
+    pad = 0.06 * (high - low) if high > low else 5.0
+    reach = max(abs(float(r["residual_nm"])) + float(r.get("uncertainty_nm", 0.0) or 0.0) for r in used)
+    return (low - pad, high + pad), max(reach, 1e-4)
+
+
+def _overlay_of(geometry, *, outline_margin_px: float = 0.0) -> BandOverlay:
+    """Frame-coordinate polylines of the band's outline, aperture edges and background strips.
+
+    Row ``r`` covers ``r - 0.5 .. r + 0.5``, so each edge is drawn between rows; the outline stands
+    ``outline_margin_px`` (frame px) outside the band, clear of the background strips at its edges.
+    """
+    columns = np.linspace(-0.5, geometry.n_columns - 0.5, 64)
+
+    def row_line(row: float, cols: np.ndarray = columns) -> np.ndarray:
+        x, y = geometry.frame_coordinates(cols, np.full(cols.shape, float(row)))
         return np.column_stack([x, y])
 
-    top, bottom = row_line(0), row_line(geometry.n_rows - 1)
-    outline = np.vstack([top, bottom[::-1], top[:1]])
+    def outline(first: float, last: float, cols: np.ndarray = columns) -> np.ndarray:
+        # along the top edge, down the right end, back along the bottom, up the left end
+        ends = np.linspace(first, last, 9)
+        right = np.column_stack(geometry.frame_coordinates(np.full(ends.shape, cols[-1]), ends))
+        left = np.column_stack(geometry.frame_coordinates(np.full(ends.shape, cols[0]), ends[::-1]))
+        return np.vstack([row_line(first, cols), right[1:-1], row_line(last, cols)[::-1], left[1:-1]])
+
+    m = float(outline_margin_px)
+    band = outline(-0.5 - m, geometry.n_rows - 0.5 + m,
+                   np.linspace(-0.5 - m, geometry.n_columns - 0.5 + m, columns.size))
     a0, a1 = geometry.aperture_rows
-    background = tuple(row_line(r) for pair in geometry.background_rows for r in (pair[0], pair[1] - 1))
+    background = tuple(outline(r0 - 0.5, r1 - 0.5) for r0, r1 in geometry.background_rows if r1 > r0)
     curvature = "curvature measured" if geometry.curvature_known else "curvature unknown"
-    return BandOverlay(band=(outline,), aperture=(row_line(a0), row_line(a1 - 1)), background=background,
+    return BandOverlay(band=(band,), aperture=(row_line(a0 - 0.5), row_line(a1 - 0.5)), background=background,
                        description=f"band at {geometry.rotation_deg:+.2f} deg, {curvature}")
+
+
+#: The overlay's look on the frame view: colour (RGB 0-255) and opacity of each part. Background strips
+#: are a translucent shade (an area), the band outline and the aperture edges thin antialiased lines.
+OVERLAY_STYLE = {
+    "band": ((0xF2, 0xC1, 0x4E), 1.0),
+    "aperture": ((0x7F, 0xD3, 0xC8), 1.0),
+    "background": ((0xC0, 0x8F, 0xD8), 0.32),
+}
+#: How far (display px) the band outline stands outside the band.
+OVERLAY_OUTLINE_MARGIN_PX = 2.0
+
+
+@dataclass(frozen=True)
+class _OverlayLayer:
+    """The overlay rendered once for one display size: where it covers the frame view and how.
+
+    ``index`` are flat pixel indices, ``keep`` (1 - opacity) and ``add`` (premultiplied colour),
+    both in 1/256 steps, so that painting a frame is one integer blend over those pixels only.
+    """
+
+    shape: tuple[int, int]
+    index: np.ndarray
+    keep: np.ndarray
+    add: np.ndarray
+
+
+def _display_points(poly: np.ndarray, scale: float) -> np.ndarray:
+    """Frame (x, y) -> display pixel coordinates in 1/16 px (cv2's ``shift=4``); pixel centres on integers."""
+    return np.round(((np.asarray(poly, dtype=float) + 0.5) * scale - 0.5) * 16.0).astype(np.int32).reshape(-1, 1, 2)
+
+
+def _overlay_layer(overlay: BandOverlay, shape: tuple[int, int], scale: float) -> _OverlayLayer:
+    import cv2
+
+    height, width = shape
+    colour = np.zeros((height, width, 3), np.float32)   # premultiplied
+    alpha = np.zeros((height, width), np.float32)
+
+    def over(mask: np.ndarray, rgb, opacity: float) -> None:
+        a = mask.astype(np.float32) * (opacity / 255.0)
+        colour[:] = colour * (1.0 - a[..., None]) + np.asarray(rgb, np.float32) * a[..., None]
+        alpha[:] = a + alpha * (1.0 - a)
+
+    rgb, opacity = OVERLAY_STYLE["background"]
+    for strip in overlay.background:
+        mask = np.zeros((height, width), np.uint8)
+        cv2.fillPoly(mask, [_display_points(strip, scale)], 255, lineType=cv2.LINE_AA, shift=4)
+        over(mask, rgb, opacity)
+    for name, closed in (("band", True), ("aperture", False)):
+        rgb, opacity = OVERLAY_STYLE[name]
+        mask = np.zeros((height, width), np.uint8)
+        cv2.polylines(mask, [_display_points(poly, scale) for poly in getattr(overlay, name)], closed, 255,
+                      thickness=1, lineType=cv2.LINE_AA, shift=4)
+        over(mask, rgb, opacity)
+    index = np.flatnonzero(alpha.ravel() > 1.0 / 512)
+    keep = np.round((1.0 - alpha.ravel()[index]) * 256.0).astype(np.uint32)
+    add = np.round(colour.reshape(-1, 3)[index] * 256.0).astype(np.uint32)
+    return _OverlayLayer((height, width), index, keep[:, None], add)
+
+
+def paint_overlay(display: np.ndarray, layer: _OverlayLayer) -> None:
+    """Blend the overlay into ``display`` (uint8 RGB of the layer's size) in place."""
+    flat = display.reshape(-1, 3)
+    pixels = flat[layer.index].astype(np.uint32)
+    flat[layer.index] = np.minimum((pixels * layer.keep + layer.add) >> 8, 255).astype(np.uint8)
 
 
 def _core_marks(axis, is_wl, intensity, saturated, variance, *, max_marks: int = 14,
