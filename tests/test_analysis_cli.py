@@ -61,6 +61,47 @@ def test_rydberg_on_a_lamp_without_hydrogen(capsys, files):
     assert len([l for l in err.splitlines() if "error" in l]) == 1
 
 
+def test_rydberg_refuses_a_helium_spectrum_and_writes_nothing(capsys, tmp_path, rng):
+    # He I on an invented bench, CFL-calibrated; its wavelengths from calibration/lines/He.csv (NIST ASD)
+    from test_analysis_rydberg import helium_spectrum
+
+    path = tmp_path / "tube_A.csv"
+    write_spectrum(helium_spectrum(rng, nm_per_px=0.5), path)
+    plot = tmp_path / "balmer.png"
+    code, out, err = run(capsys, "rydberg", str(path), "--json", "--plot", str(plot))
+    assert code == 2 and out == "" and not plot.exists()
+    errors = [l for l in err.splitlines() if "error" in l]
+    assert len(errors) == 1 and "Traceback" not in err
+    assert "no usable Balmer series" in errors[0] and "check the tube is hydrogen" in errors[0]
+
+
+def test_rydberg_caution_is_the_practicals_tube_not_a_claim_about_the_input(capsys, files):
+    # The Balmer practical uses a hydrogen discharge tube (kV supply): its caution shows, worded as the
+    # practical's source, even for a spectrum that is plainly not a tube's.
+    code, _, err = run(capsys, "rydberg", files["led"])
+    assert code == 2
+    assert "caution (gas-discharge tube, the hydrogen source of this practical): Tube power supplies" in err
+
+
+def test_metrics_caution_follows_the_source(capsys, files, tmp_path):
+    # Laser caution (IEC 60825-1) for one narrow line, told or not; the LED one (IEC 62471) otherwise.
+    code, _, err = run(capsys, "metrics", files["laser"])  # FWHM 1.2 nm, far below any LED's
+    assert code == 0 and "caution (laser, inferred" in err and "IEC 62471" not in err
+    code, _, err = run(capsys, "metrics", files["laser"], "--laser", "dpss-green")
+    assert code == 0 and "caution (laser)" in err
+    code, _, err = run(capsys, "metrics", files["led"])  # FWHM 16.5 nm
+    assert code == 0 and "IEC 62471" in err and "caution (laser" not in err
+    # what the spectrum was recorded as comes first
+    from benchspec.io import read_spectrum
+
+    led = read_spectrum(files["led"])
+    told = tmp_path / "told.csv"
+    write_spectrum(as_spectrum(led.wavelength_nm, led.intensity, uncertainty=led.uncertainty,
+                               provenance={"source_type": "halogen"}), told)
+    code, _, err = run(capsys, "metrics", str(told))
+    assert code == 0 and "caution (halogen or incandescent lamp, as recorded with the spectrum)" in err
+
+
 def test_metrics_json_keys_and_nulls(capsys, files, tmp_path):
     code, out, _ = run(capsys, "metrics", files["led"], "--json", "--plot", str(tmp_path / "led.png"))
     assert code == 0

@@ -2,8 +2,9 @@
 
 Each Balmer line n -> 2 obeys 1/lambda_vac = R_H (1/4 - 1/n^2). The lines are
 found near their expected places, fitted (Gaussian on a linear
-background), converted from air to vacuum (Edlén 1966), and R_H is the
-weighted least-squares slope through the origin.
+background), converted from air to vacuum (Edlén 1966), checked to form one
+Balmer series (:func:`assign_balmer_series`), and R_H is the weighted
+least-squares slope through the origin.
 """
 
 from __future__ import annotations
@@ -23,6 +24,9 @@ __all__ = [
     "BalmerLine",
     "RydbergResult",
     "BALMER_NAMES",
+    "SERIES_REJECTION_PROBABILITY",
+    "BOHR_MODEL_RELATIVE",
+    "assign_balmer_series",
     "calibration_covariance_nm2",
     "codata_rydberg_hydrogen_per_m",
     "expected_balmer_air_nm",
@@ -33,6 +37,18 @@ __all__ = [
 
 #: Names of the Balmer lines by upper level n (n -> 2).
 BALMER_NAMES = {3: "H-alpha", 4: "H-beta", 5: "H-gamma", 6: "H-delta", 7: "H-epsilon", 8: "H-zeta", 9: "H-eta"}
+
+#: How often a real Balmer series, with honest 1-sigma, may lose a line or be refused by
+#: :func:`assign_balmer_series`: a line is left out beyond the two-sided 99.9% range (3.29 sigma)
+#: of its Bohr wavelength or of the other lines' prediction, and the series is refused when its
+#: chi^2 lies beyond the 99.9th percentile. A significance level, chosen (common practice, no
+#: source); the distances themselves are in units of the lines' own stated 1-sigma.
+SERIES_REJECTION_PROBABILITY = 1e-3
+
+#: The Bohr formula with CODATA R_H places the real Balmer lines (fine structure, Lamb shift)
+#: within this fraction of their wavelength: the NIST ASD air wavelengths of H-alpha..H9
+#: (calibration/lines/H.csv) differ from it by 0.6e-5 to 1.42e-5 (H-alpha, 0.009 nm).
+BOHR_MODEL_RELATIVE = 1.5e-5
 
 
 def codata_rydberg_hydrogen_per_m() -> tuple[float, float]:
@@ -109,6 +125,10 @@ class RydbergResult:
     lines: tuple[BalmerLine, ...]
     air_to_vacuum: str = "Edlén 1966"
     budget: dict = field(default_factory=dict)
+    #: Lines found near a Balmer wavelength but left out of the fit by :func:`assign_balmer_series`
+    #: (too far from their Balmer wavelength or from where the other lines put them);
+    #: ``residual_nm`` is against the fitted R_H.
+    left_out: tuple[BalmerLine, ...] = ()
 
 
 _BUDGET_INCLUDES = (
@@ -202,7 +222,20 @@ def find_balmer_lines(
                 calibration_uncertainty_nm=cal_sigma,
             )
         )
-    return tuple(found)
+    return _one_level_per_line(found)
+
+
+def _one_level_per_line(found) -> tuple[BalmerLine, ...]:
+    """One spectral line is one Balmer line: of levels whose fits landed on the same line (centres
+    closer than the wider fit's FWHM, where two lines are not resolved), keep the one nearest its
+    expected wavelength in units of its own 1-sigma. Wide search windows on a coarse spectrum
+    otherwise give a single line of another gas (He I 388.87 nm) to H-epsilon, H-zeta and H-eta."""
+    kept: list[BalmerLine] = []
+    distance = lambda l: abs(l.air_wavelength_nm - l.expected_air_wavelength_nm) / l.wavelength_uncertainty_nm
+    for line in sorted(found, key=distance):
+        if all(abs(line.air_wavelength_nm - k.air_wavelength_nm) >= max(line.fwhm_nm, k.fwhm_nm) for k in kept):
+            kept.append(line)
+    return tuple(sorted(kept, key=lambda l: l.upper_level))
 
 
 def fit_rydberg(lines, *, calibration_covariance_nm2=None) -> RydbergResult:
@@ -295,6 +328,145 @@ def fit_rydberg(lines, *, calibration_covariance_nm2=None) -> RydbergResult:
         lines=with_residuals,
         budget=budget,
     )
+
+
+def _series_arrays(lines):
+    """x = 1/4 - 1/n^2, y = 1/lambda_vac (1/m) and y's 1-sigma of independent lines."""
+    n = np.array([l.upper_level for l in lines], dtype=np.float64)
+    lam_m = np.array([l.vacuum_wavelength_nm for l in lines]) * 1e-9
+    lam_err_m = np.array([l.wavelength_uncertainty_nm for l in lines]) * 1e-9
+    if np.any(lam_err_m <= 0) or not np.all(np.isfinite(lam_err_m)):
+        raise InputError("every Balmer line needs a positive, finite wavelength uncertainty")
+    return 0.25 - 1.0 / n**2, 1.0 / lam_m, lam_err_m / lam_m**2
+
+
+def _leave_one_out(lines):
+    """Each line against the R_H fitted to the others: pulls and predicted air wavelengths (nm).
+
+    The pull is (y_i - R_(-i) x_i) / sqrt(sigma_i^2 + x_i^2 var R_(-i)): the line's own 1-sigma
+    (centre and calibration) with the other lines' prediction's 1-sigma, in quadrature.
+    """
+    x, y, y_err = _series_arrays(lines)
+    w = 1.0 / y_err**2
+    sxx, sxy = float(np.sum(w * x * x)), float(np.sum(w * x * y))
+    others_sxx = sxx - w * x * x
+    others_r = (sxy - w * x * y) / others_sxx
+    pulls = (y - others_r * x) / np.sqrt(y_err**2 + x * x / others_sxx)
+    predicted_air_nm = vacuum_to_air_nm(1e9 / (others_r * x))
+    return pulls, np.atleast_1d(np.asarray(predicted_air_nm, dtype=float))
+
+
+def _series_chi2(lines) -> float:
+    x, y, y_err = _series_arrays(lines)
+    w = 1.0 / y_err**2
+    r = float(np.sum(w * x * y) / np.sum(w * x * x))
+    return float(np.sum(w * (y - r * x) ** 2))
+
+
+def _bohr_sigma_nm(line) -> float:
+    """1-sigma of a line's distance from its Bohr wavelength: its own, with the model's offset."""
+    return float(np.hypot(line.wavelength_uncertainty_nm, BOHR_MODEL_RELATIVE * line.expected_air_wavelength_nm))
+
+
+def _bohr_pull(line) -> float:
+    return (line.air_wavelength_nm - line.expected_air_wavelength_nm) / _bohr_sigma_nm(line)
+
+
+def _off_bohr(line) -> str:
+    """Where a line lies from its Bohr-model wavelength (CODATA R_H), in nm and in its 1-sigma."""
+    offset = line.air_wavelength_nm - line.expected_air_wavelength_nm
+    return (f"{line.name} at {line.air_wavelength_nm:.2f} nm lies {offset:+.2f} nm = {abs(_bohr_pull(line)):.1f} sigma "
+            f"from {line.expected_air_wavelength_nm:.2f} nm")
+
+
+_WHAT_TO_TRY = ("check the tube is hydrogen (`benchspec identify SPEC.csv` names the gas) and the calibration covers "
+                "these wavelengths")
+
+
+def assign_balmer_series(lines, *, rejection_probability: float = SERIES_REJECTION_PROBABILITY):
+    """Keep the lines that form one Balmer series; refuse a set that does not.
+
+    Three tests, each at the two-sided ``1 - rejection_probability`` level (3.29 sigma, or the
+    99.9th percentile of chi^2, by default), each in units of the lines' own stated 1-sigma
+    (line centre and calibration, ``wavelength_uncertainty_nm``):
+
+    1. each line within that range of its Balmer wavelength from CODATA R_H (Bohr model, with
+       :data:`BOHR_MODEL_RELATIVE` for the real lines' fine structure); lines beyond it are left
+       out: helium's 412.1 nm line is not H-delta (410.2 nm) when the calibration is good to 0.1 nm;
+    2. with three or more lines, each within that range of the wavelength the other lines' R_H
+       predicts for it (its 1-sigma and the prediction's in quadrature); the worst line beyond it
+       is left out and the test repeated (two lines that disagree cannot say which one is wrong);
+    3. the remaining lines' chi^2 about their fitted series below its percentile.
+
+    A line that passes the first test can be a few sigma off, so a calibration that is off at
+    every line still gives an R_H, and ``RydbergResult.difference_sigma`` says how far it is from
+    CODATA; a line beyond it is not taken as that Balmer line.
+
+    Parameters
+    ----------
+    lines : sequence of BalmerLine
+        Candidate lines with positive uncertainties, e.g. from :func:`find_balmer_lines`.
+    rejection_probability : float
+        Probability in (0, 0.5) with which a line of a real series with honest 1-sigma fails each
+        test, and with which such a series is refused.
+
+    Returns
+    -------
+    kept, left_out : tuple of BalmerLine, tuple of BalmerLine
+        The lines of the series (by increasing n) and those left out, each warned about.
+
+    Raises
+    ------
+    AnalysisError
+        Fewer than two lines left, or lines that do not form one Balmer series: a helium, neon or
+        mercury spectrum has lines a few nm from some Balmer wavelengths, not a series.
+    """
+    if not 0 < rejection_probability < 0.5:
+        raise InputError(f"`rejection_probability` must be in (0, 0.5), was {rejection_probability}")
+    candidates = sorted(lines, key=lambda l: l.upper_level)
+    _series_arrays(candidates)  # uncertainties checked before any arithmetic
+    limit = float(stats.norm.isf(rejection_probability / 2))
+    kept = [l for l in candidates if abs(_bohr_pull(l)) <= limit]
+    off = [l for l in candidates if abs(_bohr_pull(l)) > limit]
+    if len(kept) < 2:
+        names = ", ".join(l.name for l in kept) or "none"
+        why = ""
+        if off:
+            worst = max(off, key=lambda l: abs(_bohr_pull(l)))
+            why = (f"{_off_bohr(worst)}, beyond {limit:.2f} sigma of its Bohr wavelength (CODATA R_H)"
+                   + (f", and {len(off) - 1} more line(s) too" if len(off) > 1 else "") + "; ")
+        raise AnalysisError(
+            f"no usable Balmer series: {why}{len(kept)} line(s) left at Balmer wavelengths ({names}), need at least 2; "
+            + _WHAT_TO_TRY
+        )
+    for line in off:
+        warn_degraded(f"{_off_bohr(line)}, beyond {limit:.2f} sigma of its Bohr wavelength (CODATA R_H); "
+                      "not taken as that Balmer line - a blend or another gas's line nearby")
+    left_out = list(off)
+    while len(kept) >= 3:
+        pulls, predicted = _leave_one_out(kept)
+        worst = int(np.argmax(np.abs(pulls)))
+        if abs(pulls[worst]) <= limit:
+            break
+        line = kept.pop(worst)
+        left_out.append(line)
+        warn_degraded(
+            f"{line.name} at {line.air_wavelength_nm:.2f} nm lies {abs(pulls[worst]):.1f} sigma from {predicted[worst]:.2f} nm, "
+            f"where the other Balmer lines put it (limit {limit:.2f} sigma); left out of the fit - a blend or another "
+            "gas's line near the Balmer wavelength"
+        )
+    chi2 = _series_chi2(kept)
+    dof = len(kept) - 1
+    ceiling = float(stats.chi2.isf(rejection_probability, dof))
+    if chi2 > ceiling:
+        worst = max(kept, key=lambda l: abs(_bohr_pull(l)))
+        found = ", ".join(f"{l.name} {l.air_wavelength_nm:.2f}" for l in kept)
+        raise AnalysisError(
+            f"no usable Balmer series: the lines at Balmer wavelengths ({found} nm) do not fit one series within their "
+            f"uncertainties (chi^2 = {chi2:.1f} for {dof} dof, beyond its {100 * (1 - rejection_probability):g}th percentile "
+            f"{ceiling:.1f}); {_off_bohr(worst)}; " + _WHAT_TO_TRY
+        )
+    return tuple(kept), tuple(sorted(left_out, key=lambda l: l.upper_level))
 
 
 def _checked_covariance(covariance, lines) -> np.ndarray:
@@ -395,10 +567,14 @@ def rydberg_from_spectrum(spectrum: Spectrum, *, window_nm: float | None = None,
         error is carried with its covariance between the lines (their errors come from one
         solution, so they are correlated); without it, as independent per-line 1-sigma.
 
+    The lines found are assigned to the series by :func:`assign_balmer_series`: lines far from
+    where the others put them are left out (``RydbergResult.left_out``, with a warning), and a set
+    that is not one Balmer series is refused.
+
     Raises
     ------
     AnalysisError
-        When fewer than two Balmer lines are found.
+        When fewer than two Balmer lines are found, or the lines found do not form one Balmer series.
     InputError
         ``calibration`` is not the one that gave the spectrum its wavelengths.
     """
@@ -410,10 +586,11 @@ def rydberg_from_spectrum(spectrum: Spectrum, *, window_nm: float | None = None,
         raise AnalysisError(
             f"no usable Balmer series: found {len(lines)} Balmer line(s) ({names}) in {wl[0]:.0f}-{wl[-1]:.0f} nm, "
             f"need at least 2 of H-alpha 656.3, H-beta 486.1, H-gamma 434.0, H-delta 410.2 nm; "
-            "check the tube is hydrogen, the spectrum is calibrated and the lines are above the noise"
+            "check the tube is hydrogen (`benchspec identify SPEC.csv`), the spectrum is calibrated and the lines are above the noise"
         )
+    lines, left_out = assign_balmer_series(lines)
     if calibration is None:
-        return fit_rydberg(lines)
+        return _with_left_out(fit_rydberg(lines), left_out)
     solution = _solution_of(calibration)
     wl = spectrum.wavelength_nm
     own = solution.wavelength_nm(spectrum.pixel)
@@ -423,4 +600,16 @@ def rydberg_from_spectrum(spectrum: Spectrum, *, window_nm: float | None = None,
                          f"{mismatch:.3g} nm); pass the spectrum's own calibration, or none")
     order = np.argsort(wl)
     pixels = np.interp([l.air_wavelength_nm for l in lines], wl[order], np.asarray(spectrum.pixel, dtype=float)[order])
-    return fit_rydberg(lines, calibration_covariance_nm2=calibration_covariance_nm2(solution, pixels))
+    return _with_left_out(fit_rydberg(lines, calibration_covariance_nm2=calibration_covariance_nm2(solution, pixels)), left_out)
+
+
+def _with_left_out(result: RydbergResult, left_out) -> RydbergResult:
+    """The result with the left-out lines, each with its residual against the fitted R_H."""
+    if not left_out:
+        return result
+    residuals = tuple(
+        dataclasses.replace(l, residual_nm=float(l.vacuum_wavelength_nm
+                                                  - 1e9 / (result.rydberg_per_m * (0.25 - 1.0 / l.upper_level**2))))
+        for l in left_out
+    )
+    return dataclasses.replace(result, left_out=residuals)

@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import AnalysisError, FileFormatError, InputError
-from ..safety import cautions_for
+from ..safety import SOURCE_TYPES, cautions_for
 
 _FRAME_EXTENSIONS = (".png", ".jpg", ".jpeg", ".tif", ".tiff", ".bmp", ".webp", ".avi", ".mp4", ".mov", ".mkv")
 
@@ -27,10 +27,47 @@ _FRAME_EXTENSIONS = (".png", ".jpg", ".jpeg", ".tif", ".tiff", ".bmp", ".webp", 
 # --------------------------------------------------------------------------- helpers
 
 
-def _caution(source_type: str) -> None:
-    """The first caution for the source, on stderr (stdout stays clean for --json)."""
+def _caution(source_type: str, *, because: str | None = None) -> None:
+    """The first caution for the source, on stderr (stdout stays clean for --json).
+
+    ``because`` says why this source's caution shows when the command was not told the source.
+    """
     title, items = cautions_for(source_type)
-    print(f"caution ({title.lower()}): {items[0]} See `benchspec cautions {source_type}`.", file=sys.stderr)
+    label = title if title[:2].isupper() else title[0].lower() + title[1:]  # "LED or UV LED" keeps its capitals
+    label = label if because is None else f"{label}, {because}"
+    print(f"caution ({label}): {items[0]} See `benchspec cautions {source_type}`.", file=sys.stderr)
+
+
+def _told_source_type(spectrum) -> str | None:
+    """The source type the spectrum was recorded with (provenance ``source_type``), if a known one."""
+    told = (getattr(spectrum, "provenance", None) or {}).get("source_type")
+    told = told.strip().lower() if isinstance(told, str) else None
+    return told if told in SOURCE_TYPES else None
+
+
+#: A line narrower than this is laser-like: the narrowest visible and UV LEDs are about 10 nm
+#: wide (FWHM, from memory of LED data sheets), a laser's line is as narrow as the spectrometer
+#: shows it (about 1-3 nm on a webcam bench). A coarser bench shows a laser under 3 samples wide,
+#: which ``SourceMetrics.fwhm_resolution_limited`` flags.
+_LASER_LIKE_FWHM_NM = 5.0
+
+
+def _laser_like(metrics, spectrum) -> str | None:
+    """Why the spectrum looks like a laser's (one narrow line holding most of the light), or None."""
+    if metrics.is_white or metrics.fwhm_nm is None:
+        return None
+    narrow = metrics.fwhm_resolution_limited or metrics.fwhm_nm < _LASER_LIKE_FWHM_NM
+    if not narrow:
+        return None
+    # most of the light in that one line: of the samples above 2% of the peak (the centroid's),
+    # those within 2 FWHM of the peak hold the majority of the signal
+    wl = spectrum.wavelength_nm
+    y = np.where(np.isfinite(spectrum.intensity), spectrum.intensity, 0.0)
+    above = y > 0.02 * float(np.max(y))
+    near = above & (np.abs(wl - metrics.peak_nm) <= 2 * max(metrics.fwhm_nm, float(np.median(np.abs(np.diff(wl))))))
+    if float(y[near].sum()) <= 0.5 * float(y[above].sum()):
+        return None
+    return f"inferred: the spectrum is one line {metrics.fwhm_nm:.1f} nm wide"
 
 
 def _read_spectrum_file(path: str):
@@ -506,8 +543,13 @@ def _run_rydberg(args) -> int:
     _check_outputs(args)
     from ..analysis.rydberg import rydberg_from_spectrum
 
-    _caution("discharge")
     spectrum = _load_inputs(args.spectrum, calibration=args.calibration, what="spectrum")
+    told = _told_source_type(spectrum)
+    # The practical uses a hydrogen tube; the caution says so rather than that this spectrum is one.
+    if told:
+        _caution(told, because="as recorded with the spectrum")
+    else:
+        _caution("discharge", because="the hydrogen source of this practical")
     # The lines are fitted as independent even when the calibration is at hand: generalised least
     # squares on the calibration's covariance (with its model-averaging term) gives R_H values as close
     # to CODATA as the independent fit (RMS 980 against 973 /m over 47 redrawn virtual-bench setups,
@@ -529,6 +571,9 @@ def _run_rydberg(args) -> int:
     for line in result.lines:
         print(f"  {line.name:10s} n={line.upper_level}->2  air {line.air_wavelength_nm:.3f} +- {line.wavelength_uncertainty_nm:.3f} nm  "
               f"vacuum {line.vacuum_wavelength_nm:.3f} nm  residual {line.residual_nm:+.3f} nm")
+    for line in result.left_out:
+        print(f"  {line.name:10s} left out: air {line.air_wavelength_nm:.3f} +- {line.wavelength_uncertainty_nm:.3f} nm, "
+              f"{line.residual_nm:+.3f} nm from the fitted series (not taken as {line.name})")
     return 0
 
 
@@ -560,13 +605,29 @@ def _run_metrics(args) -> int:
         nominal, tolerance, label = laser.nominal_nm, laser.tolerance_nm, laser.name
     if (nominal is None) != (tolerance is None):
         raise InputError("--nominal and --tolerance go together: give the laser's nominal wavelength and its tolerance")
-    _caution("laser" if nominal is not None else "led")
     spectrum = _load_inputs(args.spectrum, calibration=args.calibration, what="spectrum")
+    # The caution follows what the command is told (--laser/--nominal, the spectrum's recorded
+    # source type), else what the spectrum shows: one narrow line is a laser's, anything else gets the LED one.
+    told = "laser" if nominal is not None else _told_source_type(spectrum)
+    if told:
+        _caution(told, because=None if nominal is not None else "as recorded with the spectrum")
     if args.response:
         spectrum = apply_response(spectrum, load_response(args.response))
     white = True if args.white else (False if args.coloured else None)
-    metrics = source_metrics(spectrum, white=white, cct_method=args.cct_method, laser_nominal_nm=nominal,
-                             laser_tolerance_nm=tolerance, laser_label=label)
+    try:
+        metrics = source_metrics(spectrum, white=white, cct_method=args.cct_method, laser_nominal_nm=nominal,
+                                 laser_tolerance_nm=tolerance, laser_label=label)
+    except AnalysisError:
+        if not told:
+            print("caution: lasers and bright LEDs can harm the eyes; see `benchspec cautions laser` and "
+                  "`benchspec cautions led`.", file=sys.stderr)
+        raise
+    if not told:
+        laser_like = _laser_like(metrics, spectrum)
+        if laser_like:
+            _caution("laser", because=laser_like)
+        else:
+            _caution("led", because="the default: no single narrow line, as a laser would give")
     if args.plot:
         from ..analysis.plots import metrics_figure
 
