@@ -73,7 +73,11 @@ def register(subparsers) -> None:
     ext.add_argument("--force", action="store_true", help="overwrite existing output files")
     ext.set_defaults(handler=_extract)
 
-    lines = subparsers.add_parser("lines", help="find and measure the lines of a spectrum file")
+    lines = subparsers.add_parser(
+        "lines", help="find and measure the lines of a spectrum file",
+        description="Find the emission lines (or, with --absorption, the dips against a fitted continuum) of a "
+                    "spectrum file and print each line's centre with its 1-sigma, FWHM, peak, area and SNR, "
+                    "flagging blended, saturated and extrapolated lines.")
     lines.add_argument("spectrum", metavar="SPEC.csv", help="a spectrum file (benchspec CSV, JSON or JCAMP-DX)")
     lines.add_argument("--absorption", action="store_true", help="find dips against a fitted continuum")
     lines.add_argument("--min-snr", type=float, default=5.0, help="detection threshold (default 5)")
