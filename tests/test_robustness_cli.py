@@ -355,3 +355,21 @@ def test_a_reader_that_stops_early_is_not_a_bug(tmp_path):
     reader.stdin.close()
     assert "internal error" not in writer.stderr and "Traceback" not in writer.stderr, writer.stderr
     assert writer.returncode == 0
+
+
+@pytest.mark.parametrize("argv, fragment", [
+    (["cautions", "sun"], "invalid choice: 'sun'"),
+    (["calibrate", "frame.png"], "the following arguments are required: --out"),
+    (["nosuch"], "invalid choice: 'nosuch'"),
+    (["extract", "frame.png", "--calibration"], "expected one argument"),
+])
+def test_usage_errors_are_one_line_with_exit_2(capsys, argv, fragment):
+    """A mistyped command line gets one line (what is wrong, and where the usage is), exit code 2.
+
+    argparse printed its whole usage block first (3-12 lines); the brief asks for one line.
+    """
+    with pytest.raises(SystemExit) as exit_info:
+        main(argv)
+    assert exit_info.value.code == 2
+    err = capsys.readouterr().err
+    assert len(err.strip().splitlines()) == 1 and fragment in err and "--help" in err

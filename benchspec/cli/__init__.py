@@ -33,8 +33,19 @@ COMMAND_MODULES = [
 ]
 
 
+class _OneLineErrors(argparse.ArgumentParser):
+    """An argument parser whose usage errors are one line (what is wrong, where to look), exit code 2.
+
+    argparse prints the whole usage block before its message; the block is what ``--help``
+    shows, so the line names it instead. Sub-parsers inherit the class.
+    """
+
+    def error(self, message: str):  # noqa: D401 - argparse's hook
+        self.exit(2, f"{self.prog}: error: {message}; see `{self.prog} --help`\n")
+
+
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _OneLineErrors(
         prog="benchspec",
         description="Calibrated spectra from a webcam and a diffraction grating.",
         epilog="Safety: every light source has cautions; see `benchspec cautions`. "
