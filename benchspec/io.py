@@ -217,7 +217,7 @@ def atomic_output(path, *, force: bool = False, binary: bool = False, sync: bool
     if path.is_dir():
         raise ExportError(f"{path} is a folder; give a file name to write")
     if not force and (path.exists() or path.is_symlink()):
-        raise ExportError(f"{path} already exists; pass --force (force=True) to overwrite it, or choose another name")
+        raise ExportError(f"{path} already exists; pass --force to overwrite it, or choose another name")
     folder = path.parent
     if not folder.is_dir():
         raise ExportError(f"cannot write {path}: folder {folder} does not exist; create it first or choose another")
@@ -1719,7 +1719,7 @@ def write_spectrum(
         raise ExportError(f"cannot tell the format of {path}: use one of {', '.join(SPECTRUM_EXTENSIONS)}")
     _check_writable(spectrum)
     if not force and (path.exists() or path.is_symlink()):  # fail before any work
-        raise ExportError(f"{path} already exists; pass --force (force=True) to overwrite it, or choose another name")
+        raise ExportError(f"{path} already exists; pass --force to overwrite it, or choose another name")
     if extension == ".csv":
         return atomic_write_text(path, _spectrum_csv_text(spectrum), force=force, sync=sync)
     if extension == ".json":
@@ -1798,7 +1798,7 @@ class SeriesWriter:
         if _extension(path) == ".csv":  # as write_spectrum writes it, with the series' shortcuts
             _check_writable(spectrum)
             if not self.force and (path.exists() or path.is_symlink()):
-                raise ExportError(f"{path} already exists; pass --force (force=True) to overwrite it, or choose another name")
+                raise ExportError(f"{path} already exists; pass --force to overwrite it, or choose another name")
             text = _spectrum_csv_text(spectrum, cache=self._cache, value_digits=SERIES_VALUE_DIGITS)
             atomic_write_text(path, text, force=self.force, sync=False)
         else:

@@ -348,7 +348,7 @@ def write_report(path, spectra, *, force: bool = False, **options) -> Path:
     if path.suffix.lower() != ".pdf":
         raise ExportError(f"a report is a PDF: give a name ending in .pdf, not {path.name}")
     if not force and (path.exists() or path.is_symlink()):
-        raise ExportError(f"{path} already exists; pass --force (force=True) to overwrite it, or choose another name")
+        raise ExportError(f"{path} already exists; pass --force to overwrite it, or choose another name")
     figure = build_report(spectra, **options)
     items = [spectra] if isinstance(spectra, Spectrum) else list(spectra)
     return save_figure(figure, path, force=force, title=options.get("title") or "Spectrum report",

@@ -188,7 +188,7 @@ class SeriesFile:
         if path.is_dir():
             raise ExportError(f"{path} is a folder; give a file name to write")
         if not force and (path.exists() or path.is_symlink()):
-            raise ExportError(f"{path} already exists; pass --force (force=True) to overwrite it, or choose another name")
+            raise ExportError(f"{path} already exists; pass --force to overwrite it, or choose another name")
         if not path.parent.is_dir():
             raise ExportError(f"cannot write {path}: folder {path.parent} does not exist; create it first or choose another")
         self.path = path
