@@ -238,3 +238,15 @@ def test_public_names():
 
     assert all(hasattr(analysis, name) for name in analysis.__all__)
     assert len(set(analysis.__all__)) == len(analysis.__all__)
+
+
+@pytest.mark.parametrize("value, sigma, text", [
+    (0.03, 0.00039, "0.03000 +- 0.00039"),  # printed "0.03 +- 0.00039" before
+    (12345.6, 789.0, "12350 +- 790"),
+    (2.0, 1.5, "2.0 +- 1.5"),
+])
+def test_values_are_printed_to_the_decimal_place_of_their_uncertainty(value, sigma, text):
+    """The uncertainty to 2 significant digits and the value to the same decimal place (common practice, no source)."""
+    from benchspec.cli.practicals import _value_pm
+
+    assert _value_pm(value, sigma) == text

@@ -27,6 +27,21 @@ _FRAME_EXTENSIONS = (".png", ".jpg", ".jpeg", ".tif", ".tiff", ".bmp", ".webp", 
 # --------------------------------------------------------------------------- helpers
 
 
+
+def _value_pm(value: float, sigma: float) -> str:
+    """``value +- sigma`` with sigma to 2 significant digits and the value to the same decimal place."""
+    import math
+
+    if not (math.isfinite(value) and math.isfinite(sigma) and sigma > 0):
+        return f"{value:.4g} +- {sigma:.2g}"
+    decimals = 1 - math.floor(math.log10(sigma))
+    if decimals > 12 or decimals < -6:
+        return f"{value:.4g} +- {sigma:.2g}"
+    if decimals <= 0:
+        step = 10.0 ** (-decimals)
+        return f"{round(value / step) * step:.0f} +- {round(sigma / step) * step:.0f}"
+    return f"{value:.{decimals}f} +- {sigma:.{decimals}f}"
+
 def _caution(source_type: str, *, because: str | None = None) -> None:
     """The first caution for the source, on stderr (stdout stays clean for --json).
 
@@ -521,20 +536,20 @@ def _run_concentration(args) -> int:
     unit = f" {args.unit}" if args.unit else ""
     print(
         f"Beer-Lambert: A = ({fit.intercept:.4f} +- {fit.intercept_uncertainty:.4f}) + "
-        f"({fit.slope_per_concentration:.5g} +- {fit.slope_uncertainty:.2g}) c; R^2 = {fit.r_squared:.5f}; "
+        f"({_value_pm(fit.slope_per_concentration, fit.slope_uncertainty)}) c; R^2 = {fit.r_squared:.5f}; "
         f"{len(concentrations)} standards"
     )
     print(f"limit of detection (ICH, 3.3 s/slope): {fit.limit_of_detection:.3g}{unit}; "
           f"limit of quantitation (10 s/slope): {fit.limit_of_quantitation:.3g}{unit}")
     if epsilon:
-        print(f"epsilon = {epsilon['epsilon_per_concentration_per_cm']:.5g} +- {epsilon['uncertainty']:.2g} per{unit} per cm")
+        print(f"epsilon = {_value_pm(epsilon['epsilon_per_concentration_per_cm'], epsilon['uncertainty'])} per{unit} per cm")
     for u in unknowns:
         flags = []
         if u.below_limit_of_detection:
             flags.append("below the limit of detection")
         if u.outside_calibration_range:
             flags.append("outside the standards' range")
-        print(f"{u.label}: c = {u.concentration:.4g} +- {u.concentration_uncertainty:.2g}{unit} (A = {u.absorbance:.4f})"
+        print(f"{u.label}: c = {_value_pm(u.concentration, u.concentration_uncertainty)}{unit} (A = {u.absorbance:.4f})"
               + (f" [{'; '.join(flags)}]" if flags else ""))
     return 0
 
