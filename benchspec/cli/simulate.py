@@ -100,7 +100,10 @@ def _run(args) -> int:
         simulate.write_truth(truth, truth_path, force=args.force)
     geometry = truth["geometry"]
     mapping = truth["mapping"]["wavelength_nm"]
-    span = f"{mapping[0]:.0f}-{mapping[-1]:.0f} nm across the frame" if mapping else "no wavelength reaches the frame"
+    # the truth maps only the wavelengths the bench renders (300-1100 nm): a calibration's own range,
+    # extrapolated to every column, can reach further
+    span = (f"light of {mapping[0]:.0f}-{mapping[-1]:.0f} nm on the frame (the bench renders 300-1100 nm)"
+            if mapping else "no rendered wavelength reaches the frame")
     print(
         f"wrote {out}" + (f" ({args.frames} frames)" if is_video else "") + f": {bench.source.get('name', bench.source['kind'])}, "
         f"{span}, {n_lines} lines, rotation {geometry['rotation_deg']:g} deg, smile {geometry['smile_px_at_650nm']:.1f} px"
