@@ -215,3 +215,18 @@ def test_two_lines_that_disagree_are_refused():
     lines = [line_at(4, offset_sigma=3.2), line_at(5, offset_sigma=-3.2)]
     with pytest.raises(AnalysisError, match=r"do not fit one series .*chi\^2 = .* beyond its 99.9th percentile"):
         assign_balmer_series(lines)
+
+
+def test_the_viewer_lists_a_left_out_line():
+    """The Practicals page says which line the Balmer series check left out (the command did; the page did not)."""
+    import dataclasses
+
+    from benchspec.gui.practicals import describe_rydberg
+
+    lines = [line_at(3), line_at(4), line_at(5, offset_sigma=10.0), line_at(6)]
+    with pytest.warns(DegradedResultWarning):
+        kept, left_out = assign_balmer_series(lines)
+    result = dataclasses.replace(fit_rydberg(kept), left_out=left_out)
+    text = describe_rydberg(result)
+    assert "n=5" in text and "left out" in text
+    assert text.count("->2") == 3  # the three fitted lines, each once

@@ -219,6 +219,12 @@ def describe_rydberg(result) -> str:
     for line in result.lines:
         lines.append(f"  {line.name:8s} {line.upper_level}->2  {line.air_wavelength_nm:.2f} air  "
                      f"{line.vacuum_wavelength_nm:.2f} vac  {line.residual_nm:+.2f} nm")
+    for line in getattr(result, "left_out", ()):
+        if line.residual_nm is not None:
+            where = f"{line.residual_nm:+.2f} nm from the fitted series"
+        else:
+            where = f"{line.air_wavelength_nm - line.expected_air_wavelength_nm:+.2f} nm from its Balmer wavelength"
+        lines.append(f"  {line.name:8s} left out: {line.air_wavelength_nm:.2f} air is {where} (not taken as that line)")
     return "\n".join(lines)
 
 
