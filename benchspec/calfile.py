@@ -56,7 +56,8 @@ Top level (all keys required unless marked optional)::
                         null for frames passed as arrays)
     dark_frames         [{"path", "sha256"}, ...]
     settings            how the frames were turned into a spectrum: gamma, channel,
-                        stacking method, extraction method, min_snr, hint, manual pairs
+                        stacking method, extraction method, min_snr, hint, manual pairs,
+                        encoding of the frames (lossless, block-coded, video)
     reference_spectrum  intensity of the calibration spectrum per rectified column
                         (n_columns numbers), used to notice a band that moved along
                         the dispersion

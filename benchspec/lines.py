@@ -23,7 +23,8 @@ from scipy import ndimage, optimize, signal
 from .errors import InputError, LineError
 from .spectrum import Spectrum
 
-__all__ = ["Line", "LineTable", "find_lines", "find_lines_quick", "estimate_noise", "fit_continuum", "CENTRE_SYSTEMATIC_FWHM"]
+__all__ = ["Line", "LineTable", "find_lines", "find_lines_quick", "estimate_noise", "fit_continuum", "CENTRE_SYSTEMATIC_FWHM",
+           "CENTRE_SYSTEMATIC_FWHM_LOSSLESS"]
 
 _FWHM_PER_SIGMA = 2.0 * np.sqrt(2.0 * np.log(2.0))
 
@@ -38,6 +39,11 @@ _FWHM_PER_SIGMA = 2.0 * np.sqrt(2.0 * np.log(2.0))
 #: of the Gaussian fit on pixel-integrated lines is below 0.002 px for sigma >= 0.6 px, so the term
 #: stands for the resampling (frame rotation, rectification), JPEG and line-shape errors.
 CENTRE_SYSTEMATIC_FWHM = 0.01
+#: The same for lines of lossless frames (``LineTable.encoding`` "lossless": PNG, TIFF, 16-bit), where no
+#: JPEG error enters: on the accuracy benchmark's 77 line centres of PNG benches the fit's sigma alone
+#: already gives a pull RMS of 0.70 (MAD width 0.56), and with 0.01 FWHM added 0.47 (0.22). 0.002 FWHM
+#: (about 0.006 px at 3 px) keeps a term for the resampling, matching the calibration's lossless floor.
+CENTRE_SYSTEMATIC_FWHM_LOSSLESS = 0.002
 
 
 @dataclass(frozen=True)
@@ -55,7 +61,8 @@ class Line:
         1-sigma systematic error of ``centre_px`` that the fit cannot see
         (resampling, JPEG, line shape), to be added in quadrature:
         ``CENTRE_SYSTEMATIC_FWHM`` times the FWHM for :func:`find_lines`
-        (0 where it is not estimated). See :data:`CENTRE_SYSTEMATIC_FWHM`.
+        (``CENTRE_SYSTEMATIC_FWHM_LOSSLESS`` for lossless frames; 0 where it
+        is not estimated). See :data:`CENTRE_SYSTEMATIC_FWHM`.
     fwhm_px : float
         Full width at half maximum of the fitted Gaussian, in pixels.
     peak : float
@@ -128,6 +135,12 @@ class LineTable:
         How the centres were measured: ``"gaussian least squares"``
         (:func:`find_lines`) or ``"weighted log-parabola"``
         (:func:`find_lines_quick`, the live path).
+    encoding : str or None
+        How the frames behind the spectrum were stored, from its provenance
+        (``StackedFrame.settings["encoding"]``): ``"lossless"``,
+        ``"block-coded"`` (JPEG, MJPG), ``"video"``, or None when not
+        recorded. The wavelength calibration sets its systematic floor on
+        the line centres by it (see ``benchspec.wavecal``).
     """
 
     lines: tuple[Line, ...]
@@ -137,6 +150,7 @@ class LineTable:
     n_samples: int
     pixel_range: tuple[float, float]
     method: str = "gaussian least squares"
+    encoding: str | None = None
 
     def __len__(self) -> int:
         return len(self.lines)
@@ -554,7 +568,8 @@ def find_lines(
     chi-square where that exceeds 1 (so model mismatch widens it). The
     photon-noise floor is about sigma/sqrt(N) px for N detected counts.
     Each line also carries ``centre_systematic_px`` = ``CENTRE_SYSTEMATIC_FWHM``
-    (0.01) times its FWHM, the measured error the fit cannot see; add it in
+    (0.01; 0.002 for lossless frames, ``CENTRE_SYSTEMATIC_FWHM_LOSSLESS``)
+    times its FWHM, the measured error the fit cannot see; add it in
     quadrature (``Line.centre_total_uncertainty_px``) for the total 1-sigma.
     Overlapping lines (closer than 2.5 mean FWHM) are fitted jointly.
     Where a line's window holds saturated samples, each of them counts as a
@@ -615,7 +630,8 @@ def find_lines(
         significant = (np.minimum(height, prominence) >= threshold)
         peaks, prominence = peaks[significant], prominence[significant]
     if peaks.size == 0:
-        return LineTable((), kind, float(np.median(sigma)), float(min_snr), n, (float(spectrum.pixel[0]), float(spectrum.pixel[-1])))
+        return LineTable((), kind, float(np.median(sigma)), float(min_snr), n, (float(spectrum.pixel[0]), float(spectrum.pixel[-1])),
+                         encoding=frame_encoding(spectrum))
     if max_lines is not None and peaks.size > max_lines:
         keep = np.sort(np.argsort(prominence)[::-1][:max_lines])
         peaks, prominence = peaks[keep], prominence[keep]
@@ -695,9 +711,19 @@ def find_lines(
             fitted.append((float(centre), centre_sigma, float(width_sigma), float(amplitude), background, chi2,
                            bool(np.any(saturated & core)) or (clipped_group and len(group) == 1), len(group), k))
 
-    lines = _assemble(fitted, spectrum, sigma, continuum, kind, x, n, min_snr)
+    encoding = frame_encoding(spectrum)
+    systematic = CENTRE_SYSTEMATIC_FWHM_LOSSLESS if encoding == "lossless" else CENTRE_SYSTEMATIC_FWHM
+    lines = _assemble(fitted, spectrum, sigma, continuum, kind, x, n, min_snr, systematic)
     return LineTable(tuple(lines), kind, float(np.median(sigma)), float(min_snr), n,
-                     (float(spectrum.pixel[0]), float(spectrum.pixel[-1])))
+                     (float(spectrum.pixel[0]), float(spectrum.pixel[-1])), encoding=encoding)
+
+
+def frame_encoding(spectrum: Spectrum) -> str | None:
+    """How the spectrum's frames were stored, as its provenance records it (see ``LineTable.encoding``)."""
+    frames = (spectrum.provenance or {}).get("frames")
+    settings = frames.get("settings") if isinstance(frames, dict) else None
+    encoding = settings.get("encoding") if isinstance(settings, dict) else None
+    return str(encoding) if encoding is not None else None
 
 
 def _typical_fwhm(y, sigma, min_snr) -> float:
@@ -729,7 +755,7 @@ def _fit_single(x, y, sigma, saturated, peak, width, prominence, n):
             float(params[1] + params[0] * (centre - x0)), chi2, bool(np.any(saturated & core)))
 
 
-def _assemble(fitted, spectrum, sigma, continuum, kind, x, n, min_snr):
+def _assemble(fitted, spectrum, sigma, continuum, kind, x, n, min_snr, systematic_fwhm=CENTRE_SYSTEMATIC_FWHM):
     if not fitted:
         return []
     fitted = [f for f in fitted if 0 <= f[0] <= n - 1 and np.isfinite(f[1]) and f[3] > 0]
@@ -785,7 +811,7 @@ def _assemble(fitted, spectrum, sigma, continuum, kind, x, n, min_snr):
                 centre_nm=centre_nm,
                 centre_uncertainty_nm=sigma_nm,
                 fwhm_nm=fwhm_nm,
-                centre_systematic_px=float(CENTRE_SYSTEMATIC_FWHM * this_fwhm * abs(step)),
+                centre_systematic_px=float(systematic_fwhm * this_fwhm * abs(step)),
             )
         )
     return lines

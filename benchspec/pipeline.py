@@ -295,6 +295,8 @@ def calibrate_frames(
         "pairs": [{"pixel": p.pixel, "wavelength_nm": p.wavelength_nm, "tolerance_nm": p.tolerance_nm} for p in pairs],
         "lamps": lamps,
         "n_frames": stacked.n_frames,
+        # lossless or block-coded: it sets the systematic floor on the line centres (benchspec.wavecal)
+        "encoding": stacked.settings.get("encoding"),
     }
     return Calibration(
         geometry=geometry,

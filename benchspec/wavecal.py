@@ -105,8 +105,20 @@ SOLUTION_MODELS = ("polynomial", "grating")
 #: Names (and units) of the grating model's coefficients, in order.
 GRATING_PARAMETERS = ("A_nm", "theta_rad", "x0_px", "f_px")
 
-# Systematic floor added to every line centre (JPEG, demosaicing, model), px (common practice, no source).
+# Systematic floor added to every line centre (JPEG, demosaicing, model), px (common practice, no source):
+# for block-coded (JPEG, MJPG) and video frames, and line tables that do not say how theirs were stored.
 _CENTRE_FLOOR_PX = 0.03
+# The floor for lines from lossless frames (PNG, TIFF, 16-bit; LineTable.encoding "lossless"): resampling
+# and the line model only. Measured on the practicals benchmark's redrawn setups (19 PNG of 48, Rydberg
+# pull width; an honest sigma gives about 1): 0.47 with the 0.03 px floor, 0.79 with 0.01, 0.96 with
+# 0.004; JPEG setups 0.96 with 0.03 and 0.77 with 0.05. On the accuracy benchmark the line centres of
+# PNG benches already pull 0.70 RMS on their statistical sigma alone (RGGB mosaic: 1.03).
+_CENTRE_FLOOR_LOSSLESS_PX = 0.005
+
+
+def _centre_floor_px(table: LineTable) -> float:
+    """The systematic floor on the line centres of ``table``, by how its frames were stored."""
+    return _CENTRE_FLOOR_LOSSLESS_PX if getattr(table, "encoding", None) == "lossless" else _CENTRE_FLOOR_PX
 # A feature is used in the fit only if its own wavelength uncertainty is below this many pixels.
 _FEATURE_FIT_LIMIT_PX = 0.75
 # While matching, a polynomial is only an approximation of the true mapping: each line's
@@ -628,11 +640,11 @@ def _peaks_from_table(table: LineTable, lamp_index: int = 0, kind: str = "emissi
     # fraction of its width, far beyond the fit's own uncertainty (common practice, no source).
     clipped_blend = np.array([l.saturated and l.blended for l in keep], dtype=bool)
     arr = lambda name: np.array([getattr(l, name) for l in keep], dtype=float)
+    floor = _centre_floor_px(table)
     return _Peaks(
         pixel=arr("centre_px"),
-        sigma=np.where(clipped_blend, np.maximum(np.hypot(arr("centre_uncertainty_px"), _CENTRE_FLOOR_PX),
-                                                 0.3 * arr("fwhm_px")),
-                       np.hypot(arr("centre_uncertainty_px"), _CENTRE_FLOOR_PX)),
+        sigma=np.where(clipped_blend, np.maximum(np.hypot(arr("centre_uncertainty_px"), floor), 0.3 * arr("fwhm_px")),
+                       np.hypot(arr("centre_uncertainty_px"), floor)),
         amplitude=arr("peak"),
         fwhm=arr("fwhm_px"),
         snr=arr("snr"),
@@ -1783,12 +1795,20 @@ def calibrate_lines(
     lamp_obj = _as_lamp(lamp)
     peaks = _peaks_from_table(lines, kind=lamp_obj.kind)
     pixel_range = (min(lines.pixel_range), max(lines.pixel_range))
-    result = _calibrate_peaks(peaks, [lamp_obj], pixel_range=pixel_range, d_range=d_range, pairs=tuple(pairs),
-                              max_order=max_order, suggest_lamps=suggest_lamps)
-    if pairs:
+    def check_pairs():
         _check_pairs_against_lines(pairs, lambda: _calibrate_peaks(
             peaks, [lamp_obj], pixel_range=pixel_range, d_range=d_range, pairs=(), max_order=max_order,
             suggest_lamps=False), lamp_label=f"lamp {lamp_obj.name!r}")
+
+    try:
+        result = _calibrate_peaks(peaks, [lamp_obj], pixel_range=pixel_range, d_range=d_range, pairs=tuple(pairs),
+                                  max_order=max_order, suggest_lamps=suggest_lamps)
+    except CalibrationError:
+        if pairs:  # a pair the lines contradict is the likelier cause, and the more useful message
+            check_pairs()
+        raise
+    if pairs:
+        check_pairs()
     return result
 
 
