@@ -720,10 +720,15 @@ def find_lines(
 
 def frame_encoding(spectrum: Spectrum) -> str | None:
     """How the spectrum's frames were stored, as its provenance records it (see ``LineTable.encoding``)."""
-    frames = (spectrum.provenance or {}).get("frames")
-    settings = frames.get("settings") if isinstance(frames, dict) else None
-    encoding = settings.get("encoding") if isinstance(settings, dict) else None
-    return str(encoding) if encoding is not None else None
+    provenance = spectrum.provenance or {}
+    frames = provenance.get("frames")
+    # a stack's extraction keeps the stack's settings under "frames"; a spectrum written by
+    # extract_frames (and read back from its CSV) has them in its own "settings"
+    for settings in (frames.get("settings") if isinstance(frames, dict) else None, provenance.get("settings")):
+        encoding = settings.get("encoding") if isinstance(settings, dict) else None
+        if encoding is not None:
+            return str(encoding)
+    return None
 
 
 def _typical_fwhm(y, sigma, min_snr) -> float:

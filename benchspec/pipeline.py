@@ -30,7 +30,7 @@ import numpy as np
 from .calfile import Calibration, read_calibration, write_calibration
 from .errors import CalibrationError, DegradedResultWarning, FrameError, InputError
 from .extract import NoiseModel, estimate_noise_model, extract_stack
-from .frames import StackedFrame, expand_sources, file_sha256, iter_frames, load_stack, stack_frames
+from .frames import StackedFrame, _is_video, expand_sources, file_sha256, iter_frames, load_stack, stack_frames
 from .geometry import measure_band_shift, measure_geometry, refit_curvature_grating
 from .lines import LineTable, find_lines
 from .refdata import load_lamp
@@ -561,7 +561,8 @@ def extract_frames(
             frames=[r for r in records if r["path"]] or [{"path": None, "description": "frames passed as arrays", "sha256": None}],
             dark_frames=[r for r in dark_records if r["path"]],
             calibration=cal_record,
-            settings=dict(run_settings, gamma_resolved=stacked.settings.get("gamma"), n_frames=stacked.n_frames),
+            settings=dict(run_settings, gamma_resolved=stacked.settings.get("gamma"), n_frames=stacked.n_frames,
+                          encoding=stacked.settings.get("encoding")),
             extra={"band_check": band},
         )
         return apply_calibration(spectrum.with_(provenance=provenance), calibration)
@@ -686,6 +687,7 @@ def _iter_extract(frames, calibration, *, dark, extraction, band_check_every, in
     extractor = None
     band: dict = {}
     gamma_resolved = None
+    encoding = None
     axis = None  # the calibrated axis, the same for every frame: computed on the first
     for series_index, (path, index, frame, bgr, prepared) in enumerate(sources):
         label = f"{path or 'array'} frame {index}"
@@ -695,6 +697,9 @@ def _iter_extract(frames, calibration, *, dark, extraction, band_check_every, in
             _check_frame_size(stacked.shape, calibration, cal_path, label)
             band = _check_band(stacked.image, calibration, label)
             gamma_resolved = stacked.settings.get("gamma")
+            encoding = stacked.settings.get("encoding")
+            if encoding == "lossless" and path is not None and _is_video(Path(path)):
+                encoding = "video"  # lossy, whatever its block edges show (see frames.load_stack)
             noise = estimate_noise_model(stacked, geometry=calibration.geometry)
             preparer = FramePreparer(gamma=gamma, channel=channel, dark=None if dark_stack is None else dark_stack.image)
             preparer_bgr = FramePreparer(gamma=gamma, channel_weights=tuple(reversed(preparer.weights)),
@@ -722,7 +727,7 @@ def _iter_extract(frames, calibration, *, dark, extraction, band_check_every, in
                 frames=[{"path": None if path is None else str(path), "frame_index": index, "sha256": None}],
                 dark_frames=[r for r in dark_records if r["path"]],
                 calibration=cal_record,
-                settings=dict(run_settings, gamma_resolved=gamma_resolved, n_frames=1),
+                settings=dict(run_settings, gamma_resolved=gamma_resolved, n_frames=1, encoding=encoding),
                 extra={"band_check": band, "time_series_index": series_index},
             )
             signal_record = base["frames"][0]

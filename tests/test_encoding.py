@@ -93,3 +93,23 @@ def test_find_lines_carries_the_frames_encoding(bench_frame):
         stacked = frames.stack_frames([simulate.as_written(bench_frame, jpeg_quality=quality)])
         table = find_lines(extract_stack(stacked, measure_geometry(stacked.image)))
         assert table.encoding == expected
+
+
+def test_extracted_spectra_record_the_encoding_their_lines_carry(bench_frame):
+    """A spectrum from extract_frames states its frames' encoding (and keeps it in its CSV's provenance)."""
+    import warnings
+
+    from benchspec.lines import find_lines
+    from benchspec.pipeline import calibrate_frames, extract_frames
+
+    bench = simulate.Bench()
+    lamp = [simulate.as_written(simulate.render(bench, seed=s, source="cfl"), jpeg_quality=None) for s in (1, 2)]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        calibration = calibrate_frames(lamp, lamp="cfl")
+    assert calibration.settings["encoding"] == "lossless"
+    for quality, expected in ((None, "lossless"), (85, "block-coded")):
+        spectrum = extract_frames([simulate.as_written(simulate.render(bench, seed=5, source="he"), jpeg_quality=quality)],
+                                  calibration)
+        assert spectrum.provenance["settings"]["encoding"] == expected
+        assert find_lines(spectrum).encoding == expected
