@@ -56,8 +56,8 @@ import numpy as np
 
 from .errors import ExtractionError, InputError
 from .frames import FramePreparer, StackedFrame
-from .geometry import (INTERPOLATIONS, Geometry, RectifiedBand, check_frame_size, jacobian, rectify, remap_tables,
-                       valid_samples)
+from .geometry import (INTERPOLATIONS, Geometry, RectifiedBand, check_frame_size, derived, jacobian, rectify,
+                       remap_tables, valid_samples)
 from .spectrum import Spectrum
 
 __all__ = [
@@ -161,14 +161,23 @@ def _fit_variance_curve(levels: np.ndarray, variances: np.ndarray, weights: np.n
     return float(a), float(b)
 
 
+#: Most values :func:`_binned` takes the statistic of in one bin (an even spread over the bin's
+#: pixels). The median of 8000 chi-square(1) values is known to 2.6% (1-sigma), and the
+#: variance-curve fit weights no bin by more than 2000 values' worth anyway.
+_BIN_MAX_VALUES = 8000
+
+
 def _binned(levels: np.ndarray, values: np.ndarray, *, n_bins: int, statistic, min_count: int = 50):
     """Per level bin (log-spaced between the 0.5th and 99.9th percentiles): mean level, statistic, count.
 
     Log-spaced bins keep the few bright pixels of a line spectrum from being
     drowned by the many background pixels, so the slope (photon noise) is
-    measured over the whole range of levels.
+    measured over the whole range of levels. A bin of more than
+    :data:`_BIN_MAX_VALUES` pixels takes its mean and statistic from that
+    many of them, evenly spread; its count is the full one.
     """
-    lo, hi = np.percentile(levels, [0.5, 99.9])
+    step = max(1, levels.size // 50_000)  # percentiles from a 50 000-pixel spread: far within a bin's width
+    lo, hi = np.percentile(levels[::step], [0.5, 99.9])
     floor = max(lo, 1e-3 * max(hi, 1e-12), 1e-12)
     if hi <= floor:
         hi = floor * 2
@@ -182,11 +191,14 @@ def _binned(levels: np.ndarray, values: np.ndarray, *, n_bins: int, statistic, m
     bounds = np.searchsorted(index_sorted, np.arange(n_bins + 1))
     for k in range(n_bins):
         idx = order[bounds[k]:bounds[k + 1]]
-        if idx.size < min_count:
+        count = idx.size
+        if count < min_count:
             continue
+        if count > _BIN_MAX_VALUES:
+            idx = idx[:: -(-count // _BIN_MAX_VALUES)]
         out_l.append(float(np.mean(levels[idx])))
         out_v.append(float(statistic(values[idx])))
-        out_n.append(idx.size)
+        out_n.append(count)
     return np.array(out_l), np.array(out_v), np.array(out_n, dtype=float)
 
 
@@ -249,16 +261,9 @@ def estimate_noise_model(stacked: StackedFrame, *, geometry: Geometry | None = N
         )
     tables = remap_tables(geometry)
     band = rectify(stacked.image, geometry, saturated=stacked.saturated, tables=tables)
-    rng = np.random.default_rng(0)  # fixed seed: the estimate is deterministic
-    map_x, map_y = tables
-    x0, x1 = max(0, int(map_x.min()) - 2), min(geometry.frame_width_px, int(map_x.max()) + 3)
-    y0, y1 = max(0, int(map_y.min()) - 2), min(geometry.frame_height_px, int(map_y.max()) + 3)
-    white = np.zeros(geometry.frame_shape, np.float32)
-    white[y0:y1, x0:x1] = rng.standard_normal((y1 - y0, x1 - x0)).astype(np.float32)
-    white_band = rectify(white, geometry, tables=tables)
     rows = _interior_rows(geometry)
     d = band.image.astype(np.float64)
-    w = white_band.image.astype(np.float64)
+    w = derived(("white band", geometry), lambda: _white_band(geometry, tables))
     lag = _noise_lag(d, w, rows, band)
     second = d[rows] - 0.5 * (d[rows - lag] + d[rows + lag])
     white_second = w[rows] - 0.5 * (w[rows - lag] + w[rows + lag])
@@ -274,6 +279,17 @@ def estimate_noise_model(stacked: StackedFrame, *, geometry: Geometry | None = N
     mv = mv / (_CHI2_1_MEDIAN * scale)
     a, b = _fit_variance_curve(lv, mv, np.minimum(cnt, 2000) / np.maximum(mv, 1e-12) ** 2)
     return NoiseModel(1.0 / b if b > 0 else math.inf, math.sqrt(max(a, 0.0)), 1.0, 1, "spatial")
+
+
+def _white_band(geometry: Geometry, tables) -> np.ndarray:
+    """A seeded unit-variance white-noise frame rectified like the band (float64): what resampling does to noise."""
+    rng = np.random.default_rng(0)  # fixed seed: the estimate is deterministic
+    map_x, map_y = tables
+    x0, x1 = max(0, int(map_x.min()) - 2), min(geometry.frame_width_px, int(map_x.max()) + 3)
+    y0, y1 = max(0, int(map_y.min()) - 2), min(geometry.frame_height_px, int(map_y.max()) + 3)
+    white = np.zeros(geometry.frame_shape, np.float32)
+    white[y0:y1, x0:x1] = rng.standard_normal((y1 - y0, x1 - x0), dtype=np.float32)
+    return rectify(white, geometry, tables=tables).image.astype(np.float64)
 
 
 #: The farthest rows apart the single-frame noise estimate takes its second differences (see _noise_lag).
@@ -362,7 +378,14 @@ def resampling_variance_factor(geometry: Geometry, rows: tuple[int, int], *, tab
         *columns* are correlated by the same resampling; the factor
         describes single columns only.
     """
-    map_x, map_y = tables if tables is not None else remap_tables(geometry)
+    if tables is None:  # from the geometry alone: shared by calls with an equal geometry
+        return derived(("resampling factor", geometry, tuple(rows), interpolation),
+                       lambda: _resampling_variance_factor(remap_tables(geometry), rows, interpolation))
+    return _resampling_variance_factor(tables, rows, interpolation)
+
+
+def _resampling_variance_factor(tables, rows, interpolation) -> np.ndarray:
+    map_x, map_y = tables
     r0, r1 = rows
     n = r1 - r0
     # Every row's own term, and its overlap with the next taps-1 rows, on a subsample of at most

@@ -69,7 +69,7 @@ from __future__ import annotations
 import dataclasses
 import math
 import warnings
-from dataclasses import MISSING, asdict, dataclass
+from dataclasses import MISSING, dataclass
 from typing import Any, Mapping
 
 import cv2
@@ -85,6 +85,7 @@ __all__ = [
     "BandShift",
     "measure_geometry",
     "refit_curvature_grating",
+    "line_shift_between",
     "remap_tables",
     "jacobian",
     "valid_samples",
@@ -268,7 +269,7 @@ class Geometry:
 
     def to_dict(self) -> dict:
         """Plain JSON-ready dict (lists, floats, ints, bools, str, None)."""
-        data = asdict(self)
+        data = {name: getattr(self, name) for name in self.__dataclass_fields__}  # fields are flat: no asdict recursion
         data["aperture_rows"] = list(self.aperture_rows)
         data["background_rows"] = [list(pair) for pair in self.background_rows]
         for name in ("tilt_coefficients", "curvature_coefficients", "curvature_grating", "spatial_profile", "notes"):
@@ -1372,6 +1373,51 @@ def _measure_curvature(band, sat_band, *, centre_index, half_height, s0, min_snr
             "max_degree": max_c, "keep_c": keep_c}
 
 
+def line_shift_between(old: Geometry, new: Geometry, columns) -> tuple[np.ndarray, np.ndarray]:
+    """Where lines at rectified ``columns`` under ``old`` fall under ``new``: (shift, spread) in columns.
+
+    Both geometries must share the band's centre, rotation and rows (as
+    :func:`refit_curvature_grating` leaves them: it changes the curvature
+    only). A slit image crosses aperture row t at the band position
+    ``s + b(s) t + c(s) t²``; under ``new`` the same point lies at the column
+    u' that solves ``s' + b'(s') t + c'(s') t² = s + b(s) t + c(s) t²``
+    (two Newton steps from u' = u, exact to far below 0.001 px for the
+    curvatures a band can have). ``shift`` is the mean of ``u' - u`` over
+    the aperture rows weighted by the band's spatial profile (what an
+    extraction's centre follows when the change across the rows is small
+    against the line's width); ``spread`` is the range of ``u' - u`` over
+    the rows where the profile exceeds a tenth of its peak (the line's
+    image widens or narrows by up to that much).
+    """
+    if (old.frame_shape != new.frame_shape or old.aperture_rows != new.aperture_rows
+            or old.centre_row != new.centre_row or old.rotation_deg != new.rotation_deg
+            or old.centre_x_px != new.centre_x_px or old.centre_y_px != new.centre_y_px
+            or old.first_column_s_px != new.first_column_s_px):
+        raise InputError("the two geometries differ in more than their curvature and tilt; extract the spectrum again")
+    u = np.asarray(columns, dtype=np.float64).reshape(-1)
+    a0, a1 = old.aperture_rows
+    t = np.arange(a0, a1, dtype=np.float64) - old.centre_row
+    profile = np.asarray(old.spatial_profile, dtype=np.float64)
+    if profile.size != t.size or not profile.sum() > 0:
+        profile = np.ones(t.size)
+    weights = np.clip(profile, 0, None)
+    weights = weights / weights.sum()
+    s = old.first_column_s_px + u[:, None]
+    target = s + old.tilt_at(s) * t + old.curvature_at(s) * t * t
+    s_new = s.copy()
+    for _ in range(2):
+        value = s_new + new.tilt_at(s_new) * t + new.curvature_at(s_new) * t * t
+        slope = 1.0 + np.polynomial.polynomial.polyval(
+            s_new, np.polynomial.polynomial.polyder(np.asarray(new.tilt_coefficients, float))
+            if len(new.tilt_coefficients) > 1 else [0.0]) * t + new.curvature_slope_at(s_new) * t * t
+        s_new = s_new - (value - target) / slope
+    delta = s_new - s  # (n_columns, n_rows)
+    shift = delta @ weights
+    core = weights >= 0.1 * weights.max()
+    spread = delta[:, core].max(axis=1) - delta[:, core].min(axis=1)
+    return shift, spread
+
+
 def refit_curvature_grating(image, geometry: Geometry, *, theta_rad: float, x0_px: float, f_px: float, sign: float,
                             saturated=None, min_line_snr: float = 15.0,
                             angle_source: str = "the grating-shaped wavelength solution") -> tuple[Geometry, dict]:
@@ -1635,15 +1681,44 @@ def jacobian(geometry: Geometry) -> np.ndarray | None:
     return (1.0 + P.polyval(s, db) * t + geometry.curvature_slope_at(s) * t * t).astype(np.float32)
 
 
+#: What a geometry fixes (its remap tables, the resampling's noise factors), for the last few
+#: geometries used: a calibration rectifies the same stack two or three times and an extraction
+#: of later frames reuses its geometry. Keyed by (purpose, geometry, ...): Geometry is a frozen,
+#: hashable dataclass, so an equal geometry finds the entry. The arrays are read-only.
+_DERIVED: dict = {}
+_DERIVED_SIZE = 8
+
+
+def derived(key, compute):
+    """``compute()`` for ``key``, kept for the last :data:`_DERIVED_SIZE` keys (arrays made read-only)."""
+    try:
+        value = _DERIVED.pop(key)
+    except KeyError:
+        value = compute()
+        for item in value if isinstance(value, tuple) else (value,):
+            if isinstance(item, np.ndarray):
+                item.flags.writeable = False
+        while len(_DERIVED) >= _DERIVED_SIZE:
+            _DERIVED.pop(next(iter(_DERIVED)))
+    except TypeError:  # an unhashable key: computed every time
+        return compute()
+    _DERIVED[key] = value  # most recently used last
+    return value
+
+
 def remap_tables(geometry: Geometry) -> tuple[np.ndarray, np.ndarray]:
     """float32 ``cv2.remap`` maps (map_x, map_y), each of shape ``geometry.rectified_shape``.
 
-    ``cv2.remap(frame, map_x, map_y, cv2.INTER_LINEAR)`` gives the rectified band.
+    ``cv2.remap(frame, map_x, map_y, cv2.INTER_LINEAR)`` gives the rectified band. The
+    tables are read-only and shared by calls with equal geometries.
     """
-    u = np.arange(geometry.n_columns, dtype=np.float64)[None, :]
-    v = np.arange(geometry.n_rows, dtype=np.float64)[:, None]
-    x, y = geometry.frame_coordinates(u, v)
-    return x.astype(np.float32), y.astype(np.float32)
+    def compute():
+        u = np.arange(geometry.n_columns, dtype=np.float64)[None, :]
+        v = np.arange(geometry.n_rows, dtype=np.float64)[:, None]
+        x, y = geometry.frame_coordinates(u, v)
+        return x.astype(np.float32), y.astype(np.float32)
+
+    return derived(("remap", geometry), compute)
 
 
 INTERPOLATIONS = {"linear": cv2.INTER_LINEAR, "cubic": cv2.INTER_CUBIC}
