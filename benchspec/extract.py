@@ -751,6 +751,11 @@ def _product(a: np.ndarray, b: np.ndarray, *, out: np.ndarray | None = None) -> 
 
 
 
+#: How far (as a fraction) the variance the kept optimal-extraction weights give may move, in any column,
+#: before :class:`LiveExtractor` builds them again for the frame at hand (see its _optimal_fixed_profile).
+_KEPT_WEIGHTS_TOLERANCE = 0.25
+
+
 #: rows of the frame region linearised at a time by :meth:`LiveExtractor.process_raw_arrays`: the strip's
 #: three float32 channels (32 x 1280 x 3 x 4 bytes = 0.5 MB) stay in the cache between the look-up and the
 #: channel sum. Measured on the 2-core machine (307 x 1280 region of a 720p frame, CPU median): 0.91 ms for
@@ -927,6 +932,7 @@ class LiveExtractor:
             extra[0, a0:a1], extra[1, a0:a1] = t, t * t
             self._row_weights = np.ascontiguousarray(np.vstack([self._row_weights, extra]))
         self._weighted_sums = self._fixed_profile_sums()
+        self._kept_weights = None  # Horne's weights of an earlier frame (see _optimal_fixed_profile)
 
     def _area_polynomial(self):
         """The frame-area factor as ``J = 1 + p_j t_i + q_j t_i**2`` (t: row from the band centre), or None.
@@ -1023,6 +1029,7 @@ class LiveExtractor:
                 "floor": np.float32(max(read, 1e-12)),
                 "reduce": np.ascontiguousarray(np.stack(reduce), dtype=np.float32),
                 "numerator": np.ascontiguousarray(np.stack([profile * w for w in powers]), dtype=np.float32),
+                "design_t": np.ascontiguousarray(design.T, dtype=np.float32),
                 "variance": np.empty(shape, np.float32), "weighted": np.empty(shape, np.float32),
                 "sides": sides, "valid": self._valid_ap}
 
@@ -1034,6 +1041,19 @@ class LiveExtractor:
         benches); the estimate stays unbiased and the flux uses the exact
         area factor, so only the weights' optimality changes, by far less
         than the noise.
+
+        The weights are kept from frame to frame while the model variance
+        they were built for still holds: for every column, the variance the
+        kept weights give, ``sum W² V``, at this frame's flux and background
+        is within :data:`_KEPT_WEIGHTS_TOLERANCE` of its value at the frame
+        they were built on. A frame then costs one weighted sum over the
+        aperture; any weights give an unbiased flux, and the variance
+        reported is scaled by that ratio, so it follows the frame. Within
+        that tolerance the kept weights' variance is at most 0.3% above that of
+        weights built for the frame (worst case over read-, background- and
+        photon-limited columns; tests/test_live.py). On 300 frames of a
+        720p video the flux moved by at most 0.16 sigma (RMS 0.013) and the
+        stated sigma by under 1.1%, against weights built for every frame.
         """
         fixed = self._weighted_sums
         ap = rect[self._a0:self._a1]
@@ -1044,29 +1064,61 @@ class LiveExtractor:
             m1 = np.where(sides["neither"], 0, m1)
             m2 = np.where(sides["neither"], 0, m2)
         vector = np.stack([np.maximum(box, 0), m1, m2, np.ones_like(m1)]).astype(np.float32)
+        # sum W² V with V linear in (f, m1, m2, 1) and every term non-negative: never below the read floor
+        positive = np.maximum(vector, 0)
+        kept = self._kept_weights
+        if kept is not None:
+            spread = np.einsum("ku,ku->u", kept["w2_design"], positive)
+            ratio = spread / kept["spread"]
+            if not np.all(np.abs(ratio - 1) <= _KEPT_WEIGHTS_TOLERANCE):
+                kept = None
+        if kept is None:
+            kept = self._build_weights(fixed, vector, positive)
+            ratio = None
+        flux = (np.einsum("ij,ij->j", kept["weights"], ap) - m1 * kept["a"] - m2 * kept["b"]) / kept["denom"]
+        variance = kept["variance"] if ratio is None else kept["variance"] * ratio
+        a, b = kept["a"] / kept["denom"], kept["b"] / kept["denom"]
+        if sides is not None:  # how the flux depends on each side's own mean
+            a, b = (np.where(sides["only_first"], a + b, np.where(sides["only_second"] | sides["neither"], 0, a)),
+                    np.where(sides["only_second"], a + b, np.where(sides["only_first"] | sides["neither"], 0, b)))
+        return flux, variance + a * a * v1 + b * b * v2
+
+    def _build_weights(self, fixed, vector, positive) -> dict:
+        """Horne's weights for this frame's model variance, and the column sums they give (kept for later frames)."""
         variance = _product(fixed["design"], vector, out=fixed["variance"])  # noise model at f P + B, every pixel
         cv2.max(variance, float(fixed["floor"]), dst=variance)
         inverse = np.reciprocal(variance, out=variance)
         if fixed["valid"] is not None:  # a sample whose kernel leaves the frame gets no weight
             np.multiply(inverse, fixed["valid"], out=inverse)
         reduced = _product(fixed["reduce"], inverse)
-        weighted = np.multiply(inverse, ap, out=fixed["weighted"])
-        numerator = _product(fixed["numerator"], weighted)
         denom = reduced[0]
         poly = self._area_poly
         if poly is None:
-            a, b, numerator = reduced[1], reduced[2], numerator[0]
+            a, b = reduced[1], reduced[2]
         else:
             p, q = poly["p"], poly["q"]
             a = reduced[1] + p * reduced[2] + q * reduced[3]
             b = reduced[4] + p * reduced[5] + q * reduced[6]
-            numerator = numerator[0] + p * numerator[1] + q * numerator[2]
-        flux = (numerator - m1 * a - m2 * b) / denom
-        a, b = a / denom, b / denom
-        if sides is not None:  # how the flux depends on each side's own mean
-            a, b = (np.where(sides["only_first"], a + b, np.where(sides["only_second"] | sides["neither"], 0, a)),
-                    np.where(sides["only_second"], a + b, np.where(sides["only_first"] | sides["neither"], 0, b)))
-        return flux, self._k_aperture / denom + a * a * v1 + b * b * v2
+        if "area_profile" not in fixed:  # P J: the weight of each pixel before 1 / V
+            fixed["area_profile"] = self._area_profile(fixed)
+        weights = np.multiply(inverse, fixed["area_profile"], out=fixed["weighted"])
+        squared = np.multiply(weights, weights, out=fixed["variance"])  # 1 / V is no longer needed
+        w2_design = _product(fixed["design_t"], squared)
+        kept = {"weights": weights, "a": a, "b": b, "denom": denom,
+                "variance": self._k_aperture / denom,
+                "w2_design": w2_design, "spread": np.einsum("ku,ku->u", w2_design, positive)}
+        self._kept_weights = kept
+        return kept
+
+    def _area_profile(self, fixed) -> np.ndarray:
+        """``P J`` per aperture pixel (float32): the profile times the frame-area factor ``1 + p t + q t²``."""
+        profile = self._profile[:, 0].astype(np.float64)
+        shape = (self._a1 - self._a0, self.geometry.n_columns)
+        if self._area_poly is None:
+            return np.ascontiguousarray(np.broadcast_to(profile[:, None], shape), dtype=np.float32)
+        t = self._area_poly["t"].astype(np.float64)[:, None]
+        area = 1.0 + self._area_poly["p"][None, :] * t + self._area_poly["q"][None, :] * t * t
+        return np.ascontiguousarray(profile[:, None] * area, dtype=np.float32)
 
     @property
     def region(self) -> tuple[int, int, int, int]:

@@ -689,11 +689,14 @@ def iter_extract_frames(
 
 
 #: the decoding thread linearises a frame itself while at least this many decoded frames wait (see
-#: _decoded_ahead); None: it only decodes. Measured at load 3 on the 2-core machine (300 frames 1280x720,
-#: 3-4 interleaved passes): CPU of all threads 4.8-5.4 ms a frame with None against 5.9 ms with 2, and
-#: 203-392 fps against 177-324: a frame linearised on one thread and extracted on the other costs more
-#: (its 1.6 MB region crosses between the cores' caches) than the decoding thread's idle time gives back
-_PREPARE_AHEAD: int | None = None
+#: _decoded_ahead); None: it only decodes. Once the optimal extraction kept its weights between frames
+#: (benchspec.extract.LiveExtractor) the consuming thread became the faster one's equal and handing it
+#: work paid: measured quiet (load < 1) on the 2-core machine, 300 frames 1280x720, 20 interleaved
+#: passes each: median 0.714 of the decode-only rate with 1, 0.704 with 2, 0.684 with None (CPU of all
+#: threads 2.93 ms a frame in each). Before that change, at load 3, None was best (4.8-5.4 ms a frame
+#: against 5.9 with 2): a frame linearised on one thread and extracted on the other crosses between the
+#: cores' caches, which only pays when the decoding thread has time to spare
+_PREPARE_AHEAD: int | None = 1
 
 
 def _iter_extract(frames, calibration, *, dark, extraction, band_check_every, interpolation, cal_path):
