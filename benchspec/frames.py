@@ -844,10 +844,7 @@ def stack_frames(
         image, sat = preparer.prepare(frame)
         if shape is None:
             shape, dtype = image.shape, frame.dtype
-            offset = image.astype(np.float64)
-            total = np.zeros(shape, np.float64)
-            total_sq = np.zeros(shape, np.float64)
-            delta = np.empty(shape, np.float64)  # reused: one work array for the whole stack
+            first = image
             saturated = sat.copy()
             encoding, edge_ratio = _encoding_of(frame)
             encoded_max = _largest_code(frame) if frame.dtype in (np.uint8, np.uint16) else float(frame.max())
@@ -863,12 +860,17 @@ def stack_frames(
             encoded_max = max(encoded_max, _largest_code(frame) if frame.dtype in (np.uint8, np.uint16)
                               else float(frame.max()))
         n += 1
-        if method == "mean":
-            np.subtract(image, offset, out=delta)  # shifted sums keep the variance accurate
+        if method == "mean" and n > 1:  # sums shifted by the first frame (its own term is 0): accurate variances
+            if total is None:
+                offset = first.astype(np.float64)
+                total = np.zeros(shape, np.float64)
+                total_sq = np.zeros(shape, np.float64)
+                delta = np.empty(shape, np.float64)  # reused: one work array for the whole stack
+            np.subtract(image, offset, out=delta)
             total += delta
             np.multiply(delta, delta, out=delta)
             total_sq += delta
-        else:
+        elif method == "median":
             kept.append(image)
             if len(kept) * image.nbytes > _MEDIAN_MEMORY_BYTES:
                 raise InputError(
@@ -881,12 +883,13 @@ def stack_frames(
     resolved_gamma = preparer.resolved_gamma(dtype)
     variance = None
     if method == "mean":
-        mean = offset + total / n
+        factor = 1.0 / n
         if n > 1:
             frame_var = np.maximum(total_sq - total * total / n, 0.0) / (n - 1)
             variance = (frame_var / n).astype(np.float32)
-        factor = 1.0 / n
-        image = mean.astype(np.float32)
+            image = (offset + total / n).astype(np.float32)
+        else:  # one frame is its own mean
+            image = np.ascontiguousarray(first, dtype=np.float32)
     else:
         cube = np.stack(kept)
         kept.clear()
@@ -968,7 +971,7 @@ def _check_dark(subtracted: np.ndarray, dark: "StackedFrame") -> None:
 
 def _check_usable(image: np.ndarray, saturated: np.ndarray, *, full: float, gamma: str, encoded_max: float) -> None:
     """Refuse black, blank and fully saturated stacks (thresholds: common practice, no source)."""
-    fraction_saturated = float(saturated.mean())
+    fraction_saturated = np.count_nonzero(saturated) / max(saturated.size, 1)
     if fraction_saturated > 0.9:
         raise FrameError(
             f"{100 * fraction_saturated:.0f}% of the pixels are saturated; shorten the exposure, "

@@ -32,7 +32,7 @@ from .calfile import Calibration, read_calibration, write_calibration
 from .errors import CalibrationError, DegradedResultWarning, FrameError, InputError
 from .extract import NoiseModel, estimate_noise_model, extract_stack
 from .frames import StackedFrame, _is_video, expand_sources, file_sha256, iter_frames, load_stack, stack_frames
-from .geometry import measure_band_shift, measure_geometry, refit_curvature_grating
+from .geometry import measure_band_shift, measure_geometry, rectify, refit_curvature_grating
 from .lines import LineTable, find_lines
 from .refdata import load_lamp
 from .spectrum import Spectrum
@@ -247,8 +247,9 @@ def calibrate_frames(
     # per stack here, they serve the extraction after the curvature refit too.
     noise: dict[int, NoiseModel] = {}
     if not absorption:
-        noise[id(stacked)] = estimate_noise_model(stacked, geometry=geometry)
-        spectrum = extract_stack(stacked, geometry, method=extraction, noise_model=noise[id(stacked)])
+        band = rectify(stacked.image, geometry, saturated=stacked.saturated)  # once, for the noise and the spectrum
+        noise[id(stacked)] = estimate_noise_model(stacked, geometry=geometry, band=band)
+        spectrum = extract_stack(stacked, geometry, method=extraction, noise_model=noise[id(stacked)], band=band)
         table = find_lines(spectrum, min_snr=min_snr)
     if absorption:
         if more_lamps:
