@@ -1469,7 +1469,7 @@ def _decide(candidates, peaks: _Peaks, *, lamp_label: str, pairs, context) -> _C
     return best
 
 
-def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_range, near=None):
+def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_range):
     """The grating model as a candidate for the final fit, beside the chosen polynomial.
 
     The grating model gets the same robust fit as the polynomial (all matched lines,
@@ -1479,9 +1479,7 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
     without rejection (the polynomial's order chosen again by BIC), so a line one model
     has to reject counts against it. The grating model wins only with a lower BIC (by 2
     if it has more parameters than the polynomial). Returns (solution, used, rejected,
-    anchor, note) or None (the matching's polynomial stays). ``near``: (parameters, sign) of a
-    grating solution of nearly the same lines (the first calibration, before the curvature
-    refit moved them by a fraction of a pixel); the first fit then searches only around it.
+    anchor, note) or None (the matching's polynomial stays).
     """
     centre, scale, _, _ = context
     f = best.features
@@ -1527,10 +1525,8 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
         return np.linspace(max(pixel_range[0], px[mask].min() - 0.15 * span),
                            min(pixel_range[1], px[mask].max() + 0.15 * span), 33)
 
-    initial = near[0] if near is not None and near[1] == sign else None
-
     def fit_on(mask):
-        result = _grating_fit(px[mask], lam[mask], ss[mask], initial=initial, **start)
+        result = _grating_fit(px[mask], lam[mask], ss[mask], **start)
         if result is None:
             return None
         d = _grating_derivative(result[0], probe_of(mask), sign)
@@ -1895,14 +1891,7 @@ def _calibrate_peaks(peaks, lamps, *, pixel_range, d_range, pairs, max_order, su
             if hint:
                 raise CalibrationError(f"{exc}; the lines fit lamp {hint!r}: try --lamp {hint}") from None
         raise
-    near = None  # the seed's grating parameters: the lines moved by a fraction of a pixel, so the fit starts there
-    if seed is not None:
-        for solution in (seed, seed.alternative):
-            if solution is not None and solution.model == "grating":
-                near = (np.asarray(solution.coefficients, dtype=float), float(solution.grating_sign))
-                break
-    upgrade = (_grating_upgrade(best, peaks, pairs=pairs, context=context, pixel_range=pixel_range, near=near)
-               if max_order >= 3 else None)
+    upgrade = _grating_upgrade(best, peaks, pairs=pairs, context=context, pixel_range=pixel_range) if max_order >= 3 else None
     return _build_result(best, peaks, lamps=lamps, pairs=pairs, context=context, pixel_range=pixel_range,
                          extra_notes=extra_notes, upgrade=upgrade)
 
