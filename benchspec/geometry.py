@@ -68,6 +68,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import threading
 import warnings
 from dataclasses import MISSING, dataclass
 from typing import Any, Mapping
@@ -1689,20 +1690,30 @@ _DERIVED: dict = {}
 _DERIVED_SIZE = 8
 
 
+_DERIVED_LOCK = threading.Lock()  # the viewer's processing thread and the caller's may share the cache
+
+
 def derived(key, compute):
-    """``compute()`` for ``key``, kept for the last :data:`_DERIVED_SIZE` keys (arrays made read-only)."""
+    """``compute()`` for ``key``, kept for the last :data:`_DERIVED_SIZE` keys (arrays made read-only).
+
+    Thread-safe: two threads asking for a missing key may both compute it (the results are equal).
+    """
     try:
-        value = _DERIVED.pop(key)
-    except KeyError:
-        value = compute()
-        for item in value if isinstance(value, tuple) else (value,):
-            if isinstance(item, np.ndarray):
-                item.flags.writeable = False
-        while len(_DERIVED) >= _DERIVED_SIZE:
-            _DERIVED.pop(next(iter(_DERIVED)))
+        with _DERIVED_LOCK:
+            value = _DERIVED.pop(key, None)
+            if value is not None:
+                _DERIVED[key] = value  # most recently used last
+                return value
     except TypeError:  # an unhashable key: computed every time
         return compute()
-    _DERIVED[key] = value  # most recently used last
+    value = compute()
+    for item in value if isinstance(value, tuple) else (value,):
+        if isinstance(item, np.ndarray):
+            item.flags.writeable = False
+    with _DERIVED_LOCK:
+        while len(_DERIVED) >= _DERIVED_SIZE:
+            _DERIVED.pop(next(iter(_DERIVED)))
+        _DERIVED[key] = value
     return value
 
 

@@ -137,3 +137,31 @@ def test_remap_tables_are_shared_and_read_only(bench_geometry):
         first[0][0, 0] = 1.0
     other = geometry.remap_tables(dataclasses.replace(g, rotation_deg=g.rotation_deg + 1.0))
     assert not np.array_equal(other[1], first[1])
+
+
+def test_the_per_geometry_cache_serves_several_threads(bench_geometry):
+    """More geometries than the cache holds, asked for from four threads at once: every answer is right."""
+    import threading
+
+    _, g = bench_geometry
+    shapes = [dataclasses.replace(g, rotation_deg=g.rotation_deg + 0.1 * k) for k in range(12)]
+    errors = []
+
+    def work(offset):
+        try:
+            for k in range(40):
+                index = (k + offset) % len(shapes)
+                map_x, map_y = geometry.remap_tables(shapes[index])
+                x, y = shapes[index].frame_coordinates(0.0, 0.0)
+                assert map_x[0, 0] == pytest.approx(float(x), abs=1e-3)
+                assert map_y[0, 0] == pytest.approx(float(y), abs=1e-3)
+        except Exception as exc:  # reported in the main thread
+            errors.append(exc)
+
+    threads = [threading.Thread(target=work, args=(3 * n,)) for n in range(4)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert not errors
+    assert len(geometry._DERIVED) <= geometry._DERIVED_SIZE
