@@ -413,13 +413,10 @@ def _resampling_variance_factor(tables, rows, interpolation) -> np.ndarray:
         overlap = []
         for w, i in ((wx, ix), (wy, iy)):
             shift = (i[:, 0] - i[:, d]).astype(int)  # tap a of the first row is tap a + shift of row d
-            acc = np.zeros(shift.shape)
-            for a in range(taps):
-                b = a + shift
-                ok = (b >= 0) & (b < taps)
-                wb = np.take_along_axis(w[:, :, d], np.clip(b, 0, taps - 1)[None], axis=0)[0]
-                acc += np.where(ok, w[a, :, 0] * wb, 0.0)
-            overlap.append(acc)
+            b = np.arange(taps)[:, None, None] + shift[None]  # (taps, k, cols)
+            ok = (b >= 0) & (b < taps)
+            wb = np.take_along_axis(w[:, :, d], np.clip(b, 0, taps - 1), axis=0)
+            overlap.append(np.where(ok, w[:, :, 0] * wb, 0.0).sum(axis=0))
         per_row += 2 * np.where(in_range[:, d:d + 1], overlap[0] * overlap[1], 0.0)
     return per_row.mean(axis=0)
 
