@@ -355,7 +355,7 @@ def _refit_curvature(stacked, geometry, wavelength, spectrum, *, lamp, others, e
     noise = noise or {}
     moved = None if others or first_table is None else _lines_moved_by(first_table, geometry, refit)
     if moved is not None:  # the lines' new centres follow from the geometry: no second extraction
-        table, new_spectrum = moved, spectrum
+        table, new_spectrum = moved, _spectrum_moved_by(spectrum, geometry, refit)
         refit = dataclasses.replace(refit, notes=refit.notes + (
             "after the curvature refit the lines' centres were moved as the new geometry places them "
             f"(at most {max(abs(a.centre_px - b.centre_px) for a, b in zip(moved.lines, first_table.lines)):.3f} px), "
@@ -386,13 +386,38 @@ def _refit_curvature(stacked, geometry, wavelength, spectrum, *, lamp, others, e
 _PREDICTED_SHIFT_SPREAD_FWHM = 0.05
 
 
+#: Largest shift (px) of a line for which the refit's effect is taken from the geometry: the range the
+#: comparison with a second extraction covered (shifts up to 0.11 px on the 16 benches).
+_PREDICTED_SHIFT_MAX_PX = 0.25
+
+
+def _spectrum_moved_by(spectrum: Spectrum, old, new) -> Spectrum:
+    """``spectrum`` (extracted with ``old``) resampled to where ``new`` places each column (linear interpolation).
+
+    Kept as the calibration's reference spectrum, which later frames extracted with ``new`` are
+    compared with for a bumped setup (:func:`benchspec.geometry.measure_band_shift`): it must not
+    carry the refit's shift of a fraction of a pixel.
+    """
+    from .geometry import line_shift_between
+
+    u = np.asarray(spectrum.pixel, dtype=np.float64)
+    shift, _ = line_shift_between(old, new, u)
+    moved = u + shift
+    order = np.argsort(moved)
+    return dataclasses.replace(
+        spectrum,
+        intensity=np.interp(u, moved[order], np.asarray(spectrum.intensity, dtype=np.float64)[order]),
+        uncertainty=np.interp(u, moved[order], np.asarray(spectrum.uncertainty, dtype=np.float64)[order]))
+
+
 def _lines_moved_by(table: LineTable, old, new) -> LineTable | None:
     """``table``'s lines as extracting with ``new`` instead of ``old`` would place them, or None.
 
     The shift of each centre is :func:`benchspec.geometry.line_shift_between` (the
     profile-weighted mean over the aperture rows); None, asking for a second extraction, when a
     line's shift varies across the rows by more than :data:`_PREDICTED_SHIFT_SPREAD_FWHM` of its
-    FWHM (its image then changes shape, not only place) or the geometries differ otherwise.
+    FWHM (its image then changes shape, not only place), a line moves by more than
+    :data:`_PREDICTED_SHIFT_MAX_PX`, or the geometries differ otherwise.
     """
     from .geometry import line_shift_between
 
@@ -404,7 +429,8 @@ def _lines_moved_by(table: LineTable, old, new) -> LineTable | None:
         shift, spread = line_shift_between(old, new, centres)
     except InputError:
         return None
-    if not (np.all(np.isfinite(shift)) and np.all(spread <= _PREDICTED_SHIFT_SPREAD_FWHM * fwhm)):
+    if not (np.all(np.isfinite(shift)) and np.all(spread <= _PREDICTED_SHIFT_SPREAD_FWHM * fwhm)
+            and np.all(np.abs(shift) <= _PREDICTED_SHIFT_MAX_PX)):
         return None
     lines = tuple(dataclasses.replace(line, centre_px=float(c + d)) for line, c, d in zip(table.lines, centres, shift))
     return dataclasses.replace(table, lines=lines)

@@ -165,3 +165,24 @@ def test_the_per_geometry_cache_serves_several_threads(bench_geometry):
         t.join()
     assert not errors
     assert len(geometry._DERIVED) <= geometry._DERIVED_SIZE
+
+
+def test_the_reference_spectrum_follows_the_refitted_geometry():
+    """The calibration's reference spectrum is what the stored geometry extracts from the same frame.
+
+    The band-shift check compares later frames with it (tolerance 1 px along the band): when the
+    lines were moved instead of extracted again, the reference is resampled the same way, so the
+    calibration frame itself shows no shift (well under 0.01 px) and the same spectrum.
+    """
+    bench = simulate.Bench().with_(camera={"rotation_deg": 3.0})
+    image = simulate.render(bench, source="cfl", seed=2).image
+    calibration = pipeline.calibrate_frames(image, lamp="cfl")
+    assert "not extracted again" in calibration.geometry.notes[-1]
+    stacked = stack_frames([image], check=False)
+    shift = geometry.measure_band_shift(stacked.image, calibration.geometry,
+                                        reference=np.asarray(calibration.reference_spectrum))
+    assert shift.measured and not shift.moved
+    assert abs(shift.along_px) < 0.01
+    again = np.asarray(pipeline.extract_frames([image], calibration).intensity)
+    reference = np.asarray(calibration.reference_spectrum)
+    assert np.max(np.abs(reference - again)) < 0.01 * again.max()
