@@ -1137,32 +1137,40 @@ def _final_score(c: _Candidate, peaks: _Peaks, *, centre, scale, t_ends, fwhm, n
     derivative = _derivative_coeffs(c.coefficients)
     used_px = peaks.pixel[c.peak_index[c.used]] if c.used.any() else peaks.pixel[:0]
     span_low, span_high = (float(used_px.min()), float(used_px.max())) if used_px.size else (0.0, 0.0)
-    for k, (pi, fi) in enumerate(zip(c.peak_index, c.feature_index)):
-        if not c.used[k]:
-            continue
-        near = np.abs(feature_px[inside] - peaks.pixel[pi]) < 20 * fwhm
-        density = max(int(near.sum()), 1) / min(40 * fwhm, range_px)
-        disp = abs(float(_polyval((peaks.pixel[pi] - centre) / scale, derivative))) / scale
-        sigma_px = math.hypot(peaks.sigma[pi], f.sigma[fi] / max(disp, 1e-12), 0.15)  # 0.15 px: model and JPEG
-        predicted_px = 0.0
-        if c.resid_sigma_px is not None and f.sigma[fi] / max(disp, 1e-12) <= _FEATURE_FIT_LIMIT_PX:
+    used_k = np.flatnonzero(c.used)
+    if used_k.size:  # the used lines' terms, all at once
+        pi, fi = c.peak_index[used_k], c.feature_index[used_k]
+        line_px = peaks.pixel[pi]
+        line_sigma = peaks.sigma[pi]
+        resid = np.asarray(c.resid_px, dtype=float)[used_k]
+        sorted_px = np.sort(feature_px[inside])
+        near = (np.searchsorted(sorted_px, line_px + 20 * fwhm, side="left")
+                - np.searchsorted(sorted_px, line_px - 20 * fwhm, side="right"))
+        density = np.maximum(near, 1) / min(40 * fwhm, range_px)
+        disp = np.maximum(np.abs(_polyval((line_px - centre) / scale, derivative)) / scale, 1e-12)
+        feature_sigma_px = f.sigma[fi] / disp
+        sigma_px = np.sqrt(line_sigma**2 + feature_sigma_px**2 + 0.15**2)  # 0.15 px: model and JPEG
+        predicted_px = np.zeros(used_k.size)
+        if c.resid_sigma_px is not None:
             # A tightly known line's leave-one-out residual is judged against how well the other lines
             # predict it (an end anchor of a solution whose shape rests on loosely known features misses
             # by more, honestly), and such a line the others hardly predict proves little: landing
             # within that prediction's spread of a feature is no coincidence. Loosely known features
             # keep the plain test: across a dense list (Ne, Ar) a wrong solution would otherwise
             # excuse its extrapolated end lines.
-            own_px = math.hypot(peaks.sigma[pi], f.sigma[fi] / max(disp, 1e-12), _MATCH_MODEL_FLOOR_PX)
-            if not span_low < peaks.pixel[pi] < span_high:  # an end line: the others only extrapolate to it
-                predicted_px = math.sqrt(max(float(c.resid_sigma_px[k]) ** 2 - own_px**2, 0.0))
-            sigma_px = max(sigma_px, float(c.resid_sigma_px[k]))
-        width = 2 * max(abs(c.resid_px[k]), peaks.sigma[pi], 0.1, predicted_px)
-        score += -math.log(min(1.0, width * density))
+            tight = feature_sigma_px <= _FEATURE_FIT_LIMIT_PX
+            loo_sigma = np.asarray(c.resid_sigma_px, dtype=float)[used_k]
+            own_px = np.sqrt(line_sigma**2 + feature_sigma_px**2 + _MATCH_MODEL_FLOOR_PX**2)
+            end_line = ~((span_low < line_px) & (line_px < span_high))  # the others only extrapolate to it
+            predicted_px = np.where(tight & end_line, np.sqrt(np.maximum(loo_sigma**2 - own_px**2, 0.0)), 0.0)
+            sigma_px = np.where(tight, np.maximum(sigma_px, loo_sigma), sigma_px)
+        width = 2 * np.maximum(np.maximum(np.abs(resid), line_sigma), np.maximum(predicted_px, 0.1))
+        score += float(np.sum(-np.log(np.minimum(1.0, width * density))))
         # A true match misses by about its own uncertainty: charge misses of many sigma (Gaussian
         # log-likelihood, capped at 3 sigma so one bad line cannot sink a good solution).
-        score -= 0.5 * min((c.resid_px[k] / sigma_px) ** 2, 9.0)
-        if abs(c.resid_px[k]) > max(2.0, 6.0 * sigma_px):
-            score -= 10.0  # the other lines put it far from its reference: the assignment is not consistent
+        score -= float(np.sum(0.5 * np.minimum((resid / sigma_px) ** 2, 9.0)))
+        # the other lines put it far from its reference: the assignment is not consistent
+        score -= 10.0 * float(np.count_nonzero(np.abs(resid) > np.maximum(2.0, 6.0 * sigma_px)))
     score -= 2.0 * max(0, c.coefficients.size - n_pairs)
     # Brightness should roughly follow the listed intensities (camera response and lamp-to-lamp
     # differences allow a factor 5 brighter or 30 fainter at 1 sigma): a bright line on a faint

@@ -101,16 +101,19 @@ def _zoom_minimum(values, grid, evaluate, rounds):
     return best_x, best_v
 
 
-def _grating_search(pixel, lam, sigma, *, sign, width, axis_px, axis_sigma, x0_range, log_f_range, n_x0=17, n_f=40):
+def _grating_search(pixel, lam, sigma, *, sign, width, axis_px, axis_sigma, x0_range, log_f_range, n_x0=17, n_f=40,
+                    zoom_rounds=1):
     """Search of (x0, f) for the grating model over a box: for each x0 the best f (the valley floor),
-    then the best x0 along it (with the prior), each refined by zooming grids.
+    then the best x0 along it (with the prior), each refined by ``zoom_rounds`` zooming grids.
+    One round is enough to start :func:`_grating_polish` in the minimum's basin (on 35 global
+    fits of 20 accuracy benches, three rounds reached the same minimum to 4e-6 sigma).
     Returns the starting parameters (A, theta, x0, f) or None."""
     weight = 1.0 / sigma
 
     def floor_of(x0):  # best log f and chi2 for each x0 (1-D array)
         log_f = np.broadcast_to(np.linspace(*log_f_range, n_f), (x0.size, n_f))
         evaluate = lambda lf: _grating_profile(pixel, lam, weight, sign, x0[:, None], np.exp(lf))[2]
-        return _zoom_minimum(evaluate(log_f), log_f, evaluate, 3)
+        return _zoom_minimum(evaluate(log_f), log_f, evaluate, zoom_rounds)
 
     def total(x0):
         log_f, chi2 = floor_of(x0)
@@ -121,7 +124,7 @@ def _grating_search(pixel, lam, sigma, *, sign, width, axis_px, axis_sigma, x0_r
     if not np.any(np.isfinite(values)):
         return None
     evaluate = lambda grid: total(grid.ravel())[0].reshape(grid.shape)
-    best_x0, _ = _zoom_minimum(values[None, :], x0[None, :], evaluate, 3)
+    best_x0, _ = _zoom_minimum(values[None, :], x0[None, :], evaluate, zoom_rounds)
     log_f, chi2 = floor_of(best_x0)
     if not np.isfinite(chi2[0]):
         return None
@@ -131,53 +134,79 @@ def _grating_search(pixel, lam, sigma, *, sign, width, axis_px, axis_sigma, x0_r
 
 
 def _grating_polish(params, pixel, lam, sigma, *, sign, axis_px, axis_sigma, lower, upper, max_iter=60):
-    """Levenberg-Marquardt (Marquardt 1963 diagonal scaling) on the 4 grating parameters, inside the bounds.
+    """Least squares on the 4 grating parameters, inside the bounds, by variable projection.
 
+    For fixed (x0, f) the model is linear in (A cos theta, A sin theta) (see :func:`_grating_profile`),
+    so those two are solved exactly at every step and Levenberg-Marquardt (Marquardt 1963 diagonal
+    scaling) runs on (x0, f) alone, with Kaufman's (1975) Jacobian of the projected residual
+    (Golub and Pereyra 2003). The full four-parameter problem has a long curved valley (x0, f and
+    theta trade off against each other) along which plain LM crawls: from the grid's best point it
+    was still 0.01-1 sigma short of the minimum after 20-60 steps; the projected problem reaches it
+    in 2-4. A step that leaves the bounds on A or theta is refused like one that raises chi2.
     Residuals (model - lambda) / sigma and the Gaussian prior (x0 - axis) / axis_sigma.
     Returns (params, jacobian of the residual vector, chi2) or None.
     """
-    p = np.clip(np.asarray(params, dtype=float), lower, upper)
+    pixel = np.asarray(pixel, dtype=float)
+    weight = 1.0 / np.asarray(sigma, dtype=float)
+    y = np.asarray(lam, dtype=float) * weight
     n = pixel.size
-    prior_row = np.array([0.0, 0.0, 1.0 / axis_sigma, 0.0])
+    low_nl, high_nl = np.asarray(lower[2:], dtype=float), np.asarray(upper[2:], dtype=float)
 
-    def residual_and_jacobian(q):
-        # _grating_eval and _grating_jacobian (the same arithmetic), sharing the phase and its sine and cosine
-        a, theta, x0, f = q.tolist()
+    def projected(q):
+        """(residual vector, (A, theta), Kaufman Jacobian d r / d (x0, f)) at q = (x0, f), or None."""
+        x0, f = float(q[0]), float(q[1])
         u = sign * (pixel - x0) / f
-        phi = theta + np.arctan(u)
-        sin, cos = np.sin(phi), np.cos(phi)
-        g = a * cos / (1.0 + u**2)
+        root = 1.0 / np.sqrt(1.0 + u * u)
+        b1, b2 = u * root * weight, root * weight
+        s11, s12, s22 = float(b1 @ b1), float(b1 @ b2), float(b2 @ b2)
+        det = s11 * s22 - s12 * s12
+        if not det > 0:
+            return None
+        t1, t2 = float(b1 @ y), float(b2 @ y)
+        c1, c2 = (s22 * t1 - s12 * t2) / det, (s11 * t2 - s12 * t1) / det
+        a, theta = math.hypot(c1, c2), math.atan2(c2, c1)
+        if not (lower[0] <= a <= upper[0] and lower[1] < theta < upper[1]):
+            return None
         r = np.empty(n + 1)
-        r[:n] = (a * sin + 0.0 - lam) / sigma
-        r[n] = (q[2] - axis_px) / axis_sigma
-        j = np.empty((n + 1, 4))
-        j[:n, 0] = sin / sigma
-        j[:n, 1] = a * cos / sigma
-        j[:n, 2] = -g * sign / f / sigma
-        j[:n, 3] = -g * u / f / sigma
-        j[n] = prior_row
-        return r, j
+        r[:n] = c1 * b1 + c2 * b2 - y
+        r[n] = (x0 - axis_px) / axis_sigma
+        # d model / d (x0, f) at fixed (A, theta) (cf. _grating_jacobian), weighted, then the part the
+        # linear parameters can absorb projected out (Kaufman's approximation)
+        g = (c1 - c2 * u) * root**3  # A cos(phi) / (1 + u^2), phi = theta + atan(u)
+        j = np.empty((n + 1, 2))
+        j[:n, 0] = -g * sign / f * weight
+        j[:n, 1] = -g * u / f * weight
+        for k in range(2):
+            col = j[:n, k]
+            p1, p2 = float(b1 @ col), float(b2 @ col)
+            j[:n, k] = col - b1 * ((s22 * p1 - s12 * p2) / det) - b2 * ((s11 * p2 - s12 * p1) / det)
+        j[n] = (1.0 / axis_sigma, 0.0)
+        return r, (a, theta), j
 
-    r, j = residual_and_jacobian(p)
+    q = np.minimum(np.maximum(np.asarray(params, dtype=float)[2:], low_nl), high_nl)
+    state = projected(q)
+    if state is None:
+        return None
+    r, linear, j = state
     chi2 = float(r @ r)
     damping = 1e-3
     for _ in range(max_iter):
         h = j.T @ j
-        g = j.T @ r
+        grad = j.T @ r
         scale = np.maximum(np.diag(h), 1e-300)
-        improved = False
+        improved = converged = False
         for _ in range(12):
             try:
-                step = np.linalg.solve(h + damping * np.diag(scale), -g)
+                step = np.linalg.solve(h + damping * np.diag(scale), -grad)
             except np.linalg.LinAlgError:
                 damping *= 10.0
                 continue
-            trial = np.minimum(np.maximum(p + step, lower), upper)  # np.clip, without its overhead
-            r_new, j_new = residual_and_jacobian(trial)
-            chi2_new = float(r_new @ r_new)
+            trial = np.minimum(np.maximum(q + step, low_nl), high_nl)
+            new = projected(trial)
+            chi2_new = float(new[0] @ new[0]) if new is not None else np.inf
             if np.isfinite(chi2_new) and chi2_new <= chi2:
                 converged = chi2 - chi2_new <= 1e-10 * max(chi2, 1.0)
-                p, r, j, chi2 = trial, r_new, j_new, chi2_new
+                q, (r, linear, j), chi2 = trial, new, chi2_new
                 damping = max(damping / 10.0, 1e-12)
                 improved = True
                 break
@@ -186,7 +215,12 @@ def _grating_polish(params, pixel, lam, sigma, *, sign, axis_px, axis_sigma, low
             break
     if not np.isfinite(chi2):
         return None
-    return p, j, chi2
+    p = np.array([linear[0], linear[1], q[0], q[1]])
+    # the full four-parameter Jacobian at the minimum (the covariance's)
+    full = np.empty((n + 1, 4))
+    full[:n] = _grating_jacobian(p, pixel, sign) * weight[:, None]
+    full[n] = (0.0, 0.0, 1.0 / axis_sigma, 0.0)
+    return p, full, chi2
 
 
 def _grating_fit(pixel, lam, sigma, *, sign, width_px, axis_px, start_px=None, start_nm=None, start_disp=None,
@@ -196,8 +230,9 @@ def _grating_fit(pixel, lam, sigma, *, sign, width_px, axis_px, start_px=None, s
     The global search is a grid over the optical-axis position x0 (within +-0.8 widths of
     ``axis_px``) and the focal length f (0.2-20 widths, log-spaced), each point solved
     exactly for (A, theta) by linear least squares; the best point is polished by
-    Levenberg-Marquardt on all four parameters. With ``initial`` (a nearby solution, e.g.
-    of the same lines but one) the grid is skipped and only the polish runs.
+    :func:`_grating_polish` (variable projection). With ``initial`` (a nearby solution, e.g.
+    of the same lines but one) the grid is skipped and only the polish runs. The covariance
+    is :func:`_covariance_of` the Jacobian at the minimum.
     Bounds: f in [0.2, 20] x width and theta in (-80, 80) deg; a Gaussian prior of
     0.1 x width keeps x0 near ``axis_px`` (the middle of the frame).
     The returned chi2 includes the prior's term. ``start_*`` (the polynomial's wavelength and
@@ -217,13 +252,12 @@ def _grating_fit(pixel, lam, sigma, *, sign, width_px, axis_px, start_px=None, s
     axis_px, axis_sigma = float(axis_px), 0.1 * width
     options = dict(sign=sign, axis_px=axis_px, axis_sigma=axis_sigma, lower=lower, upper=upper)
     if initial is not None:
-        # a local search around the nearby solution (its valley of x0 and f), then the polish
-        # (the one-step deletion update can overshoot: bring it back inside the bounds first)
-        x0_near, f_near = (float(v) for v in np.clip(np.asarray(initial, dtype=float), lower, upper)[2:])
-        start = _grating_search(pixel, lam, sigma, sign=sign, width=width, axis_px=axis_px, axis_sigma=axis_sigma,
-                                x0_range=(x0_near - 0.3 * width, x0_near + 0.3 * width),
-                                log_f_range=(math.log(f_near) - 0.3, math.log(f_near) + 0.3), n_x0=9, n_f=9)
-        polished = None if start is None else _grating_polish(start, pixel, lam, sigma, max_iter=20, **options)
+        # the polish alone, from the nearby solution brought back inside the bounds (the one-step
+        # deletion update can overshoot them): variable projection reaches the minimum from there
+        # (on 37 such refits of 20 accuracy benches, the same minimum as a 9 x 9 grid around it first,
+        # to 1e-4 sigma, in a quarter of the time)
+        start = np.minimum(np.maximum(np.asarray(initial, dtype=float), lower), upper)
+        polished = _grating_polish(start, pixel, lam, sigma, max_iter=20, **options)
     else:
         start = _grating_search(pixel, lam, sigma, sign=sign, width=width, axis_px=axis_px, axis_sigma=axis_sigma,
                                 x0_range=(axis_px - 0.8 * width, axis_px + 0.8 * width),
@@ -232,13 +266,37 @@ def _grating_fit(pixel, lam, sigma, *, sign, width_px, axis_px, start_px=None, s
     if polished is None:
         return None
     params, jac, chi2 = polished
-    try:
-        cov = np.linalg.pinv(jac.T @ jac)
-    except np.linalg.LinAlgError:
-        return None
-    if not np.all(np.isfinite(cov)):
+    cov = _covariance_of(jac)
+    if cov is None:
         return None
     return params, cov, chi2
+
+
+def _covariance_of(jac):
+    """(J^T J)^-1 from the SVD of J with its columns scaled to unit norm; None if J is singular.
+
+    The grating parameters differ in scale by up to 10 orders (A in nm, theta in radians, f in
+    pixels) and, for a nearly straight spectrum (f near its upper bound), the normal matrix
+    J^T J has a condition number of 1e20 or more: a pseudo-inverse of it drops its weakest
+    directions as rounding noise, which are exactly the poorly determined ones, and the
+    covariance came out 10-30 times too small (a 1.2 nm/px accuracy bench: 0.03 px stated
+    against 0.1-0.16 px true errors). Scaling the columns and working on J itself leaves a
+    condition number near the square root of that (Golub and Van Loan, Matrix Computations,
+    sections 5.3 and 5.5, least-squares sensitivity and column scaling).
+    """
+    jac = np.asarray(jac, dtype=float)
+    norms = np.sqrt(np.sum(jac * jac, axis=0))
+    if not np.all(np.isfinite(jac)) or not np.all(norms > 0):
+        return None
+    try:
+        _, singular, vt = np.linalg.svd(jac / norms, full_matrices=False)
+    except np.linalg.LinAlgError:
+        return None
+    if not singular[-1] > 1e-12 * singular[0]:
+        return None
+    v = vt.T / singular
+    cov = (v @ v.T) / np.outer(norms, norms)
+    return cov if np.all(np.isfinite(cov)) else None
 
 
 def _grating_deletion_z(pixel, lam, sigma, params, chi2, sign, keep, refit):

@@ -98,6 +98,34 @@ def test_deletion_residuals_match_full_refits():
         assert z[i] ** 2 == pytest.approx(chi2 - full[2], rel=0.02, abs=0.05)
 
 
+@pytest.mark.parametrize("focal_px, lines_per_mm, tilt_deg", [(2400.0, 1000.0, 33.0), (30000.0, 100.0, 3.2)])
+def test_stated_wavelength_uncertainty_matches_the_scatter_of_refits(focal_px, lines_per_mm, tilt_deg):
+    # The covariance must say how far the fitted wavelength scale moves with the line-centre noise:
+    # compare its 1-sigma at the ends and middle of the lines with the spread of fits to 200 noisy
+    # copies (Monte Carlo; the linearised covariance is exact for small noise, textbook least
+    # squares, e.g. Press et al., Numerical Recipes, section 15.6, from memory). f = 30000 px
+    # (15.6 widths, 100 lines/mm: a nearly straight scale) makes the normal matrix condition number ~1e20,
+    # where a pseudo-inverse of J^T J loses the poorly determined directions.
+    from benchspec.wavefit import _grating_jacobian
+
+    clean, wavelength = _bench_lines(focal_px=focal_px, lines_per_mm=lines_per_mm, tilt_deg=tilt_deg, x0=AXIS_PX,
+                                     noise_px=0.0)
+    assert clean.size >= 12
+    params, cov, _ = _fit(clean, wavelength, 0.02)
+    probe = np.array([clean.min(), 0.5 * (clean.min() + clean.max()), clean.max()])
+    jac = _grating_jacobian(params, probe, 1.0)
+    stated = np.sqrt(np.einsum("ij,jk,ik->i", jac, cov, jac))
+    rng = np.random.default_rng(17)
+    fitted = []
+    for _ in range(200):
+        noisy = wavelength + rng.normal(0.0, 0.02, wavelength.size)
+        result = _fit(clean, noisy, 0.02)
+        fitted.append(_grating_eval(result[0], probe, 1.0))
+    scatter = np.std(np.array(fitted), axis=0)
+    # 200 draws: the standard deviation itself is known to about 5% (1 / sqrt(2 n))
+    np.testing.assert_allclose(stated, scatter, rtol=0.2)
+
+
 def test_too_few_lines_give_no_fit():
     pixel, wavelength = _bench_lines()
     assert _fit(pixel[:4], wavelength[:4], 0.02) is None
