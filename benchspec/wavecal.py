@@ -940,10 +940,16 @@ def _fold_probe(tt, t_ends) -> np.ndarray:
     on the same monotonic branch as the others: a cubic that turns back there would assign it a
     wavelength of the lamp's lines it cannot have.
     """
-    margin = 0.15 * (tt.max() - tt.min())
-    low = min(max(t_ends[0], tt.min() - margin), tt.min())
-    high = max(min(t_ends[1], tt.max() + margin), tt.max())
-    return np.linspace(low, high, 33)
+    t_min, t_max = float(tt.min()), float(tt.max())
+    margin = 0.15 * (t_max - t_min)
+    low = min(max(float(t_ends[0]), t_min - margin), t_min)
+    high = max(min(float(t_ends[1]), t_max + margin), t_max)
+    probe = low + (high - low) * _UNIT_33  # np.linspace(low, high, 33), the same values (k / 32 is exact)
+    probe[-1] = high
+    return probe
+
+
+_UNIT_33 = np.linspace(0.0, 1.0, 33)
 
 
 def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, pairs, max_order, n_trials=1, quick=False,
