@@ -56,8 +56,8 @@ import numpy as np
 
 from .errors import ExtractionError, InputError
 from .frames import FramePreparer, StackedFrame
-from .geometry import (INTERPOLATIONS, Geometry, RectifiedBand, check_frame_size, derived, jacobian, rectify,
-                       remap_tables, valid_samples)
+from .geometry import (INTERPOLATIONS, Geometry, RectifiedBand, check_frame_size, derived, derived_in_background,
+                       jacobian, rectify, remap_tables, valid_samples)
 from .spectrum import Spectrum
 
 __all__ = [
@@ -285,6 +285,23 @@ def estimate_noise_model(stacked: StackedFrame, *, geometry: Geometry | None = N
     mv = mv / (_CHI2_1_MEDIAN * scale)
     a, b = _fit_variance_curve(lv, mv, np.minimum(cnt, 2000) / np.maximum(mv, 1e-12) ** 2)
     return NoiseModel(1.0 / b if b > 0 else math.inf, math.sqrt(max(a, 0.0)), 1.0, 1, "spatial")
+
+
+def prepare_in_background(geometry: Geometry, *, interpolation: str = "cubic", single_frame: bool = True) -> None:
+    """Start computing, on a second thread, what the noise estimate and the extraction will need of ``geometry``.
+
+    The resampling's noise factors depend on the geometry alone: the rectified white-noise frame
+    of a single frame's noise estimate (``single_frame``) and the aperture's variance factor
+    (:func:`resampling_variance_factor`). Started as soon as the geometry is measured, they are
+    computed while the caller rectifies the band and measures its noise, and the calls that need
+    them wait for them (:func:`benchspec.geometry.derived_in_background`). The results are the
+    same as computing them in place.
+    """
+    if single_frame:
+        derived_in_background(("white band", geometry), lambda: _white_band(geometry, remap_tables(geometry)))
+    rows = tuple(geometry.aperture_rows)
+    derived_in_background(("resampling factor", geometry, rows, interpolation),
+                          lambda: _resampling_variance_factor(remap_tables(geometry), rows, interpolation))
 
 
 def _white_band(geometry: Geometry, tables) -> np.ndarray:

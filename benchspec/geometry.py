@@ -1697,6 +1697,8 @@ def derived(key, compute):
     """``compute()`` for ``key``, kept for the last :data:`_DERIVED_SIZE` keys (arrays made read-only).
 
     Thread-safe: two threads asking for a missing key may both compute it (the results are equal).
+    A key being computed in the background (:func:`derived_in_background`) is waited for, not
+    computed again; an error raised there is raised here.
     """
     try:
         with _DERIVED_LOCK:
@@ -1704,8 +1706,15 @@ def derived(key, compute):
             if value is not None:
                 _DERIVED[key] = value  # most recently used last
                 return value
+            pending = _PENDING.get(key)
     except TypeError:  # an unhashable key: computed every time
         return compute()
+    if pending is not None:
+        return pending.result()
+    return _compute_and_keep(key, compute)
+
+
+def _compute_and_keep(key, compute):
     value = compute()
     for item in value if isinstance(value, tuple) else (value,):
         if isinstance(item, np.ndarray):
@@ -1715,6 +1724,38 @@ def derived(key, compute):
             _DERIVED.pop(next(iter(_DERIVED)))
         _DERIVED[key] = value
     return value
+
+
+#: Keys being computed by :func:`derived_in_background`, with their futures.
+_PENDING: dict = {}
+_BACKGROUND = None  # a one-thread executor, made on first use
+
+
+def derived_in_background(key, compute) -> None:
+    """Start ``derived(key, compute)`` on a background thread and return at once.
+
+    For what a geometry fixes and the caller needs a little later (the noise factors of the
+    resampling, while the band is rectified and its noise measured): on a second core the two
+    overlap. A later :func:`derived` call for ``key`` waits for the result. Nothing happens when
+    the key is already kept or being computed.
+    """
+    global _BACKGROUND
+    from concurrent.futures import ThreadPoolExecutor
+
+    with _DERIVED_LOCK:
+        if key in _DERIVED or key in _PENDING:
+            return
+        if _BACKGROUND is None:
+            _BACKGROUND = ThreadPoolExecutor(max_workers=1, thread_name_prefix="benchspec-derived")
+
+        def work():
+            try:
+                return _compute_and_keep(key, compute)
+            finally:
+                with _DERIVED_LOCK:
+                    _PENDING.pop(key, None)
+
+        _PENDING[key] = _BACKGROUND.submit(work)
 
 
 def remap_tables(geometry: Geometry) -> tuple[np.ndarray, np.ndarray]:

@@ -30,7 +30,7 @@ import numpy as np
 
 from .calfile import Calibration, read_calibration, write_calibration
 from .errors import CalibrationError, DegradedResultWarning, FrameError, InputError
-from .extract import NoiseModel, estimate_noise_model, extract_stack
+from .extract import NoiseModel, estimate_noise_model, extract_stack, prepare_in_background
 from .frames import StackedFrame, _is_video, expand_sources, file_sha256, iter_frames, load_stack, stack_frames
 from .geometry import measure_band_shift, measure_geometry, rectify, refit_curvature_grating
 from .lines import LineTable, find_lines
@@ -247,6 +247,8 @@ def calibrate_frames(
     # per stack here, they serve the extraction after the curvature refit too.
     noise: dict[int, NoiseModel] = {}
     if not absorption:
+        # the resampling's noise factors on the second core while the band is rectified and its noise measured
+        prepare_in_background(geometry, single_frame=not (stacked.n_frames >= 2 and stacked.frame_variance is not None))
         band = rectify(stacked.image, geometry, saturated=stacked.saturated)  # once, for the noise and the spectrum
         noise[id(stacked)] = estimate_noise_model(stacked, geometry=geometry, band=band)
         spectrum = extract_stack(stacked, geometry, method=extraction, noise_model=noise[id(stacked)], band=band)

@@ -167,6 +167,46 @@ def test_the_per_geometry_cache_serves_several_threads(bench_geometry):
     assert len(geometry._DERIVED) <= geometry._DERIVED_SIZE
 
 
+def test_noise_factors_prepared_in_the_background_equal_those_computed_in_place(bench_geometry):
+    """The resampling's noise factors started on a second thread are the arrays computed in place.
+
+    Reference: the same functions called directly on the same geometry (nothing kept between).
+    """
+    from benchspec import extract
+
+    stacked, g = bench_geometry
+    rows = tuple(g.aperture_rows)
+    geometry._DERIVED.clear()
+    direct_factor = extract._resampling_variance_factor(geometry.remap_tables(g), rows, "cubic")
+    direct_white = extract._white_band(g, geometry.remap_tables(g))
+    geometry._DERIVED.clear()
+    extract.prepare_in_background(g)
+    background_factor = extract.resampling_variance_factor(g, rows)  # waits for the background result
+    background_white = geometry.derived(("white band", g), lambda: pytest.fail("computed again instead of waited for"))
+    np.testing.assert_array_equal(background_factor, direct_factor)
+    np.testing.assert_array_equal(background_white, direct_white)
+    assert not geometry._PENDING
+    # the whole noise estimate and extraction agree too
+    geometry._DERIVED.clear()
+    in_place = extract_stack(stacked, g, noise_model=estimate_noise_model(stacked, geometry=g))
+    geometry._DERIVED.clear()
+    extract.prepare_in_background(g)
+    prepared = extract_stack(stacked, g, noise_model=estimate_noise_model(stacked, geometry=g))
+    np.testing.assert_array_equal(prepared.intensity, in_place.intensity)
+    np.testing.assert_array_equal(prepared.uncertainty, in_place.uncertainty)
+
+
+def test_an_error_in_the_background_is_raised_where_the_result_is_needed():
+    def broken():
+        raise ValueError("broken on purpose")
+
+    key = ("a test key that nothing else uses",)
+    geometry.derived_in_background(key, broken)
+    with pytest.raises(ValueError, match="broken on purpose"):
+        geometry.derived(key, broken)
+    assert key not in geometry._PENDING and key not in geometry._DERIVED
+
+
 def test_the_reference_spectrum_follows_the_refitted_geometry():
     """The calibration's reference spectrum is what the stored geometry extracts from the same frame.
 
