@@ -1558,7 +1558,7 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
         chi2_all = float(np.sum(((lam - np.polynomial.polynomial.polyval(t_all, coeffs)) / ss) ** 2))
         k_all = _grating_effective_parameters(fitted[0], fitted[1], px, ss, sign)
         bic_all_grating, bic_all_poly = fitted[2] + k_all * log_all, chi2_all + n_poly * log_all
-        if not bic_all_grating < bic_all_poly - (2.0 if k_all > n_poly else 0.0):
+        if not bic_all_grating < bic_all_poly + _occam_margin(k_all, n_poly):
             return _Upgrade(None, grating_solution(fitted[0], fitted[1]), _alternative_weight(bic_all_grating - bic_all_poly))
     for _ in range(max(1, px.size // 3)):
         if fitted is None or keep.sum() <= 6:
@@ -1595,7 +1595,7 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
     else:
         refit = _select_order(t_all, lam, ss, union, max_order=3, monotonic_t=(probe_of(union) - centre) / scale)
         bic_poly, n_poly = (np.inf, coeffs.size) if refit is None else (refit[0], refit[4] + 1)
-    if not bic_grating < bic_poly - (2.0 if k_grating > n_poly else 0.0):
+    if not bic_grating < bic_poly + _occam_margin(k_grating, n_poly):
         return _Upgrade(None, grating_solution(on_union[0], on_union[1]), _alternative_weight(bic_grating - bic_poly))
     jac = _grating_jacobian(params, px[keep], sign) / ss[keep, None]
     leverage = np.einsum("ij,jk,ik->i", jac, cov, jac)
@@ -1618,6 +1618,22 @@ def _grating_upgrade(best: _Candidate, peaks: _Peaks, *, pairs, context, pixel_r
         covariance=tuple(tuple(float(v) for v in row) for row in best.covariance),
         pixel_centre=float(centre), pixel_scale=float(scale), pixel_range=(float(pixel_range[0]), float(pixel_range[1])))
     return _Upgrade((solution, used, rejected, anchor, note), alternative, _alternative_weight(bic_poly - bic_grating))
+
+
+def _occam_margin(k_grating: float, n_poly: int) -> float:
+    """How much higher the grating model's BIC may be than the polynomial's and still win.
+
+    Of two models whose BIC differ by less than 2 ("not worth more than a bare mention", Kass
+    and Raftery 1995, J. Am. Stat. Assoc. 90, 773) the one with fewer parameters is taken: the
+    model with more must win by 2. Against a cubic (4 coefficients) the grating model, whose
+    prior on x0 leaves it 3-4 effective parameters, is the simpler one; against an order 1 or
+    2 polynomial it is the larger one.
+    """
+    if k_grating > n_poly:
+        return -2.0
+    if k_grating < n_poly:
+        return 2.0
+    return 0.0
 
 
 @dataclass(frozen=True)
