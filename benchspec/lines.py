@@ -664,14 +664,13 @@ def find_lines(
         # A window stops short of the next group's line: a faint line's window reaching into a
         # bright neighbour's wing was fitted as a spike (the speed benchmark's 720p CFL frame: a
         # line of 105 DN over noise 4.5 at 615.5 px, 9.7 px from one of 3400 DN, came out 0.7 px
-        # wide at SNR 3.3). The boundary divides the gap in proportion to the two lines' widths,
-        # so each keeps at least 1.25 FWHM of its own side (lines closer than that are one group).
+        # wide at SNR 3.3). See _window_boundary.
         if g_index > 0:
             a, b = groups[g_index - 1][-1], group[0]
-            low = max(low, int(np.ceil(0.5 * (peaks[a] + peaks[b]))))
+            low = max(low, int(np.ceil(_window_boundary(peaks, widths, prominence, sigma, a, b)[1])))
         if g_index + 1 < len(groups):
             a, b = group[-1], groups[g_index + 1][0]
-            high = min(high, int(np.floor(0.5 * (peaks[a] + peaks[b]))))
+            high = min(high, int(np.floor(_window_boundary(peaks, widths, prominence, sigma, a, b)[0])))
         low, high = max(0, low), min(n - 1, high)
         window = np.zeros(n, dtype=bool)
         window[low : high + 1] = True
@@ -736,6 +735,26 @@ def find_lines(
     lines = _assemble(fitted, spectrum, sigma, continuum, kind, x, n, min_snr, systematic)
     return LineTable(tuple(lines), kind, float(np.median(sigma)), float(min_snr), n,
                      (float(spectrum.pixel[0]), float(spectrum.pixel[-1])), encoding=encoding)
+
+
+def _window_boundary(peaks, widths, prominence, sigma, a: int, b: int) -> tuple[float, float]:
+    """Where the fit window of line ``a``'s group ends and that of the next group's line ``b`` starts.
+
+    Each window stops where the other line's profile has fallen to its noise: ``k`` Gaussian
+    sigmas from its centre with ``exp(-k**2 / 2) = noise / height``, and never past the midpoint
+    between the two. It keeps at least 0.75 FWHM of its own line's side (lines closer than
+    1.25 FWHM each are fitted together as one group).
+    """
+    pa, pb = float(peaks[a]), float(peaks[b])
+    middle = 0.5 * (pa + pb)
+    noise = max(float(sigma[int(round(middle))]), 1e-300)
+
+    def reach(k):  # how far line k's wing stays above the noise
+        return widths[k] / _FWHM_PER_SIGMA * math.sqrt(2.0 * math.log(max(prominence[k] / noise, 1.0)))
+
+    end_a = max(pa + 0.75 * widths[a], min(middle, pb - reach(b)))
+    start_b = min(pb - 0.75 * widths[b], max(middle, pa + reach(a)))
+    return end_a, start_b
 
 
 def frame_encoding(spectrum: Spectrum) -> str | None:

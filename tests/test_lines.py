@@ -195,3 +195,30 @@ def test_quick_finder_inverse_is_nan_for_a_singular_matrix_without_a_warning():
     assert np.allclose(inverse[0], np.linalg.inv(regular), rtol=1e-12)
     assert determinant[1] == 0.0
     assert np.all(np.isnan(inverse[1]) | np.isinf(inverse[1]))
+
+
+def test_faint_line_beside_a_bright_one_keeps_its_width_and_height(rng):
+    """A faint line 9.3 px from one 30 times brighter and wider is measured as the Gaussian it is.
+
+    The reference is the injected profile (synthetic, seeded): sigma 1.1 px (FWHM 2.59 px),
+    height 110 over a flat background with noise 4.5; the bright line has sigma 1.65 px. Before each fit window stopped at the
+    midpoint to the neighbouring line, the faint line's window took in the bright line's wing
+    and the fit shrank it to a 0.7 px spike at a third of its height.
+    """
+    from benchspec.spectrum import Spectrum
+
+    x = np.arange(800, dtype=float)
+    profile = lambda c, h, s: h * np.exp(-0.5 * ((x - c) / s) ** 2)
+    truth = 167.0 + profile(615.4, 110.0, 1.1) + profile(624.7, 3400.0, 1.65) + profile(629.6, 3000.0, 1.2)
+    found = []
+    for _ in range(5):
+        y = truth + rng.normal(0.0, 4.5, x.size)
+        table = find_lines(Spectrum(intensity=y, uncertainty=np.full(x.size, 4.5), pixel=x))
+        faint = [line for line in table.lines if abs(line.centre_px - 615.4) < 1.5]
+        assert len(faint) == 1
+        found.append(faint[0])
+    for line in found:
+        # within 3 sigma of the injected centre, and the width and height of a line with SNR 24
+        assert abs(line.centre_px - 615.4) < 3 * line.centre_uncertainty_px + 0.02
+        assert line.fwhm_px == pytest.approx(1.1 * FWHM_PER_SIGMA, rel=0.15)
+        assert line.peak == pytest.approx(110.0, rel=0.15)
