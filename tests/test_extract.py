@@ -297,3 +297,23 @@ def test_stack_of_another_size_is_refused():
     stack = frames.stack_frames([np.full((240, 320), 100, np.uint16) + np.eye(240, 320, dtype=np.uint16) * 5000])
     with pytest.raises(FrameError, match=r"the frame is 320x240 px but the geometry was measured on 640x360 px frames"):
         extract.extract_stack(stack, g)
+
+
+def test_the_noise_bins_are_numpy_digitize_bins():
+    """The noise estimate's log-spaced bin index equals np.digitize's (the reference), edges included."""
+    from benchspec.extract import _geometric_bin_index
+
+    rng = np.random.default_rng(7)
+    for trial in range(300):
+        n = int(rng.integers(5, 40))
+        levels = np.exp(rng.normal(rng.normal(3, 3), rng.uniform(0.1, 4), int(rng.integers(1, 3000))))
+        if trial % 3 == 0:
+            levels = levels - rng.uniform(0, 5)  # dark pixels below zero
+        lo, hi = np.percentile(levels, [0.5, 99.9])
+        floor = max(lo, 1e-3 * max(hi, 1e-12), 1e-12)
+        hi = max(hi, 2 * floor)
+        edges = np.geomspace(floor, hi, n + 1)
+        edges[0] = -np.inf
+        at_edges = np.concatenate([edges[1:], np.nextafter(edges[1:], -np.inf), np.nextafter(edges[1:], np.inf)])
+        levels = np.concatenate([levels, at_edges])
+        np.testing.assert_array_equal(_geometric_bin_index(levels, edges, floor, hi), np.digitize(levels, edges) - 1)
