@@ -35,6 +35,8 @@ def test_quick_speed_benchmark_prints_json_with_every_stage(quick_run):
     result = json.loads(text)
     assert result["schema"] == speed.SCHEMA and result["quick"] is True
     assert result["machine"]["cpu_count"] >= 1
+    # the interpreter's pace on this host, by which runs on a shared machine are compared
+    assert _positive(result["machine"]["interpreter_pace_ms"])
     (size,) = result["sizes"]  # quick: one size
     assert (size["width_px"], size["height_px"]) == (640, 480)
     for floor in ("memory_pass", "decode_only"):

@@ -811,6 +811,28 @@ def _memory_growth(runner, path: Path, n_frames: int) -> dict:
 # --------------------------------------------------------------------------- run
 
 
+def _interpreter_pace(repeats: int = 7) -> float:
+    """Median ms of a fixed interpreter-bound workload: how fast this host runs Python right now.
+
+    The memory pass and the decode floors track memory bandwidth and OpenCV's compiled code;
+    the calibration and the line fits are mostly small numpy calls driven from Python, whose
+    speed on a shared host changes on its own (the same code measured about 3 times slower one
+    evening than the day before while one memory pass changed by 1.5 times). Runs are comparable
+    by this figure: 20 000 loop iterations of float arithmetic and 2 000 numpy calls on 16 values.
+    """
+    values = np.linspace(0.0, 1.0, 16)
+    samples = []
+    for _ in range(repeats):
+        start = time.perf_counter()
+        total = 0.0
+        for k in range(20_000):
+            total += (k * 0.5) % 7.0
+        for _ in range(2_000):
+            total += float(np.sum(values * 1.5))
+        samples.append((time.perf_counter() - start) * 1000.0)
+    return float(statistics.median(samples))
+
+
 def _machine() -> dict:
     try:
         load = [round(v, 2) for v in os.getloadavg()]
@@ -824,6 +846,7 @@ def _machine() -> dict:
         "opencv": cv2.__version__,
         "opencv_threads": cv2.getNumThreads(),
         "load_average_1_5_15": load,
+        "interpreter_pace_ms": round(_interpreter_pace(), 2),
     }
 
 
@@ -1122,6 +1145,8 @@ def format_report(result: dict) -> str:
         f"machine: {machine['cpu_count']} CPUs, load average {machine['load_average_1_5_15']} before, "
         f"{machine.get('load_average_after')} after; Python {machine['python']}, numpy {machine['numpy']}, "
         f"OpenCV {machine['opencv']} ({machine['opencv_threads']} threads); {result['seconds']:.0f} s"
+        + (f"; interpreter pace {machine['interpreter_pace_ms']:.1f} ms (a fixed loop of Python arithmetic and "
+           "small numpy calls: compare runs by it)" if machine.get("interpreter_pace_ms") is not None else "")
     )
     return "\n".join(out)
 
