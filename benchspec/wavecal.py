@@ -952,15 +952,42 @@ def _fold_probe(tt, t_ends) -> np.ndarray:
 _UNIT_33 = np.linspace(0.0, 1.0, 33)
 
 
-def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, pairs, max_order, n_trials=1, quick=False,
-            seen=None):
+def _assign(coeffs, t, peaks: _Peaks, reference, *, scale, fwhm, t_ends, tol_px):
+    """One matching step of :func:`_refine`: each detected line to the closest feature within tolerance.
+
+    Returns (assignment ((peak, feature) index pairs, sorted), features, dispersion at each
+    line in nm/px, its median) or None where the polynomial folds or has no dispersion.
+    """
+    lam = _polyval(t, coeffs)
+    disp = np.abs(_polyval(t, _derivative_coeffs(coeffs))) / scale
+    median_disp = _median(disp) if disp.size else 1.0
+    if not median_disp > 0 or not np.all(disp > 0):
+        return None
+    features = _cluster_adaptive(reference, fwhm * median_disp, lam)
+    fw = features.wavelength
+    cost = np.abs(lam[:, None] - fw[None, :]) / disp[:, None]  # px
+    allowed = tol_px + 0.3 * peaks.fwhm[:, None] + 2 * features.sigma[None, :] / disp[:, None] + 3 * peaks.sigma[:, None]
+    ok = (cost < allowed) & _on_lit_branch(coeffs, t, t_ends)[:, None]
+    pi, fi = np.nonzero(ok)
+    order = np.argsort(cost[pi, fi])
+    taken_p, taken_f, chosen = set(), set(), []
+    for k in order:  # one detected line per feature, closest first
+        a, b = int(pi[k]), int(fi[k])
+        if a in taken_p or b in taken_f:
+            continue
+        taken_p.add(a)
+        taken_f.add(b)
+        chosen.append((a, b))
+    chosen.sort()
+    return tuple(chosen), features, disp, median_disp
+
+
+def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, pairs, max_order, n_trials=1, quick=False):
     """Iterative matching + robust fit from a starting polynomial. Returns a _Candidate or None.
 
     With ``quick`` the matching stops as soon as the assignment repeats and each step is one
     least-squares fit at the order BIC chooses, with no outlier rejection or leave-one-out
     checks: a cheap first pass that ranks many seeds, of which only the best get the full pass.
-    ``seen`` (a set, quick pass only) holds the first assignments of earlier seeds: a seed whose
-    first assignment was already seen converges to the same solution and is dropped (None).
     """
     coeffs = np.asarray(initial, dtype=float)
     nonzero = np.flatnonzero(coeffs)
@@ -973,34 +1000,13 @@ def _refine(initial, peaks: _Peaks, reference, *, centre, scale, fwhm, t_ends, p
     pair_t = [(m.pixel - centre) / scale for m in pairs]
     pair_nm = [m.wavelength_nm for m in pairs]
     for tol_px in ((4.0, 3.0, 2.0, 2.0, 2.0) if quick else (4.0, 3.0, 2.5, 2.0, 2.0, 2.0, 2.0)):
-        lam = _polyval(t, coeffs)
-        disp = np.abs(_polyval(t, _derivative_coeffs(coeffs))) / scale
-        median_disp = _median(disp) if disp.size else 1.0
-        if not median_disp > 0 or not np.all(disp > 0):
+        matched = _assign(coeffs, t, peaks, reference, scale=scale, fwhm=fwhm, t_ends=t_ends, tol_px=tol_px)
+        if matched is None:
             return None
-        features = _cluster_adaptive(reference, fwhm * median_disp, lam)
+        assignment, features, disp, median_disp = matched
         fw = features.wavelength
-        cost = np.abs(lam[:, None] - fw[None, :]) / disp[:, None]  # px
-        allowed = tol_px + 0.3 * peaks.fwhm[:, None] + 2 * features.sigma[None, :] / disp[:, None] + 3 * peaks.sigma[:, None]
-        ok = (cost < allowed) & _on_lit_branch(coeffs, t, t_ends)[:, None]
-        pi, fi = np.nonzero(ok)
-        order = np.argsort(cost[pi, fi])
-        taken_p, taken_f, chosen = set(), set(), []
-        for k in order:  # one detected line per feature, closest first
-            a, b = int(pi[k]), int(fi[k])
-            if a in taken_p or b in taken_f:
-                continue
-            taken_p.add(a)
-            taken_f.add(b)
-            chosen.append((a, b))
-        chosen.sort()
-        assignment = tuple(chosen)
         if len(assignment) + len(pairs) < 2:
             return None
-        if seen is not None and previous is None:
-            if assignment in seen:
-                return None
-            seen.add(assignment)
         p_idx = np.array([a for a, _ in assignment], dtype=int)
         f_idx = np.array([b for _, b in assignment], dtype=int)
         tt = _with_pairs(t[p_idx], pair_t)
@@ -1299,6 +1305,102 @@ def _lit_pixels(peaks: _Peaks, pairs) -> np.ndarray:
     return np.r_[chosen, [m.pixel for m in pairs]]
 
 
+def _first_assignment(coeffs, peaks: _Peaks, reference, options):
+    """The assignment a seed starts :func:`_refine` with (None where that stops before matching)."""
+    coeffs = np.asarray(coeffs, dtype=float)
+    nonzero = np.flatnonzero(coeffs)
+    coeffs = coeffs[: nonzero[-1] + 1] if nonzero.size else coeffs[:0]
+    if coeffs.size < 2:
+        return None
+    t = (peaks.pixel - options["centre"]) / options["scale"]
+    matched = _assign(coeffs, t, peaks, reference, scale=options["scale"], fwhm=options["fwhm"],
+                      t_ends=options["t_ends"], tol_px=4.0)
+    if matched is None or len(matched[0]) + len(options["pairs"]) < 2:
+        return None
+    return matched[0]
+
+
+def _group_seeds(items, peaks: _Peaks, reference, options) -> list:
+    """Seeds [(coarse score, coefficients)] of each band group in ``items`` [(index, (low, high, features, n_bands))].
+
+    A group's best hypotheses, kept only where they differ (wavelengths at the ends and middle
+    differ by > 3 px), at most 12 per band: [(index, seeds)].
+    """
+    centre, scale, fwhm, pairs, t_ends = (options[k] for k in ("centre", "scale", "fwhm", "pairs", "t_ends"))
+    out = []
+    for index, (low, high, features, n_bands) in items:
+        seeds = []
+        out.append((index, seeds))
+        coeffs = _triplet_hypotheses(peaks, features, centre=centre, scale=scale, d_low=low, d_high=high)
+        coeffs = np.concatenate([coeffs, _pair_hypotheses(pairs, centre=centre, scale=scale)])
+        if coeffs.shape[0] == 0:
+            continue
+        score = _score_hypotheses(coeffs, peaks, features, centre=centre, scale=scale, d_low=low, d_high=high,
+                                  tol_px=3.0 + 0.3 * fwhm, pairs=pairs, t_ends=t_ends)
+        finite = np.isfinite(score)
+        if not finite.any():
+            continue
+        order = np.argsort(-score)[: 400 * n_bands]
+        order = order[np.isfinite(score[order])]
+        ranked = coeffs[order]
+        probes = ranked[:, 0:1] + ranked[:, 1:2] * np.array([-1.0, 0.0, 1.0]) + ranked[:, 2:3] * np.array([1.0, 0.0, 1.0])
+        limits = 3.0 * (np.abs(ranked[:, 1]) / scale)
+        kept = np.empty((12 * n_bands, 3))
+        n_kept = 0
+        for j, k in enumerate(order):
+            probe = probes[j]
+            if n_kept and (np.abs(kept[:n_kept] - probe).max(axis=1) < limits[j]).any():
+                continue
+            kept[n_kept] = probe
+            n_kept += 1
+            seeds.append((float(score[k]), coeffs[k]))
+            if n_kept >= 12 * n_bands:
+                break
+    return out
+
+
+def _first_assignments(items, peaks: _Peaks, reference, options) -> list:
+    """:func:`_first_assignment` of each seed in ``items`` [(index, coefficients)]: [(index, assignment)]."""
+    return [(index, _first_assignment(c, peaks, reference, options)) for index, c in items]
+
+
+def _quick_pass(items, peaks: _Peaks, reference, options) -> list:
+    """The cheap first pass of :func:`_refine` over seeds ``items`` [(index, coefficients)]: [(index, candidate or None)]."""
+    return [(index, _refine(coeffs, peaks, reference, quick=True, **options)) for index, coeffs in items]
+
+
+def _full_pass(items, peaks: _Peaks, reference, options) -> list:
+    """The full refinement of each of ``items`` [(index, coefficients)]: [(index, candidate or None)]."""
+    return [(index, _refine(coeffs, peaks, reference, **options)) for index, coeffs in items]
+
+
+def _shared_pass(function: str, items, peaks: _Peaks, reference, options) -> list:
+    """``function``(items, ...) with every other item done by the helper process when it is free.
+
+    The items are independent, so the answer does not depend on who did which: it is the merged
+    list in the items' order, the same as one local call over all items. Whatever the helper cannot
+    do (not ready, busy, failed) is done here.
+    """
+    local = globals()[function]
+    if len(items) < 2:
+        return local(items, peaks, reference, options)
+    from . import helper as _helper
+
+    worker = _helper.shared()
+    if worker is None:
+        return local(items, peaks, reference, options)
+    try:
+        theirs, mine = items[1::2], items[0::2]
+        sent = worker.submit("benchspec.wavecal", function, theirs, peaks, reference, options)
+        out = local(mine, peaks, reference, options)
+        ok, value = worker.result() if sent else (False, None)
+    finally:
+        worker.lock.release()
+    if not ok:
+        value = local(theirs, peaks, reference, options)
+    return sorted(out + list(value), key=lambda item: item[0])
+
+
 def _search(peaks: _Peaks, reference, *, pixel_range, d_range, pairs, max_order, seed=None):
     """All refined candidates, best first.
 
@@ -1331,7 +1433,6 @@ def _search(peaks: _Peaks, reference, *, pixel_range, d_range, pairs, max_order,
         bands.append((edge, min(edge * 1.6, d_high)))
         edge *= 1.6
     candidates: list[_Candidate] = []
-    seeds = []
     # Neighbouring bands whose blends cluster the same way share one set of hypotheses (the ratio
     # matching does not depend on the band, only the dispersion limits do).
     groups: list = []
@@ -1342,50 +1443,31 @@ def _search(peaks: _Peaks, reference, *, pixel_range, d_range, pairs, max_order,
             groups[-1] = (groups[-1][0], high, groups[-1][2], groups[-1][3] + 1)
         else:
             groups.append((low, high, features, 1))
-    for low, high, features, n_bands in groups:
-        coeffs = _triplet_hypotheses(peaks, features, centre=centre, scale=scale, d_low=low, d_high=high)
-        coeffs = np.concatenate([coeffs, _pair_hypotheses(pairs, centre=centre, scale=scale)])
-        if coeffs.shape[0] == 0:
-            continue
-        score = _score_hypotheses(coeffs, peaks, features, centre=centre, scale=scale, d_low=low, d_high=high,
-                                  tol_px=3.0 + 0.3 * fwhm, pairs=pairs, t_ends=t_ends)
-        finite = np.isfinite(score)
-        if not finite.any():
-            continue
-        order = np.argsort(-score)[: 400 * n_bands]
-        order = order[np.isfinite(score[order])]
-        # keep hypotheses that differ (wavelengths at the ends and middle differ by > 3 px)
-        ranked = coeffs[order]
-        probes = ranked[:, 0:1] + ranked[:, 1:2] * np.array([-1.0, 0.0, 1.0]) + ranked[:, 2:3] * np.array([1.0, 0.0, 1.0])
-        limits = 3.0 * (np.abs(ranked[:, 1]) / scale)
-        kept = np.empty((12 * n_bands, 3))
-        n_kept = 0
-        for j, k in enumerate(order):
-            probe = probes[j]
-            if n_kept and (np.abs(kept[:n_kept] - probe).max(axis=1) < limits[j]).any():
-                continue
-            kept[n_kept] = probe
-            n_kept += 1
-            seeds.append((float(score[k]), coeffs[k]))
-            if n_kept >= 12 * n_bands:
-                break
+    options = dict(centre=centre, scale=scale, fwhm=fwhm, t_ends=t_ends, pairs=pairs, max_order=max_order)
+    seeds = []
+    for _, found in _shared_pass("_group_seeds", list(enumerate(groups)), peaks, reference, options):
+        seeds.extend(found)
     seeds.sort(key=lambda s: -s[0])
-    # First pass: every seed gets the cheap matching; seeds that converge to the same assignment
-    # are one; only the best few distinct assignments get the full refinement.
+    # First pass: seeds that start from the same assignment are one (the first, best coarse score,
+    # stands for them all); each of the others gets the cheap refinement, and only the best few
+    # distinct assignments get the full one. Every step is a list of independent items, shared with
+    # the helper process when there is one (see _shared_pass), merged in the items' order.
+    items, seen = [], set()
+    starts = list(enumerate(c for _, c in seeds[:_FIRST_PASS_SEEDS]))
+    for index, assignment in _shared_pass("_first_assignments", starts, peaks, reference, options):
+        if assignment is not None and assignment not in seen:
+            seen.add(assignment)
+            items.append((index, starts[index][1]))
     first: dict = {}
-    seen: set = set()
-    for _, c in seeds[:_FIRST_PASS_SEEDS]:
-        quick = _refine(c, peaks, reference, centre=centre, scale=scale, fwhm=fwhm, t_ends=t_ends, pairs=pairs,
-                        max_order=max_order, quick=True, seen=seen)
+    for _, quick in _shared_pass("_quick_pass", items, peaks, reference, options):
         if quick is None:
             continue
         key = (tuple(quick.peak_index.tolist()), tuple(quick.feature_index.tolist()))
         if key not in first or quick.score > first[key].score:
             first[key] = quick
     ranked = sorted(first.values(), key=lambda q: -q.score)[:_FULL_REFINEMENTS]
-    for q in ranked:
-        refined = _refine(q.coefficients, peaks, reference, centre=centre, scale=scale, fwhm=fwhm, t_ends=t_ends,
-                          pairs=pairs, max_order=max_order)
+    items = [(index, q.coefficients) for index, q in enumerate(ranked)]
+    for _, refined in _shared_pass("_full_pass", items, peaks, reference, options):
         if refined is None:
             continue
         disp_ends = np.abs(np.polynomial.polynomial.polyval(t_ends, np.polynomial.polynomial.polyder(refined.coefficients))) / scale
